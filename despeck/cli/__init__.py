@@ -1,0 +1,72 @@
+"""The ``despeck`` command: a thin layer that parses options and calls the package.
+
+Each subcommand lives in its own module of this package and defines
+``add_arguments(parser)`` and ``run(args) -> int``. Errors the package raises on
+purpose (:class:`despeck.errors.DespeckError`) are printed as one line,
+``despeck: error: ...``, with exit status 2; nothing else is caught.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from ..errors import DespeckError
+
+# name -> (module, one-line help). Modules are imported only when their command runs,
+# so ``despeck info`` never pays for importing torch.
+COMMANDS = {
+    "simulate": ("simulate", "add simulated speckle to a clean reference raster"),
+    "info": ("info", "describe a SAR raster: size, units, nodata, estimated looks"),
+    "filter": ("filter", "run a classical speckle filter on a raster"),
+    "train": ("train", "train a despeckling network from a YAML configuration"),
+    "apply": ("apply", "despeckle scenes with a trained model, tile by tile"),
+    "bench": ("bench", "compare filters and models and write a report"),
+}
+
+
+def build_parser(load_all: bool = True) -> argparse.ArgumentParser:
+    from .. import __version__
+
+    parser = argparse.ArgumentParser(
+        prog="despeck",
+        description="Speckle reduction for SAR imagery with small networks trained and run on a CPU.",
+    )
+    parser.add_argument("--version", action="version", version=f"despeck {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for name, (module_name, help_text) in COMMANDS.items():
+        p = sub.add_parser(name, help=help_text, description=help_text)
+        if load_all:
+            module = importlib.import_module(f"{__name__}.{module_name}")
+            module.add_arguments(p)
+            p.set_defaults(_module=module)
+    return parser
+
+
+def main(argv=None) -> int:
+    argv = list(sys.argv[1:] if argv is None else argv)
+    # Build only the chosen subcommand's options (cheap imports), but all of them for --help.
+    chosen = next((a for a in argv if a in COMMANDS), None)
+    if chosen is None:
+        parser = build_parser(load_all=False)
+        args = parser.parse_args(argv)
+        parser.print_help()
+        return 0 if not argv else 2
+    parser = build_parser(load_all=False)
+    module = importlib.import_module(f"{__name__}.{COMMANDS[chosen][0]}")
+    sub_parser = parser._subparsers._group_actions[0].choices[chosen]  # noqa: SLF001
+    module.add_arguments(sub_parser)
+    args = parser.parse_args(argv)
+    try:
+        return int(module.run(args) or 0)
+    except DespeckError as exc:
+        print(f"despeck: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("despeck: interrupted; nothing was written at the destination", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
