@@ -207,7 +207,9 @@ def make_scene(
     candidates = clean_parcel.copy()
     for r0, c0, r1, c1 in layout.homogeneous_boxes:
         candidates[max(r0 - 6, 0) : r1 + 6, max(c0 - 6, 0) : c1 + 6] = False
-    candidates = ndimage.binary_erosion(candidates, iterations=6)
+    # six pixels from any parcel boundary, so the background around a point is one parcel
+    near_boundary = ndimage.maximum_filter(labels, 13) != ndimage.minimum_filter(labels, 13)
+    candidates = ndimage.binary_erosion(candidates & ~near_boundary, iterations=1)
     free = np.argwhere(candidates)
     rng.shuffle(free)
     for r, c in free:
