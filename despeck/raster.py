@@ -1,0 +1,931 @@
+"""Reading and writing SAR rasters: units, validity masks, block windows, safe outputs.
+
+Every scene enters the package as float32 linear **intensity** plus a boolean
+**valid** mask, whatever the file holds: linear intensity (power), amplitude,
+decibels, or complex samples (a complex data type such as CInt16/CFloat32, or a
+two-band file of in-phase and quadrature parts). Files are read through rasterio,
+so anything GDAL opens can be read, window by window along the file's own blocks
+for scenes larger than memory; multi-band files (e.g. two polarisations) are read
+band by band. Outputs are tiled, DEFLATE-compressed GeoTIFFs written into a
+temporary file beside the destination and renamed only when complete, carrying the
+input's CRS, transform, nodata, band descriptions and tags.
+
+Invalid pixels are nodata, non-finite and non-positive intensities; their
+intensity is set to 0.0 so arrays stay NaN-free, and the writer turns them back
+into the output's nodata value.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import pathlib
+import tempfile
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import rasterio
+from rasterio.enums import MaskFlags
+from rasterio.errors import RasterioError, RasterioIOError
+from rasterio.windows import Window
+
+from .errors import InputError, RasterError
+
+__all__ = [
+    "UNITS",
+    "OUTPUT_UNITS",
+    "UnitsWarning",
+    "UnitsDecision",
+    "check_units",
+    "to_intensity",
+    "from_intensity",
+    "detect_units",
+    "SceneReader",
+    "SceneWriter",
+    "Scene",
+    "open_scene",
+    "open_output",
+    "read_scene",
+    "write_scene",
+    "check_output_path",
+]
+
+UNITS = ("intensity", "amplitude", "db", "complex")
+OUTPUT_UNITS = ("intensity", "amplitude", "db")
+
+#: Tile size of written GeoTIFFs (pixels); a multiple of 16 as GDAL requires.
+OUTPUT_TILE = 512
+
+#: Band unit strings written to outputs (GDAL band metadata) and recognised on input.
+_UNIT_LABELS = {"intensity": "linear power", "amplitude": "linear amplitude", "db": "dB"}
+
+# Fraction of negative samples above which real data are taken to be decibels.
+_DB_NEGATIVE_FRACTION = 0.05
+
+# Pixels read when a scene is opened, to detect units and check it is not empty.
+_PROBE_PIXELS = 1 << 18
+
+# Band descriptions that mark a two-band file as in-phase / quadrature parts.
+_IQ_NAMES = {("i", "q"), ("real", "imag"), ("real", "imaginary"), ("re", "im"), ("in-phase", "quadrature")}
+
+
+class UnitsWarning(UserWarning):
+    """The data do not look like the units they were declared (or assumed) to be in."""
+
+
+# --------------------------------------------------------------------------- units
+
+def check_units(units, *, name: str = "units", output: bool = False) -> str:
+    """Return ``units`` normalised to lower case, or raise :class:`InputError`.
+
+    ``output=True`` excludes ``'complex'``: results are always written as real values.
+    """
+    allowed = OUTPUT_UNITS if output else UNITS
+    value = str(units).strip().lower() if units is not None else ""
+    if value == "complex" and output:
+        raise InputError(
+            f"{name}: 'complex' cannot be an output unit (phase is not kept); choose one of {', '.join(OUTPUT_UNITS)}"
+        )
+    if value not in allowed:
+        raise InputError(f"{name} must be one of {', '.join(allowed)}, got {units!r}")
+    return value
+
+
+def to_intensity(data, units) -> tuple[np.ndarray, np.ndarray]:
+    """Convert raw samples in ``units`` to float32 linear intensity and a validity mask.
+
+    Parameters
+    ----------
+    data : array_like
+        Raw samples. For ``'complex'`` either a complex array or a real array whose
+        first axis has length 2 (in-phase, quadrature).
+    units : {'intensity', 'amplitude', 'db', 'complex'}
+        ``db``: ``10 ** (x / 10)``; ``amplitude``: ``x ** 2``; ``complex``: ``|z| ** 2``.
+
+    Returns
+    -------
+    intensity : ndarray of float32
+        Linear intensity; 0.0 where invalid.
+    valid : ndarray of bool
+        True where the sample is finite and the intensity is positive. Negative
+        amplitudes are invalid (an amplitude is a modulus). Nodata values are the
+        reader's business, not this function's.
+    """
+    units = check_units(units)
+    a = np.asarray(data)
+    with np.errstate(over="ignore", invalid="ignore", under="ignore"):
+        if units == "complex":
+            if np.iscomplexobj(a):
+                z = a.astype(np.complex64, copy=False)
+                intensity = (z.real * z.real + z.imag * z.imag).astype(np.float32, copy=False)
+            elif a.ndim >= 1 and a.shape[0] == 2:
+                i = a[0].astype(np.float32, copy=False)
+                q = a[1].astype(np.float32, copy=False)
+                intensity = i * i + q * q
+            else:
+                raise InputError(
+                    f"complex data must be a complex array or have in-phase and quadrature parts on a first axis of length 2, got shape {a.shape} of {a.dtype}"
+                )
+        else:
+            if np.iscomplexobj(a):
+                raise InputError(f"data are complex but units were given as {units!r}; use units 'complex'")
+            x = a.astype(np.float32, copy=False)
+            if units == "intensity":
+                intensity = x.copy() if x is a else x
+            elif units == "amplitude":
+                intensity = np.where(x > 0, x * x, np.float32(0)).astype(np.float32, copy=False)
+            else:  # db
+                intensity = np.power(np.float32(10.0), x / np.float32(10.0), dtype=np.float32)
+        valid = np.isfinite(intensity) & (intensity > 0)
+        intensity = np.where(valid, intensity, np.float32(0)).astype(np.float32, copy=False)
+    return intensity, valid
+
+
+def from_intensity(intensity, units) -> np.ndarray:
+    """Convert linear intensity to ``units`` (float32); the inverse of :func:`to_intensity`.
+
+    Non-positive intensities give 0 amplitude and ``-inf`` dB; callers that write
+    files mark them as nodata. ``'complex'`` is refused: the phase is gone.
+    """
+    units = check_units(units, output=True)
+    x = np.asarray(intensity, dtype=np.float32)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        if units == "intensity":
+            return x.copy()
+        if units == "amplitude":
+            return np.sqrt(np.maximum(x, np.float32(0)))
+        return (np.float32(10.0) * np.log10(x)).astype(np.float32, copy=False)
+
+
+@dataclass(frozen=True)
+class UnitsDecision:
+    """Which units a scene is read in, and why.
+
+    Attributes
+    ----------
+    units : str
+        One of :data:`UNITS`.
+    detected : bool
+        True when the data (or their metadata) decide the units, False when the user
+        declared them or the default (linear intensity) was assumed.
+    reason : str
+        One line a person can read, e.g. for ``despeck info``.
+    warnings : tuple of str
+        Doubts about the units; the reader emits them as :class:`UnitsWarning`.
+    """
+
+    units: str
+    detected: bool
+    reason: str
+    warnings: tuple = ()
+
+
+def _is_complex_dtype(dtype) -> bool:
+    return "complex" in str(dtype)
+
+
+def _iq_by_name(descriptions) -> bool:
+    names = tuple((d or "").strip().lower() for d in descriptions)
+    return len(names) == 2 and names in _IQ_NAMES
+
+
+def _looks_zero_centred(sample) -> bool:
+    """Both bands symmetric about zero, as in-phase/quadrature parts of speckle are."""
+    for band in sample:
+        band = np.asarray(band, dtype=np.float64)
+        if band.size < 100:
+            return False
+        negative = float(np.mean(band < 0))
+        q25, q50, q75 = np.percentile(band, [25, 50, 75])
+        spread = q75 - q25
+        if not (0.4 <= negative <= 0.6) or spread <= 0 or abs(q50) > 0.1 * spread:
+            return False
+    return True
+
+
+def detect_units(sample=None, *, dtype="float32", band_count=1, descriptions=(), band_units=(),
+                 declared=None, name="scene") -> UnitsDecision:
+    """Decide the units of a scene from its data type, metadata and a sample of its values.
+
+    Rules, in order:
+
+    1. a complex data type means ``complex`` (declaring anything else is an error);
+    2. ``declared`` units are checked against the data (``complex`` on a real file
+       needs exactly two bands; negative values cannot be linear) and used;
+    3. a two-band real file whose bands are described as I/Q (or real/imag), or
+       whose bands are both symmetric about zero, is ``complex``;
+    4. a band unit of "dB" in the metadata means ``db``;
+    5. at least 5 % negative values mean ``db``; a few negative values are ambiguous
+       and need the user's word;
+    6. otherwise linear ``intensity`` is assumed and the decision says so.
+
+    Warnings (not errors) flag declared dB without a single negative value and
+    linear data with an implausibly narrow dynamic range (p99/p1 < 1.5 in intensity,
+    which speckled linear data do not have but dB values often do).
+
+    Parameters
+    ----------
+    sample : array_like, optional
+        Finite, non-nodata raw values, shape ``(n,)`` or ``(bands, n)``.
+    dtype : str
+        The file's data type (rasterio name, e.g. ``'complex_int16'``).
+    band_count : int
+        Number of bands in the file.
+    descriptions, band_units : sequence of str or None
+        Band descriptions and band unit strings from the file's metadata.
+    declared : str, optional
+        Units the user declared.
+    name : str
+        How to call the scene in messages (usually its path).
+    """
+    if declared is not None:
+        declared = check_units(declared)
+    sample = None if sample is None else np.atleast_2d(np.asarray(sample))
+    if _is_complex_dtype(dtype):
+        if declared not in (None, "complex"):
+            raise InputError(f"{name}: the file holds complex samples ({dtype}); its units can only be 'complex', not {declared!r}")
+        return UnitsDecision("complex", declared is None, f"complex data type {dtype}")
+    if sample is not None and sample.size:
+        negative_fraction = float(np.mean(sample[0] < 0))
+    else:
+        negative_fraction = 0.0
+    if declared == "complex":
+        if band_count != 2:
+            raise InputError(
+                f"{name}: units 'complex' requested but the file holds real data ({dtype}, {band_count} band(s)); "
+                "complex needs a complex data type or two bands (in-phase, quadrature)"
+            )
+        return UnitsDecision("complex", False, "declared complex: two bands read as in-phase and quadrature")
+    if declared is not None:
+        notes = []
+        if declared in ("intensity", "amplitude") and negative_fraction > 0:
+            raise InputError(
+                f"{name}: {negative_fraction:.2%} of the values are negative, which linear {declared} cannot be; "
+                "if the file is in decibels declare units 'db'"
+            )
+        if sample is not None and sample.size:
+            notes.extend(_doubts(sample[0], declared))
+        return UnitsDecision(declared, False, f"declared {declared}", tuple(notes))
+    if band_count == 2 and sample is not None and sample.shape[0] == 2:
+        if _iq_by_name(descriptions) or _looks_zero_centred(sample):
+            how = "bands described as in-phase/quadrature" if _iq_by_name(descriptions) else "two zero-centred bands"
+            return UnitsDecision("complex", True, f"{how} read as complex samples")
+    elif band_count == 2 and _iq_by_name(descriptions):
+        return UnitsDecision("complex", True, "bands described as in-phase/quadrature read as complex samples")
+    labels = {(u or "").strip().lower() for u in band_units}
+    if "db" in labels:
+        return UnitsDecision("db", True, "band unit metadata says dB", tuple(_doubts(sample[0], "db")) if sample is not None and sample.size else ())
+    for units, label in _UNIT_LABELS.items():
+        if label.lower() in labels and units != "db":
+            return UnitsDecision(units, True, f"band unit metadata says {label}")
+    if negative_fraction >= _DB_NEGATIVE_FRACTION:
+        return UnitsDecision("db", True, f"{negative_fraction:.0%} of the values are negative: decibels")
+    if negative_fraction > 0:
+        raise InputError(
+            f"{name}: a few values ({negative_fraction:.2%}) are negative, so the units cannot be told apart; "
+            "declare them (units 'db' for decibels)"
+        )
+    notes = tuple(_doubts(sample[0], "intensity")) if sample is not None and sample.size else ()
+    return UnitsDecision(
+        "intensity", False,
+        "no negative values: assumed linear intensity (declare 'amplitude' or 'db' if it is not)", notes,
+    )
+
+
+def _doubts(values, units) -> list:
+    values = np.asarray(values, dtype=np.float64)
+    values = values[np.isfinite(values)]
+    if values.size < 100:
+        return []
+    notes = []
+    if units == "db":
+        if not np.any(values < 0):
+            notes.append(
+                f"values declared as dB are never negative (range {values.min():.3g} to {values.max():.3g}); "
+                "is the file linear intensity or amplitude?"
+            )
+    else:
+        positive = values[values > 0]
+        if positive.size >= 100:
+            if units == "amplitude":
+                positive = positive * positive
+            p1, p99 = np.percentile(positive, [1, 99])
+            if p99 < 1.5 * p1:
+                notes.append(
+                    f"values declared or assumed as linear {units} have a very narrow dynamic range "
+                    f"(1st-99th percentile {p1:.3g} to {p99:.3g}); is the file in dB?"
+                )
+    return notes
+
+
+# --------------------------------------------------------------------------- paths
+
+def _same_file(a: pathlib.Path, b: pathlib.Path) -> bool:
+    try:
+        if a.exists() and b.exists():
+            return os.path.samefile(a, b)
+    except OSError:
+        pass
+    return a.resolve() == b.resolve()
+
+
+def check_output_path(output, inputs, *, overwrite=False, create_dir=True) -> pathlib.Path:
+    """Check that ``output`` may be written and return it as a :class:`pathlib.Path`.
+
+    Refuses an output that is one of ``inputs`` (never overwrite an input, even with
+    ``overwrite``), an existing file unless ``overwrite``, and an existing directory.
+    A missing parent directory is created when ``create_dir`` (else refused).
+    """
+    if output is None or str(output) == "":
+        raise InputError("output path is empty")
+    out = pathlib.Path(output).expanduser()
+    if isinstance(inputs, (str, os.PathLike)):
+        inputs = [inputs]
+    for item in inputs or ():
+        if item is None:
+            continue
+        if _same_file(out, pathlib.Path(item).expanduser()):
+            raise InputError(f"{out}: output path is the same as the input {item}; choose another output")
+    if out.is_dir():
+        raise InputError(f"{out}: output path is a directory; give a file name")
+    if out.exists() and not overwrite:
+        raise InputError(f"{out}: output already exists; choose another path or allow overwriting")
+    parent = out.parent
+    if not parent.exists():
+        if not create_dir:
+            raise RasterError(f"{out}: output directory {parent} does not exist")
+        try:
+            parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise RasterError(f"{out}: cannot create output directory {parent}: {exc.strerror or exc}") from None
+    elif not parent.is_dir():
+        raise RasterError(f"{out}: {parent} is not a directory")
+    return out
+
+
+# --------------------------------------------------------------------------- reading
+
+def _as_window(window, width: int, height: int, name) -> Window:
+    if window is None:
+        return Window(0, 0, width, height)
+    if not isinstance(window, Window):
+        try:
+            window = Window.from_slices(*window) if len(window) == 2 and not np.isscalar(window[0]) else Window(*window)
+        except Exception:
+            raise InputError(f"{name}: window must be a rasterio Window, got {window!r}") from None
+    c0, r0 = int(window.col_off), int(window.row_off)
+    w, h = int(window.width), int(window.height)
+    if c0 < 0 or r0 < 0 or w <= 0 or h <= 0 or c0 + w > width or r0 + h > height:
+        raise InputError(f"{name}: window {window} lies outside the {width}x{height} scene")
+    return Window(c0, r0, w, h)
+
+
+def _nodata_mask(raw, nodata):
+    """True where ``raw`` equals the nodata value (NaN nodata compares as NaN)."""
+    if nodata is None:
+        return np.zeros(raw.shape, dtype=bool)
+    if isinstance(nodata, float) and math.isnan(nodata):
+        return np.isnan(raw.real if np.iscomplexobj(raw) else raw)
+    if np.iscomplexobj(raw):
+        return (raw.real == nodata) & (raw.imag == nodata)
+    if raw.dtype.kind == "f":
+        # the file stores nodata in its own precision; compare in that precision
+        return raw == raw.dtype.type(nodata)
+    return raw == nodata
+
+
+class SceneReader:
+    """An open SAR raster, read as float32 linear intensity plus a validity mask.
+
+    Use :func:`open_scene` to create one; it is a context manager and must be
+    closed. ``band`` arguments count SAR bands from 1: a two-band in-phase /
+    quadrature file has one SAR band.
+
+    Attributes
+    ----------
+    path : pathlib.Path
+    width, height : int
+    band_count : int
+        SAR bands (a two-band I/Q file counts as 1).
+    units : str
+        Units the file holds (see :class:`UnitsDecision`); :attr:`units_decision` says why.
+    dtype : str
+        The file's data type (rasterio name).
+    crs, transform, nodata
+        Georeferencing and the nodata value of the first band (None if unset).
+    block_shape : tuple of int
+        ``(rows, cols)`` of the file's blocks.
+    descriptions : tuple of str or None
+        Descriptions of the SAR bands.
+    tags : dict
+        Dataset-level metadata tags.
+    """
+
+    def __init__(self, path, units=None):
+        self.path = pathlib.Path(path).expanduser()
+        name = str(self.path)
+        if not self.path.exists():
+            raise RasterError(f"{name}: no such file")
+        if self.path.is_dir():
+            raise RasterError(f"{name}: is a directory, not a raster file")
+        try:
+            self._ds = rasterio.open(self.path)
+        except RasterioIOError as exc:
+            first = str(exc).splitlines()[0] if str(exc) else "unrecognised format"
+            raise RasterError(f"{name}: not a raster GDAL can read ({first})") from None
+        except (RasterioError, OSError) as exc:
+            raise RasterError(f"{name}: cannot open: {exc}") from None
+        try:
+            self._setup(units)
+        except BaseException:
+            self._ds.close()
+            raise
+
+    def _setup(self, units):
+        ds, name = self._ds, str(self.path)
+        if ds.width == 0 or ds.height == 0 or ds.count == 0:
+            raise RasterError(f"{name}: the raster is empty ({ds.width}x{ds.height}, {ds.count} bands)")
+        self.width, self.height = int(ds.width), int(ds.height)
+        self.dtype = ds.dtypes[0]
+        self.nodata = ds.nodata
+        self.crs = ds.crs
+        self.transform = ds.transform
+        self.block_shape = tuple(int(v) for v in ds.block_shapes[0])
+        self.tags = dict(ds.tags())
+        self._file_descriptions = tuple(ds.descriptions)
+        self._masked_bands = {
+            b for b in range(1, ds.count + 1)
+            if not ({MaskFlags.all_valid, MaskFlags.nodata} & set(ds.mask_flag_enums[b - 1]))
+        }
+        sample_raw, has_valid = self._probe(declared=units)
+        self.units_decision = detect_units(
+            sample_raw, dtype=self.dtype, band_count=ds.count, descriptions=ds.descriptions,
+            band_units=ds.units, declared=units, name=name,
+        )
+        self.units = self.units_decision.units
+        self._iq = self.units == "complex" and not _is_complex_dtype(self.dtype)
+        self.band_count = 1 if self._iq else int(ds.count)
+        if not has_valid and not self._any_valid():
+            raise RasterError(f"{name}: every pixel is nodata or invalid; nothing to process")
+        for note in self.units_decision.warnings:
+            warnings.warn(f"{name}: {note}", UnitsWarning, stacklevel=3)
+
+    # ----------------------------------------------------------- metadata
+    @property
+    def profile(self) -> dict:
+        """A copy of the file's rasterio profile."""
+        return dict(self._ds.profile)
+
+    @property
+    def descriptions(self) -> tuple:
+        if self._iq:
+            return (None,)
+        return self._file_descriptions
+
+    @property
+    def closed(self) -> bool:
+        return self._ds.closed
+
+    def close(self):
+        self._ds.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    def __repr__(self):
+        return (f"SceneReader({str(self.path)!r}, {self.width}x{self.height}, bands={self.band_count}, "
+                f"units={self.units!r})")
+
+    # ----------------------------------------------------------- raw access
+    def _check_band(self, band) -> int:
+        try:
+            b = int(band)
+        except (TypeError, ValueError):
+            b = 0
+        if b < 1 or b > self.band_count:
+            raise InputError(f"{self.path}: band {band!r} does not exist (the scene has {self.band_count} SAR band(s))")
+        return b
+
+    def _raw(self, window: Window, band: int, out_shape=None):
+        """Raw samples and the nodata/mask-band invalidity for one SAR band."""
+        ds = self._ds
+        bands = [1, 2] if self._iq else [band]
+        kwargs = {"window": window}
+        if out_shape is not None:
+            kwargs["out_shape"] = (len(bands),) + tuple(out_shape)
+        try:
+            raw = ds.read(bands, **kwargs)
+        except RasterioError as exc:
+            raise RasterError(f"{self.path}: read failed at {window}: {exc}") from None
+        bad = np.zeros(raw.shape[1:], dtype=bool)
+        nodata_all = np.ones(raw.shape[1:], dtype=bool)
+        for k, b in enumerate(bands):
+            nd = ds.nodatavals[b - 1]
+            if nd is not None:
+                nodata_all &= _nodata_mask(raw[k], nd)
+            else:
+                nodata_all[:] = False
+            if b in self._masked_bands:
+                m = ds.read_masks(b, **({"window": window} | ({"out_shape": tuple(out_shape)} if out_shape else {})))
+                bad |= m == 0
+        bad |= nodata_all
+        data = raw if self._iq else raw[0]
+        return data, bad
+
+    def _probe(self, declared):
+        """Read up to ``_PROBE_PIXELS`` from blocks spread over band 1 (all of a small file)."""
+        ds = self._ds
+        bands = [1, 2] if ds.count == 2 and not _is_complex_dtype(self.dtype) else [1]
+        windows = [w for _, w in ds.block_windows(1)]
+        per_block = max(1, self.block_shape[0] * self.block_shape[1])
+        n_take = max(1, min(len(windows), _PROBE_PIXELS // per_block))
+        picks = np.unique(np.linspace(0, len(windows) - 1, n_take).round().astype(int))
+        values, has_valid = [], False
+        for i in picks:
+            w = windows[i]
+            raw = ds.read(bands, window=w)
+            bad = np.zeros(raw.shape[1:], dtype=bool)
+            for k, b in enumerate(bands):
+                nd = ds.nodatavals[b - 1]
+                if nd is not None:
+                    bad |= _nodata_mask(raw[k], nd)
+                if b in self._masked_bands:
+                    bad |= ds.read_masks(b, window=w) == 0
+            if np.iscomplexobj(raw):
+                good = ~bad & np.isfinite(raw[0].real) & np.isfinite(raw[0].imag)
+                has_valid |= bool(np.any(good & (np.abs(raw[0]) > 0)))
+                continue
+            good = ~bad & np.all(np.isfinite(raw), axis=0)
+            values.append(raw[:, good].astype(np.float64))
+            has_valid |= bool(np.any(good & (raw[0] != 0)))
+        sample = np.concatenate(values, axis=1) if values else None
+        return sample, has_valid
+
+    def _any_valid(self) -> bool:
+        for b in range(1, self.band_count + 1):
+            for w in self.block_windows(b):
+                _, valid = self.read(w, band=b)
+                if valid.any():
+                    return True
+        return False
+
+    # ----------------------------------------------------------- reading
+    def read(self, window=None, band=1):
+        """Read one SAR band as float32 intensity and a bool validity mask, shape ``(h, w)``.
+
+        Parameters
+        ----------
+        window : rasterio.windows.Window, optional
+            Part of the scene to read (whole scene if None).
+        band : int
+            SAR band, from 1.
+
+        Raises
+        ------
+        InputError
+            If a linear band holds negative values.
+        """
+        b = self._check_band(band)
+        w = _as_window(window, self.width, self.height, self.path)
+        raw, bad = self._raw(w, b)
+        return self._convert(raw, bad, w)
+
+    def _convert(self, raw, bad, where):
+        if self.units in ("intensity", "amplitude"):
+            negative = (raw < 0) & ~bad
+            if negative.any():
+                raise InputError(
+                    f"{self.path}: negative values in {where} cannot be linear {self.units}; "
+                    "if the file is in decibels declare units 'db'"
+                )
+        intensity, valid = to_intensity(raw, self.units)
+        if bad.any():
+            valid &= ~bad
+            intensity[bad] = 0.0
+        return intensity, valid
+
+    def block_windows(self, band=1) -> list:
+        """Windows of the file's own blocks for ``band`` (reading them never splits a block)."""
+        b = self._check_band(band)
+        file_band = 1 if self._iq else b
+        return [w for _, w in self._ds.block_windows(file_band)]
+
+    def row_windows(self, min_rows=256) -> list:
+        """Full-width strips of at least ``min_rows`` rows, aligned to block rows (the last may be shorter)."""
+        try:
+            min_rows = int(min_rows)
+        except (TypeError, ValueError):
+            min_rows = 0
+        if min_rows < 1:
+            raise InputError(f"min_rows must be a positive integer, got {min_rows!r}")
+        bh = max(1, self.block_shape[0])
+        rows = -(-min_rows // bh) * bh
+        return [Window(0, r, self.width, min(rows, self.height - r)) for r in range(0, self.height, rows)]
+
+    def sample_image(self, max_pixels=1_000_000, band=1):
+        """A decimated view of a band: ``(intensity, valid)`` of at most ``max_pixels`` pixels.
+
+        Reads every k-th row and column (nearest-neighbour decimation by GDAL), so
+        memory stays bounded whatever the scene's size; decimation also breaks the
+        spatial correlation of speckle between neighbouring kept pixels.
+        """
+        b = self._check_band(band)
+        max_pixels = int(max_pixels)
+        if max_pixels < 1:
+            raise InputError(f"max_pixels must be positive, got {max_pixels}")
+        step = max(1, math.ceil(math.sqrt(self.width * self.height / max_pixels)))
+        out_shape = (max(1, self.height // step), max(1, self.width // step))
+        w = Window(0, 0, self.width, self.height)
+        raw, bad = self._raw(w, b, out_shape=None if step == 1 else out_shape)
+        return self._convert(raw, bad, "the decimated sample")
+
+    def sample_intensity(self, max_pixels=1_000_000, band=1) -> np.ndarray:
+        """Valid intensities of a decimated read (1-D float64), for scene-level statistics."""
+        intensity, valid = self.sample_image(max_pixels, band)
+        return intensity[valid].astype(np.float64)
+
+
+def open_scene(path, units=None) -> SceneReader:
+    """Open a SAR raster for reading as intensity; see :class:`SceneReader`.
+
+    Parameters
+    ----------
+    path : str or path-like
+    units : {'intensity', 'amplitude', 'db', 'complex'}, optional
+        Units of the file's values; detected when unambiguous (see :func:`detect_units`),
+        otherwise linear intensity is assumed.
+
+    Raises
+    ------
+    RasterError
+        Missing file, not a raster, empty raster, every pixel nodata.
+    InputError
+        Negative values declared linear, complex declared on real data, unknown units.
+    """
+    return SceneReader(path, units=units)
+
+
+# --------------------------------------------------------------------------- writing
+
+def _nodata_is_safe(nodata, units) -> bool:
+    """Whether ``nodata`` can never be confused with a valid value in ``units``."""
+    if nodata is None:
+        return False
+    nodata = float(nodata)
+    if math.isnan(nodata):
+        return True
+    if units in ("intensity", "amplitude"):
+        return nodata <= 0
+    # float32 intensities lie within about 1e-45 .. 3.4e38, i.e. -454 .. +386 dB
+    return nodata < -460 or nodata > 390
+
+
+class SceneWriter:
+    """A GeoTIFF being written, in ``units``, georeferenced like a source scene.
+
+    Use :func:`open_output`. Data go to a temporary file in the destination folder,
+    renamed to the destination when the context manager exits cleanly and deleted
+    if it exits with an exception, so a crash never leaves a half-written output.
+
+    Attributes
+    ----------
+    path : pathlib.Path
+        Final destination.
+    units : str
+    nodata : float
+        Value written for invalid pixels.
+    width, height, band_count : int
+    """
+
+    def __init__(self, path, like, *, units=None, band_count=None, overwrite=False, dtype="float32"):
+        like_path = getattr(like, "path", None)
+        self.path = check_output_path(path, [like_path] if like_path else [], overwrite=overwrite)
+        if units is None:
+            like_units = getattr(like, "units", "intensity")
+            units = "intensity" if like_units == "complex" else like_units
+        self.units = check_units(units, name="output units", output=True)
+        dtype = str(np.dtype(dtype))
+        if dtype not in ("float32", "float64"):
+            raise InputError(f"output dtype must be float32 or float64, got {dtype!r}")
+        self.dtype = dtype
+        like_bands = int(getattr(like, "band_count", 1) or 1)
+        self.band_count = like_bands if band_count is None else int(band_count)
+        if self.band_count < 1:
+            raise InputError(f"output band_count must be at least 1, got {band_count!r}")
+        profile = dict(getattr(like, "profile", {}) or {})
+        self.width = int(getattr(like, "width", profile.get("width", 0)))
+        self.height = int(getattr(like, "height", profile.get("height", 0)))
+        if self.width <= 0 or self.height <= 0:
+            raise InputError(f"{self.path}: the source scene has no size to copy")
+        nodata = getattr(like, "nodata", profile.get("nodata"))
+        self.nodata = float(nodata) if _nodata_is_safe(nodata, self.units) else float("nan")
+        for key in ("blockxsize", "blockysize", "tiled", "compress", "predictor", "interleave",
+                    "photometric", "bigtiff", "zlevel", "jpeg_quality", "blockysize"):
+            profile.pop(key, None)
+        tile = OUTPUT_TILE
+        profile.update(
+            driver="GTiff", width=self.width, height=self.height, count=self.band_count, dtype=dtype,
+            crs=getattr(like, "crs", profile.get("crs")), transform=getattr(like, "transform", profile.get("transform")),
+            nodata=self.nodata, tiled=True, blockxsize=tile, blockysize=tile, compress="deflate", predictor=3,
+            interleave="band", bigtiff="IF_SAFER",
+        )
+        if profile.get("crs") is None:
+            profile.pop("crs")
+        if profile.get("transform") is None:
+            profile.pop("transform")
+        self._profile = profile
+        fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".tmp", dir=self.path.parent)
+        os.close(fd)
+        self._tmp = pathlib.Path(tmp)
+        try:
+            with warnings.catch_warnings():
+                # an ungeoreferenced source gives an ungeoreferenced output; that is not news
+                warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
+                self._ds = rasterio.open(self._tmp, "w", **profile)
+            descriptions = tuple(getattr(like, "descriptions", ()) or ())
+            for b in range(1, self.band_count + 1):
+                if b <= len(descriptions) and descriptions[b - 1]:
+                    self._ds.set_band_description(b, descriptions[b - 1])
+                self._ds.set_band_unit(b, _UNIT_LABELS[self.units])
+            tags = dict(getattr(like, "tags", {}) or {})
+            if tags:
+                self._ds.update_tags(**tags)
+        except BaseException as exc:
+            if getattr(self, "_ds", None) is not None:
+                self._ds.close()
+            self._tmp.unlink(missing_ok=True)
+            if isinstance(exc, (RasterioError, OSError)) and not isinstance(exc, RasterError):
+                raise RasterError(f"{self.path}: cannot create output: {exc}") from None
+            raise
+        self._done = False
+
+    def set_description(self, band, text):
+        """Set one band's description (e.g. the filter that made it)."""
+        self._ds.set_band_description(int(band), str(text))
+
+    def update_tags(self, **tags):
+        """Add dataset-level metadata tags."""
+        self._ds.update_tags(**{k: str(v) for k, v in tags.items()})
+
+    def write(self, intensity, window=None, band=1, valid=None):
+        """Write linear intensity into ``window`` of ``band``, converted to the output units.
+
+        Pixels that are invalid (``valid`` False, non-finite or non-positive
+        intensity) are written as the output's nodata value.
+        """
+        if self._done:
+            raise RasterError(f"{self.path}: writer is closed")
+        b = int(band)
+        if b < 1 or b > self.band_count:
+            raise InputError(f"{self.path}: band {band!r} does not exist (output has {self.band_count} band(s))")
+        w = _as_window(window, self.width, self.height, self.path)
+        x = np.asarray(intensity, dtype=np.float32)
+        if x.shape != (int(w.height), int(w.width)):
+            raise InputError(f"{self.path}: data of shape {x.shape} do not fit window {w}")
+        ok = np.isfinite(x) & (x > 0)
+        if valid is not None:
+            valid = np.asarray(valid, dtype=bool)
+            if valid.shape != x.shape:
+                raise InputError(f"{self.path}: valid mask of shape {valid.shape} does not match data {x.shape}")
+            ok &= valid
+        out = from_intensity(x, self.units)
+        ok &= np.isfinite(out)
+        out = np.where(ok, out, np.float32(self.nodata)).astype(self.dtype, copy=False)
+        try:
+            self._ds.write(out, b, window=w)
+        except RasterioError as exc:
+            raise RasterError(f"{self.path}: write failed at {w}: {exc}") from None
+
+    def block_windows(self) -> list:
+        """Windows of the output's tiles (write in these for the least work)."""
+        return [w for _, w in self._ds.block_windows(1)]
+
+    def close(self, *, commit=True):
+        """Finish the file: rename it into place (``commit``) or delete it."""
+        if self._done:
+            return
+        self._done = True
+        try:
+            self._ds.close()
+            if commit:
+                os.replace(self._tmp, self.path)
+        except (RasterioError, OSError) as exc:
+            self._tmp.unlink(missing_ok=True)
+            raise RasterError(f"{self.path}: cannot finish output: {exc}") from None
+        finally:
+            if not commit:
+                self._tmp.unlink(missing_ok=True)
+
+    def abort(self):
+        """Delete the temporary file; the destination is left untouched."""
+        self.close(commit=False)
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, exc_type, exc, tb):
+        self.close(commit=exc_type is None)
+        return False
+
+    def __del__(self):  # a writer dropped without closing must not leave its temporary file
+        try:
+            if not self._done:
+                self.abort()
+        except Exception:
+            pass
+
+
+def open_output(path, like, *, units=None, band_count=None, overwrite=False, dtype="float32") -> SceneWriter:
+    """Create an output GeoTIFF georeferenced like ``like``; see :class:`SceneWriter`.
+
+    Parameters
+    ----------
+    path : str or path-like
+        Destination; a missing directory is created. Never one of the inputs.
+    like : SceneReader or Scene
+        Source of CRS, transform, nodata, band descriptions and tags.
+    units : {'intensity', 'amplitude', 'db'}, optional
+        Output units; default the source's (intensity for a complex source).
+    band_count : int, optional
+        Default the source's number of SAR bands.
+    overwrite : bool
+        Replace an existing output (never an input).
+    dtype : {'float32', 'float64'}
+
+    Notes
+    -----
+    Tiles of 512 x 512, DEFLATE with the floating-point predictor (PREDICTOR=3),
+    BigTIFF when the file could exceed 4 GB. The source's nodata value is kept if no
+    valid output value can equal it (e.g. 0 for linear units), else NaN is used.
+    """
+    return SceneWriter(path, like, units=units, band_count=band_count, overwrite=overwrite, dtype=dtype)
+
+
+# --------------------------------------------------------------------------- whole arrays
+
+@dataclass
+class Scene:
+    """A whole band in memory: intensity, validity, and what is needed to write it back."""
+
+    intensity: np.ndarray
+    valid: np.ndarray
+    units: str
+    profile: dict
+    crs: object
+    transform: object
+    nodata: object
+    path: pathlib.Path
+    descriptions: tuple = ()
+    tags: dict = field(default_factory=dict)
+
+    @property
+    def height(self) -> int:
+        return int(self.intensity.shape[-2])
+
+    @property
+    def width(self) -> int:
+        return int(self.intensity.shape[-1])
+
+    @property
+    def band_count(self) -> int:
+        return 1 if self.intensity.ndim == 2 else int(self.intensity.shape[0])
+
+
+def read_scene(path, units=None, band=1) -> Scene:
+    """Read one SAR band of a raster whole; see :func:`open_scene` for ``units`` and errors."""
+    with open_scene(path, units=units) as reader:
+        intensity, valid = reader.read(band=band)
+        b = reader._check_band(band)
+        desc = reader.descriptions
+        return Scene(
+            intensity=intensity, valid=valid, units=reader.units, profile=reader.profile, crs=reader.crs,
+            transform=reader.transform, nodata=reader.nodata, path=reader.path,
+            descriptions=(desc[b - 1],) if b <= len(desc) else (), tags=dict(reader.tags),
+        )
+
+
+def write_scene(path, intensity, like, *, units=None, valid=None, overwrite=False) -> pathlib.Path:
+    """Write a whole intensity array (``(h, w)`` or ``(bands, h, w)``) like ``like``.
+
+    ``valid`` has the same shape as ``intensity`` (or ``(h, w)``, shared by all bands).
+    Returns the destination path.
+    """
+    x = np.asarray(intensity)
+    if x.ndim not in (2, 3):
+        raise InputError(f"intensity must be 2-D (h, w) or 3-D (bands, h, w), got shape {x.shape}")
+    stack = x[None] if x.ndim == 2 else x
+    h, w = stack.shape[-2:]
+    if (getattr(like, "height", h), getattr(like, "width", w)) != (h, w):
+        raise InputError(f"{path}: array of {w}x{h} does not match the source scene ({like.width}x{like.height})")
+    if valid is not None:
+        valid = np.asarray(valid, dtype=bool)
+        valid = np.broadcast_to(valid if valid.ndim == 3 else valid[None], stack.shape)
+    with open_output(path, like, units=units, band_count=stack.shape[0], overwrite=overwrite) as out:
+        for b in range(stack.shape[0]):
+            out.write(stack[b], None, band=b + 1, valid=None if valid is None else valid[b])
+    return out.path
