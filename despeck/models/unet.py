@@ -1,0 +1,140 @@
+"""Compact U-Net: a multi-scale residual network with a large receptive field at low cost.
+
+Each level runs two 3x3 convolutions with ReLU; the encoder halves the resolution
+with 2x2 average pooling, the decoder doubles it with a 2x2 transposed convolution
+and concatenates the encoder features of the same scale. Most of the arithmetic
+happens at reduced resolution, so the receptive field grows much faster than the cost.
+Like :mod:`despeck.models.logcnn` the output is residual, ``z - f(z)``, in the
+normalised log domain, and there are no normalisation layers.
+
+Inputs whose sides are not multiples of ``2 ** levels`` are padded by reflection
+(replication for inputs too small to reflect) up to the next multiple and the output
+is cropped back, so any size works, odd ones included. Because the pooling grid
+follows the tile origin, tiled inference with a U-Net is close to, but not bit-for-bit
+equal to, whole-scene inference; blending overlapping tiles hides the difference.
+
+References
+----------
+Ronneberger, O., Fischer, P., Brox, T. (2015). U-Net: convolutional networks for
+biomedical image segmentation. MICCAI 2015, LNCS 9351, 234-241, arXiv:1505.04597.
+"""
+
+from __future__ import annotations
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from ..errors import InputError
+from .registry import check_int, register_model
+
+__all__ = ["UNet"]
+
+
+def _block(cin, cout):
+    return nn.Sequential(
+        nn.Conv2d(cin, cout, 3, padding=1), nn.ReLU(inplace=True),
+        nn.Conv2d(cout, cout, 3, padding=1), nn.ReLU(inplace=True),
+    )
+
+
+class UNet(nn.Module):
+    """Residual U-Net in the normalised log domain.
+
+    Parameters
+    ----------
+    widths : list of int
+        Channels per level, finest first; ``len(widths) - 1`` downsampling steps.
+
+    Attributes
+    ----------
+    receptive_field : int
+        An odd upper bound of the side of the square of input pixels that can influence
+        one output pixel (computed layer by layer; the tests check it empirically).
+    """
+
+    def __init__(self, *, widths=(16, 32, 64)):
+        super().__init__()
+        if isinstance(widths, (int, str)) or len(widths) < 2:
+            raise InputError(f"model argument widths must list at least two channel counts, got {widths!r}")
+        widths = [check_int("widths", w, 1) for w in widths]
+        self.widths = widths
+        self.levels = len(widths) - 1
+        self.encoders = nn.ModuleList()
+        cin = 1
+        for w in widths[:-1]:
+            self.encoders.append(_block(cin, w))
+            cin = w
+        self.bottleneck = _block(widths[-2], widths[-1])
+        self.ups = nn.ModuleList()
+        self.decoders = nn.ModuleList()
+        for level in reversed(range(self.levels)):
+            self.ups.append(nn.ConvTranspose2d(widths[level + 1], widths[level], 2, stride=2))
+            self.decoders.append(_block(2 * widths[level], widths[level]))
+        self.head = nn.Conv2d(widths[0], 1, 1)
+        self.receptive_field = self._receptive_field()
+        self._init_weights()
+
+    def _receptive_field(self) -> int:
+        # Walk down and up the deepest path adding (kernel - 1) * jump per layer; a 2x2
+        # pooling adds one pixel at its input scale and a 2x2 stride-2 transposed conv
+        # adds at most one at its input scale (its outputs each see one input pixel,
+        # but which one depends on parity, so count it as a 2-wide kernel).
+        rf, jump = 1, 1
+        for _ in range(self.levels):
+            rf += 2 * 2 * jump      # two 3x3 convolutions
+            rf += 1 * jump          # 2x2 average pooling
+            jump *= 2
+        rf += 2 * 2 * jump          # bottleneck
+        for _ in range(self.levels):
+            rf += 1 * jump          # 2x2 transposed convolution
+            jump //= 2
+            rf += 2 * 2 * jump      # decoder block
+        return rf if rf % 2 == 1 else rf + 1
+
+    def _init_weights(self):
+        for m in self.modules():
+            if isinstance(m, (nn.Conv2d, nn.ConvTranspose2d)):
+                nn.init.kaiming_normal_(m.weight, nonlinearity="relu")
+                nn.init.zeros_(m.bias)
+        with torch.no_grad():
+            self.head.weight.mul_(0.1)
+
+    def forward(self, z: torch.Tensor) -> torch.Tensor:
+        """Map normalised log-intensity ``(N, 1, H, W)`` to its despeckled estimate, same shape."""
+        h, w = z.shape[-2:]
+        m = 2 ** self.levels
+        ph, pw = (-h) % m, (-w) % m
+        x = z
+        if ph or pw:
+            # Reflection needs the pad to be smaller than the side; replicate otherwise.
+            mode = "reflect" if ph < h and pw < w else "replicate"
+            x = F.pad(z, (0, pw, 0, ph), mode=mode)
+        skips = []
+        for enc in self.encoders:
+            x = enc(x)
+            skips.append(x)
+            x = F.avg_pool2d(x, 2)
+        x = self.bottleneck(x)
+        for up, dec in zip(self.ups, self.decoders):
+            x = up(x)
+            x = dec(torch.cat([x, skips.pop()], dim=1))
+        noise = self.head(x)[..., :h, :w]
+        return z - noise
+
+    def extra_repr(self) -> str:
+        return f"widths={self.widths}, receptive_field={self.receptive_field}"
+
+
+register_model(
+    "unet-xs", UNet, widths=[8, 16],
+    description="residual U-Net, 1 downsampling, 8-16 channels (~6k parameters), for tests and quick trials",
+)
+register_model(
+    "unet-s", UNet, widths=[16, 32, 64],
+    description="residual U-Net, 2 downsamplings, 16-32-64 channels (~117k parameters)",
+)
+register_model(
+    "unet-m", UNet, widths=[16, 32, 64, 128],
+    description="residual U-Net, 3 downsamplings, 16-32-64-128 channels (~470k parameters)",
+)

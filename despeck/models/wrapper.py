@@ -1,0 +1,219 @@
+"""The intensity-in, intensity-out wrapper around a log-domain network.
+
+A :class:`Despeckler` owns everything between linear SAR intensity and the plain
+network: the log transform, the handling of invalid (nodata) pixels, the
+calibration-independent normalisation and the bias correction. Networks only ever
+see ``z = (ln I - log_offset) / log_scale``, where ``log_offset`` is the mean
+log-intensity of the scene's valid pixels; multiplying a scene by any gain ``c``
+shifts ``ln I`` and ``log_offset`` by the same ``ln c``, so ``z`` and hence the
+estimate's shape are unchanged and the output scales by ``c``. That is what lets one
+model work on calibrated backscatter anywhere between 1e-4 and 10.
+
+Bias correction (what the wrapper's ``log_bias`` must be, per training loss, for the
+output to keep the mean backscatter of homogeneous areas):
+
+* Gamma negative log-likelihood-type loss ``y + I exp(-y)``: its minimiser is
+  ``y = ln E[I | context]``, so ``exp(y)`` already estimates the mean intensity;
+  ``log_bias = 0``.
+* Squared error on the log against a **noisy** log target (an independent L-look
+  view): the minimiser is ``E[ln I] = ln R + psi(L) - ln L``; the correction
+  ``ln L - psi(L)`` (:func:`despeck.speckle.log_bias_correction`) must be added.
+  The trainer adds it to the target per sample (exact when the looks vary between
+  samples), so models it exports carry ``log_bias = 0``; a network trained against
+  uncorrected noisy log targets with fixed L needs ``log_bias = ln L - psi(L)`` here.
+* Squared error on the log against the **clean** log target: the minimiser is
+  ``E[ln R | context]``; the network learns the ``psi(L) - ln L`` offset itself, so
+  ``log_bias = 0``. On a homogeneous area this makes the *geometric* mean of the output
+  unbiased; the arithmetic mean is then higher than R by about ``exp(s^2 / 2)``, where
+  ``s^2`` is the residual variance of the log output over the area (log-normal
+  approximation; about 1-3 % for a well-smoothed 1-look area).
+
+References
+----------
+Chierchia, G., Cozzolino, D., Poggi, G., Verdoliva, L. (2017). SAR image despeckling
+through convolutional neural networks. IGARSS 2017, arXiv:1704.00275.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import torch
+from torch import nn
+
+from ..errors import InputError
+from ..speckle import check_looks
+
+__all__ = ["Despeckler", "DEFAULT_LOG_SCALE"]
+
+# Two nepers (~8.7 dB) per unit: 1-look speckle has a log standard deviation of
+# pi / sqrt(6) ~ 1.28 and scene contrast is a few nepers, so normalised values stay
+# within a few units -- a comfortable range for ReLU networks (common practice).
+DEFAULT_LOG_SCALE = 2.0
+
+# Smallest intensity used before the log; valid pixels are positive anyway, this only
+# keeps masked-out zeros finite before they are replaced by the fill value.
+_TINY = float(np.finfo(np.float32).tiny)
+
+
+def _looks_value(looks):
+    if isinstance(looks, (list, tuple)):
+        if len(looks) != 2:
+            raise InputError(f"looks must be a number or a [min, max] range, got {looks!r}")
+        lo, hi = check_looks(looks[0]), check_looks(looks[1])
+        if lo > hi:
+            raise InputError(f"looks range must be [min, max] with min <= max, got {looks!r}")
+        return [lo, hi]
+    return check_looks(looks)
+
+
+class Despeckler(nn.Module):
+    """Linear intensity in, linear intensity out, around a normalised log-domain network.
+
+    Parameters
+    ----------
+    network : nn.Module
+        Maps normalised log-intensity ``(N, 1, H, W)`` to an estimate of the same shape
+        (see :func:`despeck.models.create_model`); must expose ``receptive_field``.
+    looks : float or [float, float]
+        Number of looks the network was trained for (a range if trained on several).
+    log_bias : float
+        Added to the log estimate before exponentiating; see the module notes for the
+        value each training loss needs.
+    log_scale : float
+        Nepers per normalised unit (default :data:`DEFAULT_LOG_SCALE`).
+    metadata : dict, optional
+        Free-form, JSON-serialisable description kept with the model (training data,
+        metrics, ...); written into model files.
+
+    Attributes
+    ----------
+    receptive_field : int
+        Odd side, in pixels, of the input square that can influence one output pixel.
+    """
+
+    def __init__(self, network: nn.Module, *, looks, log_bias: float = 0.0,
+                 log_scale: float = DEFAULT_LOG_SCALE, metadata=None):
+        super().__init__()
+        rf = getattr(network, "receptive_field", None)
+        if isinstance(rf, bool) or not isinstance(rf, int) or rf < 1 or rf % 2 == 0:
+            raise InputError(
+                f"network must expose an odd integer receptive_field, got {rf!r} on {type(network).__name__}"
+            )
+        self.network = network
+        self.looks = _looks_value(looks)
+        self.log_bias = float(log_bias)
+        self.log_scale = float(log_scale)
+        if not math.isfinite(self.log_bias):
+            raise InputError(f"log_bias must be finite, got {log_bias!r}")
+        if not (math.isfinite(self.log_scale) and self.log_scale > 0):
+            raise InputError(f"log_scale must be a positive number, got {log_scale!r}")
+        self.metadata = dict(metadata or {})
+
+    @property
+    def receptive_field(self) -> int:
+        return int(self.network.receptive_field)
+
+    # ------------------------------------------------------------------ normalisation
+
+    @staticmethod
+    def scene_log_offset(intensity_sample) -> float:
+        """Normalisation constant for a whole scene: the mean of ``ln I`` over valid values.
+
+        Parameters
+        ----------
+        intensity_sample : array_like
+            Intensity values from the scene (any shape, e.g. a random sample of pixels);
+            non-finite and non-positive values are ignored as invalid.
+
+        Raises
+        ------
+        InputError
+            If no value is valid.
+        """
+        v = np.asarray(intensity_sample, dtype=np.float64).ravel()
+        v = v[np.isfinite(v) & (v > 0)]
+        if v.size == 0:
+            raise InputError("cannot normalise a scene without any valid (finite, positive) intensity")
+        return float(np.mean(np.log(v)))
+
+    @staticmethod
+    def effective_valid(intensity: torch.Tensor, valid=None) -> torch.Tensor:
+        """Pixels used as data: the given mask, and only finite positive intensities."""
+        ok = torch.isfinite(intensity) & (intensity > 0)
+        if valid is not None:
+            valid = torch.as_tensor(valid, device=intensity.device)
+            if valid.shape != intensity.shape:
+                raise InputError(
+                    f"valid mask shape {tuple(valid.shape)} differs from intensity shape {tuple(intensity.shape)}"
+                )
+            ok = ok & valid.to(torch.bool)
+        return ok
+
+    def log_offsets(self, log_intensity: torch.Tensor, valid: torch.Tensor, log_offset=None) -> torch.Tensor:
+        """Per-sample offsets ``(N, 1, 1, 1)``: given, or the mean log over each sample's valid pixels."""
+        n = log_intensity.shape[0]
+        if log_offset is None:
+            w = valid.to(log_intensity.dtype)
+            count = w.sum(dim=(1, 2, 3))
+            total = (torch.where(valid, log_intensity, torch.zeros_like(log_intensity))).sum(dim=(1, 2, 3))
+            # A sample without valid pixels gets offset 0; its output is all fill anyway.
+            off = torch.where(count > 0, total / count.clamp(min=1), torch.zeros_like(total))
+        else:
+            off = torch.as_tensor(log_offset, dtype=log_intensity.dtype, device=log_intensity.device)
+            if off.ndim == 0:
+                off = off.expand(n)
+            off = off.reshape(-1)
+            if off.shape[0] != n:
+                raise InputError(f"log_offset must be a float or have one value per sample ({n}), got {off.shape[0]}")
+            if not bool(torch.isfinite(off).all()):
+                raise InputError("log_offset must be finite")
+        return off.reshape(n, 1, 1, 1)
+
+    def normalise(self, intensity: torch.Tensor, valid=None, log_offset=None):
+        """Return ``(z, offset, valid)``: the network input, per-sample offsets and the valid mask.
+
+        Invalid pixels are filled with the offset, i.e. ``z = 0`` there (the scene's mean
+        log-intensity), so they add no spurious edges; their outputs are meaningless and
+        the caller masks them.
+        """
+        if intensity.ndim != 4 or intensity.shape[1] != 1:
+            raise InputError(f"intensity must have shape (N, 1, H, W), got {tuple(intensity.shape)}")
+        intensity = intensity.to(torch.float32)
+        valid = self.effective_valid(intensity, valid)
+        x = torch.log(intensity.clamp(min=_TINY).nan_to_num(nan=1.0, posinf=1.0))
+        off = self.log_offsets(x, valid, log_offset)
+        x = torch.where(valid, x, off.expand_as(x))
+        z = (x - off) / self.log_scale
+        return z, off, valid
+
+    def denormalise(self, y: torch.Tensor, offset: torch.Tensor) -> torch.Tensor:
+        """Natural-log intensity estimate ``y * log_scale + offset + log_bias``."""
+        return y * self.log_scale + offset + self.log_bias
+
+    def forward(self, intensity: torch.Tensor, valid=None, log_offset=None) -> torch.Tensor:
+        """Despeckle linear intensity.
+
+        Parameters
+        ----------
+        intensity : Tensor, (N, 1, H, W)
+            Linear intensity (power), float32.
+        valid : Tensor of bool, (N, 1, H, W), optional
+            False for nodata pixels; non-finite and non-positive pixels are always invalid.
+        log_offset : float or Tensor (N,), optional
+            Scene normalisation constant (:meth:`scene_log_offset`); tiled inference passes
+            the scene's value so every tile is normalised identically. ``None`` uses the
+            mean log over each sample's valid pixels.
+
+        Returns
+        -------
+        Tensor, (N, 1, H, W)
+            Linear intensity estimate, float32.
+        """
+        z, off, _ = self.normalise(intensity, valid, log_offset)
+        y = self.network(z)
+        return torch.exp(self.denormalise(y.to(torch.float32), off))
+
+    def extra_repr(self) -> str:
+        return f"looks={self.looks}, log_bias={self.log_bias:.6g}, log_scale={self.log_scale:g}"

@@ -1,0 +1,285 @@
+"""Tests for despeck.models: every registered network, the intensity wrapper and the model file."""
+
+import json
+import math
+import pickle
+
+import numpy as np
+import pytest
+import torch
+from scipy import special
+
+from despeck.errors import InputError, ModelFileError
+from despeck.models import (
+    Despeckler,
+    create_model,
+    list_models,
+    load_model_file,
+    read_model_metadata,
+    save_model_file,
+)
+from despeck.models import modelfile
+
+torch.set_num_threads(2)
+
+
+@pytest.fixture(autouse=True)
+def _seed():
+    torch.manual_seed(0)
+
+
+# ----------------------------------------------------------------------------- networks
+
+@pytest.mark.parametrize("name", list_models())
+@pytest.mark.parametrize("shape", [(2, 1, 9, 13), (1, 1, 17, 6), (1, 1, 1, 3)])
+def test_every_model_forward_backward(name, shape):
+    # Generic model test (common practice, as in timm's tests/test_models.py):
+    # same shape out, no NaN, every parameter receives a non-zero gradient.
+    net = create_model(name)
+    z = torch.randn(shape, requires_grad=True)
+    y = net(z)
+    assert y.shape == z.shape
+    assert torch.isfinite(y).all()
+    ((y - 0.3) ** 2).mean().backward()
+    assert torch.isfinite(z.grad).all()
+    for pname, p in net.named_parameters():
+        assert p.grad is not None, pname
+        assert torch.isfinite(p.grad).all(), pname
+        if shape[-2] > 1:  # a 1-pixel-high input cannot reach every kernel tap
+            assert p.grad.abs().sum() > 0, pname
+
+
+@pytest.mark.parametrize("name", list_models())
+def test_receptive_field_bounds_influence(name):
+    # The gradient of one output pixel w.r.t. the input is zero outside the receptive field.
+    net = create_model(name)
+    rf = net.receptive_field
+    assert isinstance(rf, int) and rf % 2 == 1
+    side = rf + 24
+    z = torch.randn(1, 1, side, side, requires_grad=True)
+    c = side // 2
+    net(z)[0, 0, c, c].backward()
+    rows, cols = torch.nonzero(z.grad[0, 0] != 0, as_tuple=True)
+    assert rows.max() - rows.min() + 1 <= rf
+    assert cols.max() - cols.min() + 1 <= rf
+    if name.startswith("logcnn"):  # a plain conv stack reaches exactly its receptive field
+        assert rows.max() - rows.min() + 1 == rf
+
+
+def test_default_logcnn_is_small():
+    # Issue 4: the default residual log CNN has at most 150k parameters.
+    assert sum(p.numel() for p in create_model("logcnn-s").parameters()) <= 150_000
+
+
+def test_create_model_rejects_bad_arguments():
+    with pytest.raises(InputError, match="unknown model 'nope'.*logcnn-s"):
+        create_model("nope")
+    with pytest.raises(InputError, match="no argument 'widht'.*allowed: .*width"):
+        create_model("logcnn-s", widht=3)
+    with pytest.raises(InputError, match="depth must be an integer >= 2"):
+        create_model("logcnn-s", depth=1)
+    net = create_model("unet-s", widths=[4, 8])
+    assert net.architecture == "unet-s" and net.architecture_kwargs == {"widths": [4, 8]}
+
+
+def test_logcnn_crop_of_output_equals_output_of_crop():
+    # No per-tile statistics: with a fixed log offset, a tile with a margin of half the
+    # receptive field reproduces the whole-scene output exactly (tiling contract).
+    model = Despeckler(create_model("logcnn-xs"), looks=1).eval()
+    intensity = torch.from_numpy(np.random.default_rng(1).gamma(1.0, 1.0, (1, 1, 40, 44)).astype(np.float32))
+    off = Despeckler.scene_log_offset(intensity.numpy())
+    h = model.receptive_field // 2
+    with torch.no_grad():
+        full = model(intensity, log_offset=off)
+        tile = model(intensity[..., 5:35, 8:30], log_offset=off)
+    torch.testing.assert_close(tile[..., h:-h, h:-h], full[..., 5 + h:35 - h, 8 + h:30 - h], rtol=1e-5, atol=0)
+
+
+# ----------------------------------------------------------------------------- wrapper
+
+class _LogBoxMean(torch.nn.Module):
+    """Hand-built 'network': the k x k mean of the normalised log (a linear smoother)."""
+
+    def __init__(self, k):
+        super().__init__()
+        self.k = k
+        self.receptive_field = k
+
+    def forward(self, z):
+        return torch.nn.functional.avg_pool2d(z, self.k, stride=1, padding=self.k // 2, count_include_pad=False)
+
+
+@pytest.mark.parametrize("looks", [1.0, 4.0])
+def test_log_bias_correction_on_constant_scene(looks):
+    # Constant reflectivity R with L-look Gamma speckle, a k x k mean in the log domain.
+    # Theory (METHODS.md section 1, checked against scipy): E[ln n] = psi(L) - ln L, so the
+    # geometric mean of the uncorrected output is R exp(psi(L) - ln L) and adding
+    # log_bias = ln L - psi(L) makes it exactly R. The arithmetic mean of the corrected
+    # output is R e^b (E[n^(1/N)])^N with N = k^2 independent pixels and
+    # E[n^a] = Gamma(L + a) / (Gamma(L) L^a) (Gamma moments; Johnson, Kotz, Balakrishnan 1994).
+    k, R = 5, 0.0123
+    N = k * k
+    rng = np.random.default_rng(7)
+    intensity = (R * rng.gamma(looks, 1.0 / looks, (1, 1, 384, 384))).astype(np.float32)
+    bias = math.log(looks) - special.digamma(looks)
+    model = Despeckler(_LogBoxMean(k), looks=looks, log_bias=bias)
+    plain = Despeckler(_LogBoxMean(k), looks=looks, log_bias=0.0)
+    with torch.no_grad():
+        out = model(torch.from_numpy(intensity))[0, 0].double().numpy()[k:-k, k:-k]
+        raw = plain(torch.from_numpy(intensity))[0, 0].double().numpy()[k:-k, k:-k]
+    logs = np.log(out)
+    # Overlapping windows correlate outputs; N pixels per independent sample is conservative.
+    se_log = math.sqrt(special.polygamma(1, looks) / N / (logs.size / N))
+    assert abs(logs.mean() - math.log(R)) < 4 * se_log
+    assert abs(np.log(raw).mean() - (math.log(R) + special.digamma(looks) - math.log(looks))) < 4 * se_log
+    a = 1.0 / N
+    ratio = math.exp(bias) * math.exp(N * (special.gammaln(looks + a) - special.gammaln(looks) - a * math.log(looks)))
+    se_mean = out.std() / math.sqrt(out.size / N)
+    assert abs(out.mean() - R * ratio) < 4 * se_mean
+    assert ratio > 1.0  # the arithmetic mean sits slightly above R (Jensen), as the docs say
+
+
+def test_wrapper_is_calibration_independent():
+    # Scaling a scene by c scales the estimate by c (the normalisation cancels the gain),
+    # over the 1e-4..10 backscatter range of issue 4.
+    model = Despeckler(create_model("logcnn-xs"), looks=1).eval()
+    base = torch.from_numpy(np.random.default_rng(3).gamma(1.0, 1.0, (2, 1, 23, 19)).astype(np.float32))
+    with torch.no_grad():
+        ref = model(base)
+        for c in (1e-4, 1e-2, 10.0):
+            torch.testing.assert_close(model(base * c) / c, ref, rtol=2e-4, atol=0)
+
+
+def test_wrapper_invalid_pixels_are_filled_and_ignored():
+    model = Despeckler(create_model("logcnn-xs"), looks=1).eval()
+    rng = np.random.default_rng(4)
+    intensity = torch.from_numpy(rng.gamma(1.0, 0.05, (1, 1, 30, 30)).astype(np.float32))
+    valid = torch.ones_like(intensity, dtype=torch.bool)
+    valid[..., :6, :] = False
+    a, b = intensity.clone(), intensity.clone()
+    a[~valid] = 0.0
+    b[~valid] = float("nan")
+    with torch.no_grad():
+        ya, yb = model(a, valid), model(b, valid)
+        z, off, v = model.normalise(a, valid)
+    assert torch.equal(ya, yb) and torch.isfinite(ya).all()
+    # Offset: mean log over valid pixels; invalid pixels are set to it (z = 0).
+    assert off.item() == pytest.approx(Despeckler.scene_log_offset(intensity[valid].numpy()), abs=1e-5)
+    assert torch.all(z[~valid] == 0)
+    # Non-positive pixels are invalid even when the mask says otherwise.
+    _, _, v2 = model.normalise(a, None)
+    assert torch.equal(v2, valid)
+    with pytest.raises(InputError, match="without any valid"):
+        Despeckler.scene_log_offset(np.array([0.0, -1.0, np.nan]))
+
+
+def test_wrapper_rejects_bad_input():
+    net = create_model("logcnn-xs")
+    with pytest.raises(InputError, match="looks"):
+        Despeckler(net, looks=0)
+    with pytest.raises(InputError, match="receptive_field"):
+        Despeckler(torch.nn.Identity(), looks=1)
+    with pytest.raises(InputError, match=r"\(N, 1, H, W\)"):
+        Despeckler(net, looks=1)(torch.ones(3, 3))
+
+
+# ----------------------------------------------------------------------------- model file
+
+@pytest.mark.parametrize("name", ["logcnn-xs", "unet-xs"])
+def test_save_load_bit_identical(tmp_path, name):
+    model = Despeckler(create_model(name), looks=[1.0, 4.0], log_bias=0.25, log_scale=1.5,
+                       metadata={"training": {"scenes": 3}})
+    path = save_model_file(tmp_path / "m.safetensors", model, metrics={"val_psnr_db": 12.5})
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["m.safetensors"]  # no temp file left
+    loaded = load_model_file(path)
+    assert not loaded.training
+    x = torch.from_numpy(np.random.default_rng(5).gamma(1.0, 1.0, (2, 1, 21, 27)).astype(np.float32))
+    with torch.no_grad():
+        assert torch.equal(loaded(x), model.eval()(x))
+    assert loaded.looks == [1.0, 4.0] and loaded.log_bias == 0.25 and loaded.log_scale == 1.5
+    assert loaded.metadata["metrics"] == {"val_psnr_db": 12.5}
+    assert loaded.metadata["training"] == {"scenes": 3}
+    meta = read_model_metadata(path)
+    assert meta["architecture"]["name"] == name and meta["format_version"] == 1
+    assert meta["units"] == "intensity" and meta["package_version"]
+
+
+class _Boom:
+    """Unpickling this touches a marker file: proof that code would have run."""
+
+    def __init__(self, marker):
+        self.marker = marker
+
+    def __reduce__(self):
+        return (open, (str(self.marker), "w"))
+
+
+def test_loading_never_executes_code(tmp_path):
+    marker = tmp_path / "executed"
+    evil = tmp_path / "evil.safetensors"
+    evil.write_bytes(pickle.dumps({"weights": _Boom(marker)}))
+    with pytest.raises(ModelFileError, match="evil.safetensors") as info:
+        load_model_file(evil)
+    assert "\n" not in str(info.value)
+    assert not marker.exists()
+    # A torch.save checkpoint (zip + pickle) is rejected the same way.
+    ckpt = tmp_path / "ckpt.safetensors"
+    torch.save({"x": _Boom(marker)}, ckpt)
+    with pytest.raises(ModelFileError, match="ckpt.safetensors"):
+        load_model_file(ckpt)
+    assert not marker.exists()
+
+
+def _rewrite_header(path, out, change):
+    # Rebuild a safetensors file with an edited description header (format per the
+    # safetensors spec: 8-byte little-endian header length, JSON header, raw data).
+    raw = path.read_bytes()
+    n = int.from_bytes(raw[:8], "little")
+    header = json.loads(raw[8:8 + n])
+    desc = json.loads(header["__metadata__"]["despeck"])
+    change(desc, header)
+    header["__metadata__"]["despeck"] = json.dumps(desc)
+    blob = json.dumps(header).encode()
+    out.write_bytes(len(blob).to_bytes(8, "little") + blob + raw[8 + n:])
+
+
+def test_bad_model_files_give_one_line_errors(tmp_path):
+    good = save_model_file(tmp_path / "good.safetensors", Despeckler(create_model("logcnn-xs"), looks=1))
+    cases = {}
+    newer = tmp_path / "newer.safetensors"
+    _rewrite_header(good, newer, lambda d, h: d.update(format_version=modelfile.FORMAT_VERSION + 1))
+    cases[newer] = "newer than this despeck reads"
+    foreign = tmp_path / "foreign.safetensors"
+    _rewrite_header(good, foreign, lambda d, h: d.update(format="other-tool"))
+    cases[foreign] = "not a despeck model"
+    unknown_arch = tmp_path / "arch.safetensors"
+    _rewrite_header(good, unknown_arch, lambda d, h: d["architecture"].update(name="bignet"))
+    cases[unknown_arch] = "cannot build"
+    wrong_shape = tmp_path / "shape.safetensors"
+    _rewrite_header(good, wrong_shape, lambda d, h: d["architecture"]["kwargs"].update(width=8))
+    cases[wrong_shape] = "do not fit"
+    truncated = tmp_path / "truncated.safetensors"
+    truncated.write_bytes(good.read_bytes()[:100])
+    cases[truncated] = "not a readable safetensors"
+    from safetensors.torch import save_file
+    plain = tmp_path / "plain.safetensors"
+    save_file({"w": torch.zeros(2)}, str(plain))
+    cases[plain] = "not a despeck model"
+    cases[tmp_path / "missing.safetensors"] = "does not exist"
+    for path, message in cases.items():
+        with pytest.raises(ModelFileError) as info:
+            load_model_file(path)
+        text = str(info.value)
+        assert path.name in text and message in text and "\n" not in text, text
+
+
+def test_save_errors(tmp_path):
+    model = Despeckler(create_model("logcnn-xs"), looks=1)
+    with pytest.raises(ModelFileError, match="does not exist"):
+        save_model_file(tmp_path / "no" / "m.safetensors", model)
+    with pytest.raises(InputError, match="not built by"):
+        save_model_file(tmp_path / "m.safetensors", Despeckler(_LogBoxMean(3), looks=1))
+    with pytest.raises(InputError, match="reserved"):
+        save_model_file(tmp_path / "m.safetensors", model, architecture="x")
+    with pytest.raises(InputError, match="JSON"):
+        save_model_file(tmp_path / "m.safetensors", model, metrics={"x": object()})
