@@ -1,0 +1,617 @@
+"""Tiled, streamed application of a trained despeckler to arrays and raster files.
+
+:func:`despeckle_array` runs a :class:`despeck.models.Despeckler` over an in-memory
+intensity array; :func:`despeckle_file` runs it over a raster file of any size and
+writes a GeoTIFF with the input's georeferencing, nodata, band descriptions and tags.
+Both cut the scene into constant-shape overlapping tiles (:mod:`despeck.tiling`),
+feed them to the network in batches and blend the results, and both go through the
+same streaming loop: full-width strips of input rows are read as the tiles need them,
+and each finished strip of output rows is written and forgotten, so memory depends on
+the scene's width and the tile size, never on its height.
+
+Every tile of a scene is normalised with one scene-level log offset (the mean log
+intensity of a decimated sample of valid pixels), so tiles are processed identically
+and blending has nothing to hide for a purely convolutional network. Invalid pixels
+(nodata, non-finite, non-positive) are excluded from the network's input by the
+Despeckler's documented fill -- the scene's log offset, i.e. a normalised value of 0
+-- and are restored as the input value (arrays) or nodata (files) in the output.
+
+Speed settings: torch threads (default all cores available to the process),
+``torch.inference_mode``, denormals flushed to zero, channels-last memory format only
+when a timing on the first tiles shows it is faster, and optional bfloat16 autocast
+on CPUs with native bf16 instructions.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import math
+import os
+import pathlib
+import time
+import warnings
+
+import numpy as np
+import torch
+from tqdm.auto import tqdm
+
+from .errors import InputError
+from .tiling import TileGrid, default_tiling
+
+__all__ = [
+    "despeckle_array",
+    "despeckle_file",
+    "bf16_supported",
+    "resolve_tiling",
+    "model_mismatch_notes",
+    "InferenceWarning",
+]
+
+# Pixels per batch the default batch size aims for: enough work per call to keep both
+# cores busy, small enough that a 64-channel network's activations stay a few hundred MB.
+_BATCH_PIXELS = 1 << 20
+
+# Upper bound of the scene sample used for the log offset (same as the file reader's).
+_SAMPLE_PIXELS = 1_000_000
+
+# GDAL's block cache defaults to 5 % of RAM and keeps written blocks until it is full,
+# which would make peak memory grow with the output's size; streaming needs only a
+# few rows of blocks at a time.
+_GDAL_CACHE_BYTES = 64 * 1024 * 1024
+
+
+class InferenceWarning(UserWarning):
+    """The model may not suit the input (units, looks), or a speed option was unavailable."""
+
+
+# --------------------------------------------------------------------------- checks
+
+def _check_model(model):
+    rf = getattr(model, "receptive_field", None)
+    if not isinstance(model, torch.nn.Module) or isinstance(rf, bool) or not isinstance(rf, (int, np.integer)):
+        raise InputError(
+            f"model must be a despeck.models.Despeckler (an nn.Module with an integer receptive_field), "
+            f"got {type(model).__name__}"
+        )
+    if rf < 1 or rf % 2 == 0:
+        raise InputError(f"model receptive_field must be a positive odd integer, got {rf}")
+    return int(rf)
+
+
+def _size_multiple(model) -> int:
+    """Side multiple at which every tile sees the same pooling grid (1 for plain CNNs)."""
+    for obj in (model, getattr(model, "network", None)):
+        if obj is None:
+            continue
+        m = getattr(obj, "size_multiple", None)
+        if isinstance(m, (int, np.integer)) and m >= 1:
+            return int(m)
+        levels = getattr(obj, "levels", None)
+        if isinstance(levels, (int, np.integer)) and levels >= 0:
+            return 2 ** int(levels)
+    return 1
+
+
+def _positive_int(name, value, minimum=1):
+    if value is None:
+        return None
+    if isinstance(value, bool) or not isinstance(value, (int, np.integer)):
+        if isinstance(value, float) and value.is_integer():
+            value = int(value)
+        else:
+            raise InputError(f"{name} must be an integer >= {minimum}, got {value!r}")
+    if value < minimum:
+        raise InputError(f"{name} must be an integer >= {minimum}, got {value!r}")
+    return int(value)
+
+
+def resolve_tiling(shape, model, *, tile=None, overlap=None) -> TileGrid:
+    """The tile grid used for a scene of ``shape`` with ``model``.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        Scene ``(rows, cols)``.
+    model : Despeckler
+        Supplies ``receptive_field`` (and the size multiple of multi-scale networks).
+    tile : int, optional
+        Largest tile side in pixels; default from :func:`despeck.tiling.default_tiling`.
+        Along each axis the tiler then takes the smallest side, not above this, that
+        needs no more tiles, so little work is spent on padding past the scene border.
+    overlap : int, optional
+        Pixels shared by neighbouring tiles; at least the receptive field minus one.
+
+    Raises
+    ------
+    InputError
+        Tile smaller than the receptive field, overlap too small or not below the tile.
+    """
+    rf = _check_model(model)
+    multiple = _size_multiple(model)
+    d_tile, d_overlap = default_tiling(rf, multiple)
+    tile = _positive_int("tile", tile)
+    overlap = _positive_int("overlap", overlap, 0)
+    margin = rf // 2
+    if tile is not None and tile < rf:
+        raise InputError(f"tile ({tile}) is smaller than the model's receptive field ({rf} pixels); use at least {rf}")
+    if overlap is None:
+        overlap = d_overlap
+        if tile is not None and overlap >= tile:
+            overlap = rf - 1
+    elif overlap < rf - 1:
+        raise InputError(
+            f"overlap ({overlap}) is smaller than the model's receptive field minus one ({rf - 1}); use at least {rf - 1}"
+        )
+    if tile is None:
+        tile = max(d_tile, overlap + 8 * multiple)
+    if overlap >= tile:
+        raise InputError(f"overlap ({overlap}) must be smaller than the tile size ({tile})")
+    return TileGrid.fitted(shape, tile, overlap, margin, multiple=multiple)
+
+
+def bf16_supported() -> bool:
+    """Whether this CPU has native bfloat16 arithmetic (AVX512-BF16 or AMX-BF16).
+
+    Reads the CPU flags (``/proc/cpuinfo`` on Linux) and asks oneDNN as well; without
+    native instructions bf16 is emulated and slower than float32.
+    """
+    flags = set()
+    try:
+        with open("/proc/cpuinfo", encoding="ascii", errors="ignore") as fh:
+            for line in fh:
+                if line.startswith("flags"):
+                    flags.update(line.split(":", 1)[1].split())
+                    break
+    except OSError:
+        pass
+    native = bool(flags & {"avx512_bf16", "amx_bf16"})
+    if not flags:
+        # No cpuinfo (not Linux): trust oneDNN's own check.
+        try:
+            native = bool(torch.ops.mkldnn._is_mkldnn_bf16_supported())
+        except Exception:  # noqa: BLE001 - private API may vanish
+            native = False
+    return native
+
+
+def _default_threads() -> int:
+    try:
+        return len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - not Linux
+        return os.cpu_count() or 1
+
+
+def _scene_offset(model, sample):
+    fn = getattr(model, "scene_log_offset", None)
+    if fn is None:
+        return None
+    return float(fn(sample))
+
+
+def _array_sample(intensity, valid):
+    step = max(1, math.ceil(math.sqrt(intensity.size / _SAMPLE_PIXELS)))
+    sub, ok = intensity[::step, ::step], valid[::step, ::step]
+    return sub[ok].astype(np.float64)
+
+
+# --------------------------------------------------------------------------- the runner
+
+@contextlib.contextmanager
+def _torch_settings(threads):
+    old_threads = torch.get_num_threads()
+    torch.set_num_threads(threads)
+    # Denormal activations (from tiny weights times tiny values) can slow x86 float
+    # arithmetic by orders of magnitude; they carry no information here.
+    torch.set_flush_denormal(True)
+    try:
+        with torch.inference_mode():
+            yield
+    finally:
+        torch.set_flush_denormal(False)
+        torch.set_num_threads(old_threads)
+
+
+class _TileRunner:
+    """Runs batches of tiles through the model with the chosen speed settings.
+
+    When ``channels_last`` is None the first four batches decide it: one warm-up and
+    one timed batch in each memory format (their results are used, nothing is wasted),
+    then the faster format is kept.
+    """
+
+    def __init__(self, model, *, log_offset, bf16, channels_last):
+        self.model = model
+        self.log_offset = log_offset
+        self.bf16 = bf16
+        self.channels_last = channels_last
+        self._trial = [] if channels_last is None else None
+        self._converted = False
+
+    def _set_format(self, cl):
+        fmt = torch.channels_last if cl else torch.contiguous_format
+        self.model.to(memory_format=fmt)
+        self._converted = self._converted or cl
+
+    def restore(self):
+        if self._converted:
+            self.model.to(memory_format=torch.contiguous_format)
+
+    def __call__(self, tiles: np.ndarray, valid: np.ndarray) -> np.ndarray:
+        if self._trial is not None:
+            cl = len(self._trial) % 2 == 1
+            self._set_format(cl)
+            start = time.perf_counter()
+            out = self._forward(tiles, valid, cl)
+            self._trial.append((cl, time.perf_counter() - start, tiles.shape[0]))
+            if len(self._trial) == 4:
+                timed = {cl: t / n for cl, t, n in self._trial[2:]}
+                self.channels_last = timed[True] < timed[False]
+                self._set_format(self.channels_last)
+                self._trial = None
+            return out
+        return self._forward(tiles, valid, self.channels_last)
+
+    def _forward(self, tiles, valid, cl):
+        x = torch.from_numpy(tiles).unsqueeze(1)
+        v = torch.from_numpy(valid).unsqueeze(1)
+        if cl:
+            x = x.contiguous(memory_format=torch.channels_last)
+            v = v.contiguous(memory_format=torch.channels_last)
+        with torch.autocast("cpu", dtype=torch.bfloat16, enabled=self.bf16):
+            y = self.model(x, valid=v, log_offset=self.log_offset)
+        return y.to(torch.float32).squeeze(1).contiguous().numpy()
+
+
+# --------------------------------------------------------------------------- streaming
+
+def _read_plan(rows_axis, chunk_rows):
+    """For each row of tiles: the first scene row still needed and the row to read up to."""
+    count = rows_axis.count
+    ranges = [rows_axis.source_range(i) for i in range(count)]
+    keep = [0] * count
+    low = rows_axis.length
+    for i in reversed(range(count)):
+        low = min(low, ranges[i][0])
+        keep[i] = low
+    upto = [min(rows_axis.length, -(-hi // chunk_rows) * chunk_rows) for _, hi in ranges]
+    for i in range(1, count):
+        upto[i] = max(upto[i], upto[i - 1])
+    return keep, upto
+
+
+def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_bar, chunk_rows=1):
+    """Run every tile of ``grid`` through ``runner`` and emit finished rows in order.
+
+    ``read_rows(r0, r1) -> (intensity, valid)`` returns scene rows ``[r0, r1)``, full width;
+    ``emit_rows(r0, r1, estimate, valid)`` receives finished rows (``estimate`` is only
+    meaningful where ``valid``). Input rows are kept in a buffer that never holds more
+    than one tile height plus one read chunk; the blend accumulator holds one tile
+    height. Neither depends on the number of scene rows.
+    """
+    rows, cols = grid.rows, grid.cols
+    width = grid.shape[1]
+    keep, upto = _read_plan(rows, chunk_rows)
+    capacity = max(u - k for k, u in zip(keep, upto))
+    buf = np.empty((capacity, width), dtype=np.float32)
+    buf_valid = np.empty((capacity, width), dtype=bool)
+    b0 = b1 = 0  # scene rows held in buf[: b1 - b0]
+    acc = np.zeros((rows.tile, width), dtype=np.float32)
+    a0 = 0  # scene row of acc[0]
+    done = 0
+    tr, tc = grid.tile_shape
+    batch_in = np.empty((batch_size, tr, tc), dtype=np.float32)
+    batch_ok = np.empty((batch_size, tr, tc), dtype=bool)
+    col_index = [cols.source_index(j) for j in range(cols.count)]
+    for i in range(rows.count):
+        # Slide the input buffer: forget rows no later tile needs, then read on.
+        drop = keep[i] - b0
+        if drop > 0:
+            held = b1 - keep[i]
+            buf[:held] = buf[drop : drop + held]
+            buf_valid[:held] = buf_valid[drop : drop + held]
+            b0 = keep[i]
+        while b1 < upto[i]:
+            r1 = min(upto[i], b1 + chunk_rows)
+            x, ok = read_rows(b1, r1)
+            buf[b1 - b0 : r1 - b0] = x
+            buf_valid[b1 - b0 : r1 - b0] = ok
+            b1 = r1
+        row_index = rows.source_index(i) - b0
+        for j0 in range(0, cols.count, batch_size):
+            js = range(j0, min(cols.count, j0 + batch_size))
+            for n, j in enumerate(js):
+                ix = np.ix_(row_index, col_index[j])
+                batch_in[n] = buf[ix]
+                batch_ok[n] = buf_valid[ix]
+            out = runner(batch_in[: len(js)], batch_ok[: len(js)])
+            for n, j in enumerate(js):
+                grid.blend_into(acc, out[n], i, j, row_offset=a0)
+        finished = rows.finished(i)
+        if finished > done:
+            estimate = acc[done - a0 : finished - a0] / grid.accumulated_weight(done, finished)
+            emit_rows(done, finished, estimate, buf_valid[done - b0 : finished - b0])
+            if progress_bar is not None:
+                progress_bar.update((finished - done) * width / 1e6)
+            shift = finished - a0
+            acc[: rows.tile - shift] = acc[shift:].copy()
+            acc[rows.tile - shift :] = 0
+            a0, done = finished, finished
+
+
+def _make_bar(total_pixels, desc, progress):
+    if not progress:
+        return None
+    return tqdm(
+        total=round(total_pixels / 1e6, 6), desc=desc, unit="MP", unit_scale=False, leave=False,
+        bar_format="{desc}: {percentage:3.0f}%|{bar}| {n:.1f}/{total:.1f} MP [{elapsed}<{remaining}, {rate_noinv_fmt}]",
+    )
+
+
+def _settings(model, threads, bf16, batch_size, grid):
+    threads = _positive_int("threads", threads) or _default_threads()
+    use_bf16 = bool(bf16)
+    if use_bf16 and not bf16_supported():
+        warnings.warn(
+            "bf16 requested but this CPU has no native bfloat16 instructions; running in float32",
+            InferenceWarning, stacklevel=3,
+        )
+        use_bf16 = False
+    if batch_size is None:
+        tr, tc = grid.tile_shape
+        batch_size = max(1, min(grid.cols.count, _BATCH_PIXELS // (tr * tc)))
+    batch_size = _positive_int("batch_size", batch_size)
+    return threads, use_bf16, batch_size
+
+
+# --------------------------------------------------------------------------- arrays
+
+def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, batch_size=None, threads=None,
+                    bf16=False, log_offset=None, channels_last=None, progress=True) -> np.ndarray:
+    """Despeckle a 2-D linear intensity array with a model, tile by tile.
+
+    Parameters
+    ----------
+    intensity : array_like, (H, W)
+        Linear intensity (power).
+    model : despeck.models.Despeckler
+        Linear intensity in, linear intensity out; its ``receptive_field`` sets the
+        discarded tile margins.
+    valid : array_like of bool, (H, W), optional
+        False for nodata pixels. Non-finite and non-positive pixels are always invalid.
+    tile : int, optional
+        Largest tile side (pixels); default derived from the receptive field
+        (:func:`resolve_tiling`). Must be at least the receptive field.
+    overlap : int, optional
+        Pixels shared by neighbouring tiles, at least the receptive field minus one;
+        the part beyond that is blended with raised-cosine weights.
+    batch_size : int, optional
+        Tiles per forward call; default about one megapixel per call.
+    threads : int, optional
+        Torch threads; default all cores available to this process.
+    bf16 : bool
+        Run the network under bfloat16 autocast (only on CPUs with native bf16; warns
+        and uses float32 otherwise).
+    log_offset : float, optional
+        Scene normalisation constant; default ``model.scene_log_offset`` of a decimated
+        sample (at most one million) of the valid pixels.
+    channels_last : bool, optional
+        Force the memory format; default: time both on the first tiles, keep the faster.
+    progress : bool
+        Show a progress bar (MP/s, time left).
+
+    Returns
+    -------
+    numpy.ndarray of float32, (H, W)
+        The estimate; invalid pixels keep their input value.
+
+    Raises
+    ------
+    InputError
+        Not a 2-D array, mask of another shape, no valid pixel, bad tile options.
+    """
+    x = np.asarray(intensity)
+    if x.ndim != 2 or x.size == 0 or not np.issubdtype(x.dtype, np.number) or np.iscomplexobj(x):
+        raise InputError(
+            f"intensity must be a non-empty 2-D real array (H, W), got shape {x.shape} of {x.dtype}; "
+            "convert complex samples to intensity first"
+        )
+    x = x.astype(np.float32, copy=False)
+    with np.errstate(invalid="ignore"):
+        ok = np.isfinite(x) & (x > 0)
+    if valid is not None:
+        v = np.asarray(valid)
+        if v.shape != x.shape:
+            raise InputError(f"valid mask shape {v.shape} differs from intensity shape {x.shape}")
+        ok &= v.astype(bool)
+    if not ok.any():
+        raise InputError("intensity has no valid (finite, positive, not masked) pixel to despeckle")
+    grid = resolve_tiling(x.shape, model, tile=tile, overlap=overlap)
+    threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
+    if log_offset is None:
+        log_offset = _scene_offset(model, _array_sample(x, ok))
+    result = np.empty_like(x)
+    # Invalid pixels enter the tiles as 0 intensity: NaN-free, and the model's fill
+    # replaces them before the network sees them.
+    clean = np.where(ok, x, np.float32(0))
+
+    def read_rows(r0, r1):
+        return clean[r0:r1], ok[r0:r1]
+
+    def emit_rows(r0, r1, estimate, est_valid):
+        result[r0:r1] = np.where(est_valid, estimate, x[r0:r1])
+
+    bar = _make_bar(x.size, "despeckle", progress)
+    runner = _TileRunner(model, log_offset=log_offset, bf16=use_bf16, channels_last=channels_last)
+    was_training = model.training
+    model.eval()
+    try:
+        with _torch_settings(threads):
+            _stream(grid, read_rows, emit_rows, runner, batch_size, bar, chunk_rows=max(1, x.shape[0]))
+    finally:
+        runner.restore()
+        model.train(was_training)
+        if bar is not None:
+            bar.close()
+    return result
+
+
+# --------------------------------------------------------------------------- files
+
+def _looks_from_tags(tags) -> float | None:
+    for key, value in (tags or {}).items():
+        if str(key).strip().lower() in ("looks", "enl", "number_of_looks"):
+            try:
+                v = float(value)
+            except (TypeError, ValueError):
+                continue
+            if math.isfinite(v) and v > 0:
+                return v
+    return None
+
+
+def model_mismatch_notes(model, reader) -> list[str]:
+    """Warnings (one line each) when ``model`` was made for other units or looks than the scene.
+
+    The scene's looks are taken from a ``looks`` (or ``enl``) metadata tag when present;
+    otherwise the notes say that the model's looks were assumed.
+    """
+    notes = []
+    meta = getattr(model, "metadata", {}) or {}
+    name = reader.path
+    m_units = meta.get("units")
+    if m_units and reader.units != m_units:
+        notes.append(
+            f"{name}: the model was trained on {m_units} data but the file holds {reader.units}; "
+            f"the values were converted to linear intensity, which the model takes, so results should be comparable"
+        )
+    m_looks = getattr(model, "looks", None)
+    if m_looks is None:
+        return notes
+    lo, hi = (m_looks if isinstance(m_looks, (list, tuple)) else (m_looks, m_looks))
+    looks_text = f"{lo:g}" if lo == hi else f"{lo:g}-{hi:g}"
+    s_looks = _looks_from_tags(reader.tags)
+    if s_looks is None:
+        notes.append(
+            f"{name}: the number of looks is not recorded in the file; assumed it matches the model's ({looks_text})"
+        )
+    elif not (lo * 0.9 <= s_looks <= hi * 1.1):
+        notes.append(
+            f"{name}: the file says {s_looks:g} looks but the model was trained for {looks_text}; "
+            f"applied it as is, expect {'residual speckle' if s_looks < lo else 'oversmoothing'}"
+        )
+    return notes
+
+
+class _BlockWriter:
+    """Collects finished rows and writes them in whole rows of the output's blocks."""
+
+    def __init__(self, writer, band, block_rows, capacity_rows):
+        self.writer = writer
+        self.band = band
+        self.block_rows = block_rows
+        self.width = writer.width
+        self.height = writer.height
+        self.values = np.empty((capacity_rows + block_rows, self.width), dtype=np.float32)
+        self.valid = np.empty((capacity_rows + block_rows, self.width), dtype=bool)
+        self.start = 0  # scene row of values[0]
+        self.held = 0
+
+    def __call__(self, r0, r1, estimate, valid):
+        from rasterio.windows import Window
+
+        n = r1 - r0
+        self.values[self.held : self.held + n] = estimate
+        self.valid[self.held : self.held + n] = valid
+        self.held += n
+        end = self.start + self.held
+        ready = end if end == self.height else (end // self.block_rows) * self.block_rows
+        if ready > self.start:
+            k = ready - self.start
+            self.writer.write(self.values[:k], Window(0, self.start, self.width, k), band=self.band,
+                              valid=self.valid[:k])
+            rest = self.held - k
+            self.values[:rest] = self.values[k : self.held].copy()
+            self.valid[:rest] = self.valid[k : self.held].copy()
+            self.start, self.held = ready, rest
+
+
+def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, overwrite=False, tile=None,
+                   overlap=None, batch_size=None, threads=None, bf16=False, channels_last=None,
+                   progress=True) -> pathlib.Path:
+    """Despeckle a raster file band by band and write a GeoTIFF.
+
+    The output keeps the input's size, CRS, transform, nodata, band descriptions and
+    tags and is written to a temporary file in the destination folder, renamed only
+    when complete: an interrupted run leaves nothing at ``out_path``.
+
+    Parameters
+    ----------
+    in_path, out_path : str or path-like
+        Input raster (anything GDAL reads) and output GeoTIFF; never the same file.
+    model : despeck.models.Despeckler
+    units : {'intensity', 'amplitude', 'db', 'complex'}, optional
+        Units of the input; detected when unambiguous (see :func:`despeck.raster.open_scene`).
+    out_units : {'intensity', 'amplitude', 'db'}, optional
+        Units of the output; default the input's (intensity for complex input).
+    overwrite : bool
+        Replace an existing output (an input is never overwritten).
+    tile, overlap, batch_size, threads, bf16, channels_last, progress
+        As for :func:`despeckle_array`.
+
+    Returns
+    -------
+    pathlib.Path
+        The output path.
+
+    Raises
+    ------
+    RasterError, InputError
+        Unreadable input, output equal to the input, output exists (without
+        ``overwrite``), destination not writable, bad options. Nothing is left at
+        ``out_path``.
+
+    Warns
+    -----
+    InferenceWarning
+        The model was trained for other units or looks than the file's.
+    """
+    import rasterio
+
+    from .raster import check_output_path, open_scene, open_output
+
+    _check_model(model)
+    check_output_path(out_path, [in_path], overwrite=overwrite)
+    with rasterio.Env(GDAL_CACHEMAX=_GDAL_CACHE_BYTES), open_scene(in_path, units=units) as reader:
+        for note in model_mismatch_notes(model, reader):
+            warnings.warn(note, InferenceWarning, stacklevel=2)
+        grid = resolve_tiling((reader.height, reader.width), model, tile=tile, overlap=overlap)
+        threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
+        chunk = max(1, reader.block_shape[0])
+        chunk *= max(1, 128 // chunk)  # read at least ~128 rows per call on striped files
+        bar = _make_bar(reader.width * reader.height * reader.band_count, pathlib.Path(in_path).name, progress)
+        was_training = model.training
+        model.eval()
+        try:
+            with open_output(out_path, reader, units=out_units, overwrite=overwrite) as writer, \
+                    _torch_settings(threads):
+                block_rows = writer.block_windows()[0].height
+                for band in range(1, reader.band_count + 1):
+                    offset = _scene_offset(model, reader.sample_intensity(_SAMPLE_PIXELS, band=band))
+                    runner = _TileRunner(model, log_offset=offset, bf16=use_bf16, channels_last=channels_last)
+
+                    def read_rows(r0, r1, band=band):
+                        from rasterio.windows import Window
+
+                        return reader.read(Window(0, r0, reader.width, r1 - r0), band=band)
+
+                    out = _BlockWriter(writer, band, block_rows, grid.rows.stride + grid.rows.tile)
+                    try:
+                        _stream(grid, read_rows, out, runner, batch_size, bar, chunk_rows=chunk)
+                    finally:
+                        runner.restore()
+                    channels_last = runner.channels_last
+        finally:
+            model.train(was_training)
+            if bar is not None:
+                bar.close()
+    return pathlib.Path(out_path)
