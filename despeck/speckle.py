@@ -10,6 +10,8 @@ References
 ----------
 Goodman, J. W. (1976). Some fundamental properties of speckle. JOSA 66(11), 1145-1150.
 Oliver, C., Quegan, S. (1998). Understanding Synthetic Aperture Radar Images. Artech House.
+Harris, F. J. (1978). On the use of windows for harmonic analysis with the discrete
+Fourier transform. Proc. IEEE 66(1), 51-83.
 Argenti, F., Lapini, A., Bucciarelli, T., Alparone, L. (2013). A tutorial on speckle
 reduction in synthetic aperture radar images. IEEE GRSM 1(3), 6-35.
 """
@@ -41,6 +43,15 @@ __all__ = [
     "multilook",
     "enl_intensity",
     "enl_amplitude",
+    "TAPERS",
+    "spectral_taper",
+    "system_transfer",
+    "psf_intensity_kernel",
+    "simulate_correlated_slc",
+    "simulate_correlated_intensity",
+    "split_sublooks",
+    "homogeneous_blocks",
+    "estimate_looks",
 ]
 
 
@@ -224,13 +235,14 @@ def simulate_slc(reference, *, rng) -> np.ndarray:
     Real and imaginary parts are independent ``N(0, R/2)``; ``|z|^2`` is exponential
     with mean R and the phase is uniform.
     """
-    reference = np.asarray(reference, dtype=np.float64)
+    reference = np.asarray(reference, dtype=np.float32)
     if np.any(reference < 0):
         raise InputError("reference intensity must be non-negative")
     g = _as_generator(rng)
-    scale = np.sqrt(reference / 2.0)
-    z = scale * g.standard_normal(reference.shape) + 1j * scale * g.standard_normal(reference.shape)
-    return z.astype(np.complex64)
+    # single precision throughout: the draws are 4x cheaper and complex64 is the output anyway
+    z = g.standard_normal(reference.shape + (2,), dtype=np.float32).view(np.complex64)[..., 0]
+    z *= np.sqrt(reference * np.float32(0.5))
+    return z
 
 
 def multilook(intensity, factor) -> np.ndarray:
@@ -284,3 +296,361 @@ def enl_amplitude(values, mask=None) -> float:
     if mean <= 0:
         raise InputError("amplitude values must have a positive mean to estimate the number of looks")
     return amplitude_looks_from_cv(v.std() / mean)
+
+
+# --------------------------------------------------------------------------- correlated speckle
+
+#: Named spectral tapers: the coefficient ``alpha`` of the generalised Hamming window
+#: ``alpha + (1 - alpha) cos(pi f / b)`` over the band ``|f| <= b`` (Harris 1978).
+TAPERS = {"none": 1.0, "hamming": 0.54, "hann": 0.5}
+
+def _taper_alpha(taper) -> float:
+    if taper is None:
+        return 1.0
+    if isinstance(taper, str):
+        key = taper.strip().lower()
+        if key not in TAPERS:
+            raise InputError(f"taper must be one of {', '.join(TAPERS)} or a number in [0.5, 1], got {taper!r}")
+        return TAPERS[key]
+    try:
+        alpha = float(taper)
+    except (TypeError, ValueError):
+        raise InputError(f"taper must be a name ({', '.join(TAPERS)}) or a number in [0.5, 1], got {taper!r}") from None
+    if not 0.5 <= alpha <= 1.0:
+        raise InputError(f"taper coefficient must lie in [0.5, 1] (0.54 is Hamming), got {taper!r}")
+    return alpha
+
+
+def _pair(value, name) -> tuple:
+    pair = (value, value) if np.isscalar(value) else tuple(value)
+    if len(pair) != 2:
+        raise InputError(f"{name} must be a number or a (rows, cols) pair, got {value!r}")
+    out = []
+    for v in pair:
+        try:
+            v = float(v)
+        except (TypeError, ValueError):
+            raise InputError(f"{name} must be a number >= 1, got {value!r}") from None
+        if not math.isfinite(v) or v < 1.0:
+            raise InputError(f"{name} must be >= 1 (the band may not exceed the sampling rate), got {value!r}")
+        out.append(v)
+    return tuple(out)
+
+
+def spectral_taper(n: int, *, oversampling=1.0, taper="hamming", centre=0.0) -> np.ndarray:
+    """One-dimensional band-limited, tapered spectrum on the FFT frequency grid of length ``n``.
+
+    The band occupies ``1 / oversampling`` of the sampling rate, centred on ``centre``
+    (cycles per pixel, e.g. a Doppler centroid); inside it the weight is the
+    generalised Hamming window ``alpha + (1 - alpha) cos(pi (f - centre) / b)`` with
+    ``b = 0.5 / oversampling`` (``alpha`` 0.54 Hamming, 0.5 Hann, 1 untapered), outside 0.
+
+    Returns
+    -------
+    ndarray of float64, shape (n,)
+        Weights in :func:`numpy.fft.fftfreq` order (not normalised).
+    """
+    (os_, _) = _pair(oversampling, "oversampling")
+    alpha = _taper_alpha(taper)
+    f = np.fft.fftfreq(int(n))
+    d = (f - float(centre) + 0.5) % 1.0 - 0.5  # wrap offsets from the centre into [-0.5, 0.5)
+    b = 0.5 / os_
+    inside = np.abs(d) <= b
+    return np.where(inside, alpha + (1.0 - alpha) * np.cos(np.pi * d / b), 0.0)
+
+
+def system_transfer(shape, *, oversampling=1.25, taper="hamming") -> np.ndarray:
+    """Separable 2-D transfer function of a sensor-like system on the FFT grid of ``shape``.
+
+    ``H(fr, fc) = w_r(fr) w_c(fc)`` with :func:`spectral_taper` along rows and columns,
+    scaled so that ``mean(H**2) = 1``: filtering unit-power white complex noise with it
+    keeps unit power. ``oversampling`` may be a (rows, cols) pair.
+
+    References
+    ----------
+    Argenti et al. (2013), IEEE GRSM 1(3), 6-35 (correlated speckle from the system response).
+    """
+    osr, osc = _pair(oversampling, "oversampling")
+    rows, cols = (int(v) for v in shape)
+    h = np.outer(spectral_taper(rows, oversampling=osr, taper=taper), spectral_taper(cols, oversampling=osc, taper=taper))
+    return h / math.sqrt(float(np.mean(h * h)))
+
+
+def psf_intensity_kernel(*, oversampling=1.25, taper="hamming", size=33) -> np.ndarray:
+    """The intensity point-spread function ``|PSF|^2`` of :func:`system_transfer`, as a kernel.
+
+    Speckle simulated by :func:`simulate_correlated_slc` has expected intensity
+    ``reference`` convolved with this kernel (``scipy.ndimage.convolve(reference, kernel)``).
+    The kernel is computed on a 256 x 256 grid, cropped to ``size`` x ``size`` (odd)
+    around its peak and normalised to sum 1, so it preserves mean backscatter.
+    """
+    size = int(size)
+    if size < 1 or size % 2 == 0 or size > 255:
+        raise InputError(f"kernel size must be an odd number between 1 and 255, got {size}")
+    n = 256
+    h = system_transfer((n, n), oversampling=oversampling, taper=taper)
+    psf = np.fft.fftshift(np.fft.ifft2(h))
+    k = np.abs(psf) ** 2
+    c, r = n // 2, size // 2
+    k = k[c - r:c + r + 1, c - r:c + r + 1]
+    return k / k.sum()
+
+
+def _fft_module():
+    from scipy import fft
+
+    return fft
+
+
+def simulate_correlated_slc(reference, *, rng, oversampling=1.25, taper="hamming", pad=16) -> np.ndarray:
+    """Single-look complex image with spatially correlated speckle.
+
+    A circular Gaussian field with ``E|w|^2 = reference`` (white, as in
+    :func:`simulate_slc`) is filtered by the band-limited, tapered transfer function
+    :func:`system_transfer`: ``z = PSF * w``. Hence ``E|z|^2 = reference`` convolved with
+    ``|PSF|^2`` (:func:`psf_intensity_kernel`), marginals stay circular Gaussian (|z|^2
+    exponential) and neighbouring pixels are correlated as in an oversampled,
+    spectrally weighted sensor image. The reference is mirrored by ``pad`` pixels
+    (and up to a fast FFT length) so the FFT's wrap-around does not mix opposite edges.
+
+    Parameters
+    ----------
+    reference : array_like, shape (h, w)
+        Clean intensity (reflectivity), non-negative.
+    rng : numpy.random.Generator or int
+    oversampling : float or (float, float)
+        Sampling rate over bandwidth, >= 1 (rows, cols).
+    taper : str or float
+        Spectral weighting: 'hamming' (default), 'hann', 'none' or a generalised
+        Hamming coefficient.
+
+    Returns
+    -------
+    ndarray of complex64, shape (h, w)
+
+    References
+    ----------
+    Argenti, F., Lapini, A., Bucciarelli, T., Alparone, L. (2013). A tutorial on speckle
+    reduction in synthetic aperture radar images. IEEE GRSM 1(3), 6-35.
+    """
+    reference = np.asarray(reference, dtype=np.float64)
+    if reference.ndim != 2:
+        raise InputError(f"reference must be a 2-D image, got shape {reference.shape}")
+    if not np.all(np.isfinite(reference)) or np.any(reference < 0):
+        raise InputError("reference intensity must be finite and non-negative")
+    fft = _fft_module()
+    h, w = reference.shape
+    pad = max(0, int(pad))
+    big_h, big_w = fft.next_fast_len(h + 2 * pad), fft.next_fast_len(w + 2 * pad)
+    top, left = (big_h - h) // 2, (big_w - w) // 2
+    padded = np.pad(reference, ((top, big_h - h - top), (left, big_w - w - left)), mode="symmetric")
+    field = simulate_slc(padded, rng=rng)
+    transfer = system_transfer((big_h, big_w), oversampling=oversampling, taper=taper).astype(np.float32)
+    spectrum = fft.fft2(field, workers=-1)
+    spectrum *= transfer
+    z = fft.ifft2(spectrum, workers=-1)
+    return np.ascontiguousarray(z[top:top + h, left:left + w]).astype(np.complex64, copy=False)
+
+
+def simulate_correlated_intensity(reference, looks, *, rng, oversampling=1.25, taper="hamming") -> np.ndarray:
+    """L-look intensity with spatially correlated speckle: the mean of L correlated single looks.
+
+    Each look is ``|z|^2`` of an independent :func:`simulate_correlated_slc`, so the
+    marginal is Gamma(L, reference'/L) with ``reference'`` the reference convolved with
+    ``|PSF|^2``, while the pixel-to-pixel correlation lowers the ENL of any spatial
+    average below ``N * L``. ``looks`` must be a whole number (looks are summed).
+    """
+    L = check_looks(looks)
+    if abs(L - round(L)) > 1e-9:
+        raise InputError(f"correlated speckle averages whole single looks; looks must be a whole number, got {looks!r}")
+    g = _as_generator(rng)
+    total = None
+    for _ in range(int(round(L))):
+        z = simulate_correlated_slc(reference, rng=g, oversampling=oversampling, taper=taper)
+        look = z.real * z.real + z.imag * z.imag
+        total = look if total is None else total + look
+    return (total / np.float32(round(L))).astype(np.float32, copy=False)
+
+
+# --------------------------------------------------------------------------- sub-looks
+
+def split_sublooks(slc, count, *, axis="azimuth", oversampling=1.0, taper=None, centre=0.0, max_gain=3.0) -> np.ndarray:
+    """Split a complex image into ``count`` sub-looks with nearly independent speckle.
+
+    The spectrum along ``axis`` is divided by the known spectral ``taper`` inside the
+    occupied band (if given; flattening it makes the sub-looks equally strong), then
+    the band (``1 / oversampling`` of the sampling rate around ``centre``) is cut into
+    ``count`` equal, non-overlapping sub-bands; each is transformed back alone.
+    Sub-bands that do not overlap carry independent speckle on a homogeneous area,
+    so the sub-looks' intensities are nearly uncorrelated and each is a single look.
+    Each sub-look is scaled so that its expected intensity equals the input's
+    (mean backscatter is preserved): by ``sum_band(H^2) / sum_sub(H^2 / D^2)`` with
+    ``H`` the taper and ``D`` the taper divided out (1 when ``taper`` is None).
+    Resolution along ``axis`` drops by ``count``.
+
+    The taper is divided out only down to ``1 / max_gain`` of its peak: near the band
+    edges a Hamming taper falls to 0.08, and dividing by it would amplify the spectral
+    leakage of a finite, non-periodic image twelve-fold and correlate the outer
+    sub-looks (measured: up to 0.04 intensity correlation with full removal, below
+    0.01 with ``max_gain=3``).
+
+    Parameters
+    ----------
+    slc : array_like of complex, shape (h, w)
+    count : int
+        Number of sub-looks K >= 2.
+    axis : {'azimuth', 'range'} or int
+        'azimuth' is along rows (axis 0), 'range' along columns (axis 1).
+    oversampling : float
+        Sampling rate over the occupied bandwidth along ``axis`` (>= 1).
+    taper : str or float, optional
+        The spectral weighting applied by the processor, to be removed first.
+    centre : float
+        Band centre along ``axis`` in cycles per pixel (e.g. Doppler centroid / PRF).
+    max_gain : float
+        Largest amplification used when dividing out the taper (>= 1).
+
+    Returns
+    -------
+    ndarray of complex64, shape (count, h, w)
+        Sub-look images; their intensities are ``abs(x) ** 2``.
+
+    References
+    ----------
+    Oliver, C., Quegan, S. (1998). Understanding Synthetic Aperture Radar Images. Artech House
+    (multi-look processing by splitting the azimuth spectrum).
+    """
+    z = np.asarray(slc)
+    if not np.iscomplexobj(z) or z.ndim != 2:
+        raise InputError(f"sub-looks need a 2-D complex image, got shape {z.shape} of {z.dtype}")
+    try:
+        k = int(count)
+    except (TypeError, ValueError):
+        k = 0
+    if k < 2 or k != count:
+        raise InputError(f"sub-look count must be a whole number >= 2, got {count!r}")
+    names = {"azimuth": 0, "range": 1, 0: 0, 1: 1}
+    if axis not in names:
+        raise InputError(f"axis must be 'azimuth' (rows), 'range' (columns), 0 or 1, got {axis!r}")
+    ax = names[axis]
+    n = z.shape[ax]
+    (os_, _) = _pair(oversampling, "oversampling")
+    b = 0.5 / os_
+    if n * 2 * b < 2 * k:
+        raise InputError(f"an image {n} pixels long along {axis} is too short for {k} sub-looks")
+    fft = _fft_module()
+    spectrum = fft.fft(z.astype(np.complex64, copy=False), axis=ax, workers=-1)
+    f = np.fft.fftfreq(n)
+    d = (f - float(centre) + 0.5) % 1.0 - 0.5
+    weight = spectral_taper(n, oversampling=os_, taper=taper if taper is not None else "none", centre=centre)
+    band = np.abs(d) <= b
+    try:
+        max_gain = float(max_gain)
+    except (TypeError, ValueError):
+        max_gain = float("nan")
+    if not max_gain >= 1.0:
+        raise InputError(f"max_gain must be a number >= 1, got {max_gain!r}")
+    floor = 1.0 / max_gain
+    divide = np.where(band, np.maximum(weight, floor), 1.0) if taper is not None else np.ones(n)
+    # index of the sub-band of each frequency bin; -1 outside the band
+    which = np.where(band, np.minimum(((d + b) / (2 * b) * k).astype(int), k - 1), -1)
+    total_power = float(np.sum(np.where(band, weight, 0.0) ** 2))
+    shape = [1, 1]
+    out = np.empty((k,) + z.shape, dtype=np.complex64)
+    for i in range(k):
+        sel = which == i
+        sub_power = float(np.sum((weight[sel] / divide[sel]) ** 2))
+        gain = np.where(sel, 1.0 / divide, 0.0) * math.sqrt(total_power / sub_power)
+        shape[ax] = n
+        out[i] = fft.ifft(spectrum * gain.reshape(shape).astype(np.complex64), axis=ax, workers=-1)
+    return out
+
+
+# --------------------------------------------------------------------------- looks from a scene
+
+def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8):
+    """Find the most homogeneous ``window`` x ``window`` blocks of an intensity image.
+
+    The image is cut into non-overlapping blocks; blocks with any invalid pixel, a
+    non-positive mean or fewer than ``window**2`` pixels are dropped. Each block is
+    split like a checkerboard into two interleaved halves. The blocks are ranked by
+    the coefficient of variation (std / mean) of their *first* half and the lowest
+    ``fraction`` of them (at least ``min_blocks``) are kept. Texture, edges and
+    targets only raise the CV, so these are the blocks most likely to be pure
+    speckle; ranking on one half and measuring on the other keeps the ranking's luck
+    out of the measurement (exactly so for spatially uncorrelated speckle).
+
+    Returns
+    -------
+    origins : ndarray of int, shape (m, 2)
+        (row, col) of each kept block's top-left pixel, most homogeneous first.
+    cv2 : ndarray of float64, shape (m,)
+        Squared CV of the second (measurement) half of each kept block.
+
+    Raises
+    ------
+    InputError
+        If fewer than ``min_blocks`` blocks are free of nodata.
+    """
+    x = np.asarray(intensity, dtype=np.float64)
+    if x.ndim != 2:
+        raise InputError(f"intensity must be a 2-D image, got shape {x.shape}")
+    window = int(window)
+    if window < 4:
+        raise InputError(f"window must be at least 4 pixels, got {window}")
+    if not 0 < float(fraction) <= 1:
+        raise InputError(f"fraction must lie in (0, 1], got {fraction!r}")
+    ok = np.isfinite(x) & (x > 0)
+    if valid is not None:
+        valid = np.asarray(valid, dtype=bool)
+        if valid.shape != x.shape:
+            raise InputError(f"valid mask of shape {valid.shape} does not match the image {x.shape}")
+        ok &= valid
+    rows, cols = x.shape[0] // window, x.shape[1] // window
+    if rows == 0 or cols == 0:
+        raise InputError(f"image of shape {x.shape} is smaller than one {window}x{window} block")
+    h, w = rows * window, cols * window
+
+    def blocks(a):
+        return a[:h, :w].reshape(rows, window, cols, window).transpose(0, 2, 1, 3).reshape(rows * cols, window, window)
+
+    xb, okb = blocks(np.where(ok, x, 0.0)), blocks(ok)
+    keep = okb.all(axis=(1, 2))
+    checker = (np.add.outer(np.arange(window), np.arange(window)) % 2).astype(bool)
+    first, second = xb[:, ~checker], xb[:, checker]
+    m1, m2 = first.mean(axis=1), second.mean(axis=1)
+    keep &= (m1 > 0) & (m2 > 0)
+    n_ok = int(keep.sum())
+    if n_ok < int(min_blocks):
+        raise InputError(
+            f"only {n_ok} {window}x{window} blocks are free of nodata; at least {int(min_blocks)} are needed to estimate the looks"
+        )
+    index = np.flatnonzero(keep)
+    rank_cv = first[index].std(axis=1, ddof=1) / m1[index]
+    n_keep = max(int(min_blocks), int(math.ceil(float(fraction) * index.size)))
+    order = index[np.argsort(rank_cv, kind="stable")[:n_keep]]
+    cv2 = second[order].var(axis=1, ddof=1) / m2[order] ** 2
+    origins = np.stack([order // cols * window, order % cols * window], axis=1)
+    return origins, cv2
+
+
+def estimate_looks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8) -> float:
+    """Estimate a scene's equivalent number of looks from automatically found homogeneous areas.
+
+    Rule: :func:`homogeneous_blocks` keeps the ``fraction`` of ``window`` x ``window``
+    blocks (free of nodata) with the lowest coefficient of variation on one
+    checkerboard half; the ENL is ``1 / median(CV^2)`` of the other half over those
+    blocks. The median resists the few textured blocks that slip in; on pure
+    L-look speckle the estimate is within a few per cent of L for blocks of 16 x 16
+    (``scipy.stats.gamma`` check in the tests). Spatially correlated speckle gives
+    the per-pixel ENL, and on scenes with no homogeneous area at all the result is
+    a lower bound.
+
+    Returns
+    -------
+    float
+        Estimated ENL (``inf`` if the kept blocks are constant).
+    """
+    _, cv2 = homogeneous_blocks(intensity, valid, window=window, fraction=fraction, min_blocks=min_blocks)
+    median = float(np.median(cv2))
+    return math.inf if median == 0 else 1.0 / median
