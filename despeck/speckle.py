@@ -46,9 +46,11 @@ __all__ = [
     "TAPERS",
     "spectral_taper",
     "system_transfer",
+    "system_psf",
     "psf_intensity_kernel",
     "simulate_correlated_slc",
     "simulate_correlated_intensity",
+    "SpeckleField",
     "split_sublooks",
     "homogeneous_blocks",
     "estimate_looks",
@@ -376,42 +378,60 @@ def system_transfer(shape, *, oversampling=1.25, taper="hamming") -> np.ndarray:
     return h / math.sqrt(float(np.mean(h * h)))
 
 
-def psf_intensity_kernel(*, oversampling=1.25, taper="hamming", size=33) -> np.ndarray:
-    """The intensity point-spread function ``|PSF|^2`` of :func:`system_transfer`, as a kernel.
+def system_psf(*, oversampling=1.25, taper="hamming", size=33) -> np.ndarray:
+    """Complex point-spread function of :func:`system_transfer`, cropped to ``size`` x ``size``.
 
-    Speckle simulated by :func:`simulate_correlated_slc` has expected intensity
-    ``reference`` convolved with this kernel (``scipy.ndimage.convolve(reference, kernel)``).
-    The kernel is computed on a 256 x 256 grid, cropped to ``size`` x ``size`` (odd)
-    around its peak and normalised to sum 1, so it preserves mean backscatter.
+    Computed on a 256 x 256 grid, cropped around its peak (odd ``size``) and scaled
+    so that ``sum(|PSF|^2) = 1``: convolving white complex noise with it keeps the
+    mean intensity. A 33 x 33 crop holds 99.97 % of the energy of the untruncated
+    response for the default Hamming taper and oversampling 1.25.
     """
     size = int(size)
     if size < 1 or size % 2 == 0 or size > 255:
-        raise InputError(f"kernel size must be an odd number between 1 and 255, got {size}")
+        raise InputError(f"PSF size must be an odd number between 1 and 255, got {size}")
     n = 256
     h = system_transfer((n, n), oversampling=oversampling, taper=taper)
     psf = np.fft.fftshift(np.fft.ifft2(h))
-    k = np.abs(psf) ** 2
     c, r = n // 2, size // 2
-    k = k[c - r:c + r + 1, c - r:c + r + 1]
-    return k / k.sum()
+    psf = psf[c - r:c + r + 1, c - r:c + r + 1]
+    return psf / math.sqrt(float(np.sum(np.abs(psf) ** 2)))
 
 
-def _fft_module():
-    from scipy import fft
+def psf_intensity_kernel(*, oversampling=1.25, taper="hamming", size=33) -> np.ndarray:
+    """The intensity point-spread function ``|PSF|^2`` of :func:`system_psf` (sums to 1).
 
-    return fft
+    Speckle simulated by :func:`simulate_correlated_slc` has expected intensity
+    ``scipy.ndimage.convolve(reference, kernel, mode="reflect")``, which preserves
+    mean backscatter.
+    """
+    return np.abs(system_psf(oversampling=oversampling, taper=taper, size=size)) ** 2
 
 
-def simulate_correlated_slc(reference, *, rng, oversampling=1.25, taper="hamming", pad=16) -> np.ndarray:
+def _convolve_valid(field, psf) -> np.ndarray:
+    from scipy import signal
+
+    return signal.fftconvolve(field, psf.astype(np.complex64), mode="valid").astype(np.complex64, copy=False)
+
+
+def _check_reference(reference) -> np.ndarray:
+    reference = np.asarray(reference, dtype=np.float32)
+    if reference.ndim != 2:
+        raise InputError(f"reference must be a 2-D image, got shape {reference.shape}")
+    if not np.all(np.isfinite(reference)) or np.any(reference < 0):
+        raise InputError("reference intensity must be finite and non-negative")
+    return reference
+
+
+def simulate_correlated_slc(reference, *, rng, oversampling=1.25, taper="hamming", psf_size=33) -> np.ndarray:
     """Single-look complex image with spatially correlated speckle.
 
     A circular Gaussian field with ``E|w|^2 = reference`` (white, as in
-    :func:`simulate_slc`) is filtered by the band-limited, tapered transfer function
-    :func:`system_transfer`: ``z = PSF * w``. Hence ``E|z|^2 = reference`` convolved with
-    ``|PSF|^2`` (:func:`psf_intensity_kernel`), marginals stay circular Gaussian (|z|^2
-    exponential) and neighbouring pixels are correlated as in an oversampled,
-    spectrally weighted sensor image. The reference is mirrored by ``pad`` pixels
-    (and up to a fast FFT length) so the FFT's wrap-around does not mix opposite edges.
+    :func:`simulate_slc`) is convolved with the complex point-spread function of a
+    band-limited, tapered, oversampled system (:func:`system_psf`): ``z = PSF * w``.
+    Hence ``E|z|^2`` is the reference convolved with ``|PSF|^2``
+    (:func:`psf_intensity_kernel`), ``|z|^2`` stays exponential and neighbouring
+    pixels are correlated as in a sensor image with spectral weighting. The
+    reference is mirrored by ``psf_size // 2`` pixels at the borders.
 
     Parameters
     ----------
@@ -423,6 +443,8 @@ def simulate_correlated_slc(reference, *, rng, oversampling=1.25, taper="hamming
     taper : str or float
         Spectral weighting: 'hamming' (default), 'hann', 'none' or a generalised
         Hamming coefficient.
+    psf_size : int
+        Odd size of the truncated PSF.
 
     Returns
     -------
@@ -433,43 +455,125 @@ def simulate_correlated_slc(reference, *, rng, oversampling=1.25, taper="hamming
     Argenti, F., Lapini, A., Bucciarelli, T., Alparone, L. (2013). A tutorial on speckle
     reduction in synthetic aperture radar images. IEEE GRSM 1(3), 6-35.
     """
-    reference = np.asarray(reference, dtype=np.float64)
-    if reference.ndim != 2:
-        raise InputError(f"reference must be a 2-D image, got shape {reference.shape}")
-    if not np.all(np.isfinite(reference)) or np.any(reference < 0):
-        raise InputError("reference intensity must be finite and non-negative")
-    fft = _fft_module()
-    h, w = reference.shape
-    pad = max(0, int(pad))
-    big_h, big_w = fft.next_fast_len(h + 2 * pad), fft.next_fast_len(w + 2 * pad)
-    top, left = (big_h - h) // 2, (big_w - w) // 2
-    padded = np.pad(reference, ((top, big_h - h - top), (left, big_w - w - left)), mode="symmetric")
-    field = simulate_slc(padded, rng=rng)
-    transfer = system_transfer((big_h, big_w), oversampling=oversampling, taper=taper).astype(np.float32)
-    spectrum = fft.fft2(field, workers=-1)
-    spectrum *= transfer
-    z = fft.ifft2(spectrum, workers=-1)
-    return np.ascontiguousarray(z[top:top + h, left:left + w]).astype(np.complex64, copy=False)
+    reference = _check_reference(reference)
+    psf = system_psf(oversampling=oversampling, taper=taper, size=psf_size)
+    halo = psf.shape[0] // 2
+    padded = np.pad(reference, halo, mode="symmetric")
+    return _convolve_valid(simulate_slc(padded, rng=rng), psf)
 
 
-def simulate_correlated_intensity(reference, looks, *, rng, oversampling=1.25, taper="hamming") -> np.ndarray:
-    """L-look intensity with spatially correlated speckle: the mean of L correlated single looks.
-
-    Each look is ``|z|^2`` of an independent :func:`simulate_correlated_slc`, so the
-    marginal is Gamma(L, reference'/L) with ``reference'`` the reference convolved with
-    ``|PSF|^2``, while the pixel-to-pixel correlation lowers the ENL of any spatial
-    average below ``N * L``. ``looks`` must be a whole number (looks are summed).
-    """
+def _whole_looks(looks) -> int:
     L = check_looks(looks)
     if abs(L - round(L)) > 1e-9:
         raise InputError(f"correlated speckle averages whole single looks; looks must be a whole number, got {looks!r}")
+    return int(round(L))
+
+
+def simulate_correlated_intensity(reference, looks, *, rng, oversampling=1.25, taper="hamming",
+                                  psf_size=33) -> np.ndarray:
+    """L-look intensity with spatially correlated speckle: the mean of L correlated single looks.
+
+    Each look is ``|z|^2`` of an independent :func:`simulate_correlated_slc`, so the
+    marginal is Gamma(L, R'/L) with ``R'`` the reference convolved with ``|PSF|^2``,
+    while the pixel-to-pixel correlation lowers the ENL of any spatial average below
+    ``N * L``. ``looks`` must be a whole number (looks are summed).
+    """
+    n = _whole_looks(looks)
     g = _as_generator(rng)
     total = None
-    for _ in range(int(round(L))):
-        z = simulate_correlated_slc(reference, rng=g, oversampling=oversampling, taper=taper)
+    for _ in range(n):
+        z = simulate_correlated_slc(reference, rng=g, oversampling=oversampling, taper=taper, psf_size=psf_size)
         look = z.real * z.real + z.imag * z.imag
         total = look if total is None else total + look
-    return (total / np.float32(round(L))).astype(np.float32, copy=False)
+    return (total / np.float32(n)).astype(np.float32, copy=False)
+
+
+class SpeckleField:
+    """Reproducible speckle over a scene of any size, generated window by window.
+
+    The random numbers for each pixel depend only on ``seed`` and the pixel's
+    position in the scene (they are drawn per 64 x 64 cell from a generator keyed
+    by the cell), so a scene speckled window by window is identical whatever the
+    windows are, and never needs to be in memory whole.
+
+    Parameters
+    ----------
+    looks : float
+        Number of looks (whole for correlated speckle).
+    seed : int
+        Non-negative seed.
+    correlated : bool
+        White Gamma speckle (False) or the correlated speckle of
+        :func:`simulate_correlated_slc`, L looks averaged.
+    oversampling, taper, psf_size
+        System response of correlated speckle (see :func:`system_psf`).
+
+    Attributes
+    ----------
+    halo : int
+        Pixels of reference needed around a window on every side (0 for white speckle).
+    """
+
+    cell = 64
+
+    def __init__(self, looks, *, seed, correlated=False, oversampling=1.25, taper="hamming", psf_size=33):
+        self.looks = check_looks(looks)
+        try:
+            self.seed = int(seed)
+        except (TypeError, ValueError):
+            raise InputError(f"seed must be a non-negative integer, got {seed!r}") from None
+        if self.seed < 0 or self.seed != seed:
+            raise InputError(f"seed must be a non-negative integer, got {seed!r}")
+        self.correlated = bool(correlated)
+        if self.correlated:
+            self._n_looks = _whole_looks(looks)
+            self._psf = system_psf(oversampling=oversampling, taper=taper, size=psf_size)
+            self.halo = self._psf.shape[0] // 2
+        else:
+            self.halo = 0
+
+    def _noise(self, kind, look, row, col, height, width):
+        """Unit noise for scene pixels [row, row+height) x [col, col+width); rows/cols may start at -halo."""
+        c = self.cell
+        shift = -(-self.halo // c)  # cell indices made non-negative for the generator key
+        out = np.empty((height, width), dtype=np.complex64 if kind == 1 else np.float32)
+        for i in range((row // c), (row + height - 1) // c + 1):
+            for j in range((col // c), (col + width - 1) // c + 1):
+                key = np.random.SeedSequence(self.seed, spawn_key=(kind, look, i + shift, j + shift))
+                g = np.random.Generator(np.random.PCG64(key))
+                if kind == 1:
+                    cell = g.standard_normal((c, c, 2), dtype=np.float32).view(np.complex64)[..., 0]
+                    cell *= np.float32(math.sqrt(0.5))
+                else:
+                    cell = g.standard_gamma(self.looks, (c, c), dtype=np.float32)
+                    cell /= np.float32(self.looks)
+                r0, r1 = max(row, i * c), min(row + height, (i + 1) * c)
+                c0, c1 = max(col, j * c), min(col + width, (j + 1) * c)
+                out[r0 - row:r1 - row, c0 - col:c1 - col] = cell[r0 - i * c:r1 - i * c, c0 - j * c:c1 - j * c]
+        return out
+
+    def speckle(self, reference, row, col) -> np.ndarray:
+        """Speckled intensity of the window whose top-left scene pixel is (row, col).
+
+        ``reference`` is the clean intensity of the window grown by :attr:`halo` on
+        every side (mirror it where the window touches the scene's border), shape
+        ``(h + 2 halo, w + 2 halo)``; the result has shape ``(h, w)``.
+        """
+        reference = _check_reference(reference)
+        hh = self.halo
+        h, w = reference.shape[0] - 2 * hh, reference.shape[1] - 2 * hh
+        if h < 1 or w < 1:
+            raise InputError(f"reference of shape {reference.shape} is smaller than the halo of {hh} pixels")
+        if not self.correlated:
+            return (reference * self._noise(0, 0, row, col, h, w)).astype(np.float32, copy=False)
+        amplitude = np.sqrt(reference)
+        total = np.zeros((h, w), dtype=np.float32)
+        for look in range(self._n_looks):
+            field = self._noise(1, look, row - hh, col - hh, h + 2 * hh, w + 2 * hh)
+            field *= amplitude
+            z = _convolve_valid(field, self._psf)
+            total += z.real * z.real + z.imag * z.imag
+        return total / np.float32(self._n_looks)
 
 
 # --------------------------------------------------------------------------- sub-looks
@@ -538,7 +642,8 @@ def split_sublooks(slc, count, *, axis="azimuth", oversampling=1.0, taper=None, 
     b = 0.5 / os_
     if n * 2 * b < 2 * k:
         raise InputError(f"an image {n} pixels long along {axis} is too short for {k} sub-looks")
-    fft = _fft_module()
+    from scipy import fft
+
     spectrum = fft.fft(z.astype(np.complex64, copy=False), axis=ax, workers=-1)
     f = np.fft.fftfreq(n)
     d = (f - float(centre) + 0.5) % 1.0 - 0.5

@@ -1,0 +1,98 @@
+"""``despeck info``: describe a SAR raster before processing it.
+
+Prints size, bands, data type, CRS, pixel size, nodata value and the fraction of
+invalid pixels, the units the scene will be read in (and why), and per band an
+equivalent number of looks estimated on automatically found homogeneous blocks
+(:func:`despeck.speckle.estimate_looks`). Large scenes are described from a
+decimated sample of about a million pixels, which the output says.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+import warnings
+
+from .. import raster, speckle
+from ..errors import InputError
+
+SAMPLE_PIXELS = 1_000_000
+
+
+def add_arguments(parser):
+    parser.add_argument("scene", metavar="SCENE", help="raster to describe")
+    parser.add_argument("--units", choices=raster.UNITS, default=None,
+                        help="units of the values (default: detected, else linear intensity)")
+    parser.add_argument("--window", type=int, default=16, help="block size of the looks estimate (default 16)")
+    parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
+
+
+def describe(path, *, units=None, window=16, max_pixels=SAMPLE_PIXELS) -> dict:
+    """Facts about a scene as a dict (what ``despeck info`` prints)."""
+    with raster.open_scene(path, units=units) as scene:
+        step = scene.sample_step(max_pixels)
+        crs = scene.crs
+        info = {
+            "path": str(scene.path),
+            "width": scene.width,
+            "height": scene.height,
+            "bands": scene.band_count,
+            "dtype": scene.dtype,
+            "crs": None if crs is None else (crs.to_string() if crs.to_epsg() is None else f"EPSG:{crs.to_epsg()}"),
+            "pixel_size": [abs(scene.transform.a), abs(scene.transform.e)],
+            "nodata": scene.nodata,
+            "block_shape": list(scene.block_shape),
+            "units": scene.units,
+            "units_detected": scene.units_decision.detected,
+            "units_reason": scene.units_decision.reason,
+            "sample_step": step,
+            "band_info": [],
+            "notes": [],
+        }
+        for band in range(1, scene.band_count + 1):
+            intensity, valid = scene.sample_image(max_pixels, band=band)
+            entry = {"band": band, "description": scene.descriptions[band - 1] if band <= len(scene.descriptions) else None,
+                     "invalid_fraction": float(1.0 - valid.mean())}
+            try:
+                enl = speckle.estimate_looks(intensity, valid, window=window)
+                entry["enl"] = enl
+            except InputError as exc:
+                entry["enl"] = None
+                info["notes"].append(f"band {band}: no looks estimate ({exc})")
+                enl = None
+            if enl is not None and enl < 0.7:
+                if scene.units == "amplitude":
+                    info["notes"].append(f"band {band}: ENL {enl:.2f} < 1 after squaring: the file may hold intensity, not amplitude")
+                else:
+                    info["notes"].append(f"band {band}: ENL {enl:.2f} < 1: no homogeneous area found, or the values are not linear intensity")
+            info["band_info"].append(entry)
+    return info
+
+
+def run(args) -> int:
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", raster.UnitsWarning)
+        info = describe(args.scene, units=args.units, window=args.window)
+    notes = [str(w.message) for w in caught] + info["notes"]
+    if args.json:
+        info["notes"] = notes
+        print(json.dumps(info, indent=2))
+        return 0
+    sample = "" if info["sample_step"] == 1 else f" (from every {info['sample_step']}th row and column)"
+    lines = [
+        f"scene        {info['path']}",
+        f"size         {info['width']} x {info['height']} pixels, {info['bands']} band(s), {info['dtype']}",
+        f"blocks       {info['block_shape'][0]} x {info['block_shape'][1]} (rows x cols)",
+        f"CRS          {info['crs'] or 'none'}",
+        f"pixel size   {info['pixel_size'][0]:g} x {info['pixel_size'][1]:g}",
+        f"nodata       {'none' if info['nodata'] is None else info['nodata']}",
+        f"units        {info['units']} ({info['units_reason']})",
+    ]
+    for b in info["band_info"]:
+        label = f"band {b['band']}" + (f" ({b['description']})" if b["description"] else "")
+        enl = "n/a" if b["enl"] is None else f"{b['enl']:.2f}"
+        lines.append(f"{label:<12} invalid {100 * b['invalid_fraction']:.2f}%{sample}, estimated looks (ENL) {enl}")
+    print("\n".join(lines))
+    for note in notes:
+        print(f"despeck: warning: {note}", file=sys.stderr)
+    return 0
