@@ -119,12 +119,17 @@ def resolve_tiling(shape, model, *, tile=None, overlap=None) -> TileGrid:
         Along each axis the tiler then takes the smallest side, not above this, that
         needs no more tiles, so little work is spent on padding past the scene border.
     overlap : int, optional
-        Pixels shared by neighbouring tiles; at least the receptive field minus one.
+        Pixels shared by neighbouring tiles. With at least the receptive field minus one,
+        half the receptive field is discarded at each tile edge and the rest blended, and
+        a plain CNN's tiled output equals its whole-scene output. A smaller overlap is
+        allowed (with a warning): a quarter of it is discarded at each edge and the middle
+        half blended. For networks that downsample (U-Nets) it is rounded up to their
+        size multiple so every tile sees the same pooling grid as the whole scene.
 
     Raises
     ------
     InputError
-        Tile smaller than the receptive field, overlap too small or not below the tile.
+        Tile smaller than the receptive field, overlap not below the tile.
     """
     rf = _check_model(model)
     multiple = _size_multiple(model)
@@ -137,16 +142,28 @@ def resolve_tiling(shape, model, *, tile=None, overlap=None) -> TileGrid:
     if overlap is None:
         overlap = d_overlap
         if tile is not None and overlap >= tile:
-            overlap = rf - 1
-    elif overlap < rf - 1:
-        raise InputError(
-            f"overlap ({overlap}) is smaller than the model's receptive field minus one ({rf - 1}); use at least {rf - 1}"
+            overlap = _round_up(rf - 1, multiple)
+    elif multiple > 1:
+        # Keeps every tile on the same pooling grid as the whole scene.
+        overlap = _round_up(overlap, multiple)
+    if overlap < rf - 1:
+        # Networks with a large nominal receptive field (U-Nets) are usually applied with
+        # less: discard a quarter of the overlap at each edge and blend the middle half.
+        margin = overlap // 4
+        warnings.warn(
+            f"overlap ({overlap}) is smaller than the model's receptive field minus one ({rf - 1}): "
+            "tiles will differ slightly from whole-scene inference near their edges; blending hides the seams",
+            InferenceWarning, stacklevel=3,
         )
     if tile is None:
         tile = max(d_tile, overlap + 8 * multiple)
     if overlap >= tile:
         raise InputError(f"overlap ({overlap}) must be smaller than the tile size ({tile})")
     return TileGrid.fitted(shape, tile, overlap, margin, multiple=multiple)
+
+
+def _round_up(value, multiple):
+    return -(-int(value) // multiple) * multiple
 
 
 def bf16_supported() -> bool:

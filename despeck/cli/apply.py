@@ -1,0 +1,197 @@
+"""``despeck apply``: despeckle one scene or a batch of scenes with a trained model.
+
+Inputs are files, folders (every GeoTIFF directly inside) or glob patterns. Each
+output is written to a temporary file beside its destination and renamed when
+complete; existing outputs are skipped unless ``--overwrite``, so an interrupted
+batch run restarts where it stopped. The work itself is
+:func:`despeck.inference.despeckle_file`.
+"""
+
+from __future__ import annotations
+
+import glob
+import os
+import pathlib
+import signal
+import sys
+import time
+import warnings
+
+from ..errors import DespeckError, InputError, ModelFileError
+
+# Files a folder input contributes (other rasters can still be named one by one).
+_RASTER_SUFFIXES = {".tif", ".tiff"}
+
+DEFAULT_SUFFIX = "_despeckled"
+
+
+def add_arguments(parser):
+    parser.add_argument("inputs", nargs="+", metavar="IN",
+                        help="input rasters: files, folders (their .tif/.tiff files) or glob patterns")
+    parser.add_argument("--model", metavar="FILE",
+                        help="model file (.safetensors); default: the bundled starter model")
+    where = parser.add_mutually_exclusive_group()
+    where.add_argument("--out", metavar="PATH", help="output file (one input only)")
+    where.add_argument("--out-dir", metavar="DIR",
+                       help="folder for the outputs (default: beside each input)")
+    parser.add_argument("--suffix", default=DEFAULT_SUFFIX,
+                        help=f"added to each input's name to make its output's (default {DEFAULT_SUFFIX!r})")
+    parser.add_argument("--units", choices=("intensity", "amplitude", "db", "complex"),
+                        help="units of the inputs (default: detected, else linear intensity)")
+    parser.add_argument("--out-units", choices=("intensity", "amplitude", "db"),
+                        help="units of the outputs (default: the input's)")
+    parser.add_argument("--tile", type=int, metavar="N",
+                        help="largest tile side in pixels (default: from the model's receptive field)")
+    parser.add_argument("--overlap", type=int, metavar="N",
+                        help="pixels shared by neighbouring tiles (at least the receptive field minus one)")
+    parser.add_argument("--threads", type=int, metavar="N", help="CPU threads (default: all cores)")
+    parser.add_argument("--bf16", action="store_true",
+                        help="run the network in bfloat16 where the CPU supports it (faster, slightly less exact)")
+    parser.add_argument("--overwrite", action="store_true",
+                        help="replace existing outputs (inputs are never overwritten)")
+    parser.add_argument("--quiet", action="store_true", help="no progress bars or per-file lines")
+
+
+def starter_model_path() -> pathlib.Path:
+    """Where the bundled starter model lives inside the installed package."""
+    return pathlib.Path(__file__).resolve().parent.parent / "weights" / "starter.safetensors"
+
+
+def expand_inputs(patterns) -> list[pathlib.Path]:
+    """Files named by ``patterns`` (files, folders, globs), in order, without duplicates.
+
+    Raises
+    ------
+    InputError
+        A pattern matches nothing, or no input is left at all.
+    """
+    found, seen = [], set()
+    for pattern in patterns:
+        path = pathlib.Path(pattern).expanduser()
+        if path.is_dir():
+            matches = sorted(p for p in path.iterdir() if p.is_file() and p.suffix.lower() in _RASTER_SUFFIXES)
+            if not matches:
+                raise InputError(f"{pattern}: folder holds no .tif/.tiff files")
+        elif path.exists():
+            matches = [path]
+        elif glob.has_magic(str(pattern)):
+            matches = sorted(pathlib.Path(p) for p in glob.glob(os.path.expanduser(str(pattern)), recursive=True))
+            matches = [p for p in matches if p.is_file()]
+            if not matches:
+                raise InputError(f"{pattern}: no input file matched")
+        else:
+            raise InputError(f"{pattern}: no such file or folder")
+        for p in matches:
+            key = os.path.realpath(p)
+            if key not in seen:
+                seen.add(key)
+                found.append(p)
+    if not found:
+        raise InputError("no input matched")
+    return found
+
+
+def plan_outputs(inputs, *, out=None, out_dir=None, suffix=DEFAULT_SUFFIX) -> list[pathlib.Path]:
+    """Output path of each input; refuses --out with several inputs and clashing outputs."""
+    if out is not None and len(inputs) != 1:
+        raise InputError(f"--out names one file but {len(inputs)} inputs matched; use --out-dir")
+    if out is None and not suffix and out_dir is None:
+        raise InputError("--suffix is empty and no --out-dir given: outputs would replace the inputs")
+    outputs = []
+    for path in inputs:
+        if out is not None:
+            outputs.append(pathlib.Path(out).expanduser())
+            continue
+        folder = pathlib.Path(out_dir).expanduser() if out_dir is not None else path.parent
+        outputs.append(folder / f"{path.stem}{suffix}.tif")
+    by_target = {}
+    input_keys = {os.path.realpath(p): p for p in inputs}
+    for src, dst in zip(inputs, outputs):
+        key = os.path.realpath(dst)
+        if key in input_keys:
+            raise InputError(f"{dst}: output would overwrite the input {input_keys[key]}; change --suffix or --out-dir")
+        if key in by_target:
+            raise InputError(f"{by_target[key]} and {src} would both be written to {dst}; use separate --out-dir runs")
+        by_target[key] = src
+    return outputs
+
+
+def load_model(path):
+    """The model from ``--model``, or the bundled starter model."""
+    from ..models import load_model_file
+
+    if path is None:
+        path = starter_model_path()
+        if not path.exists():
+            raise ModelFileError(
+                f"no --model given and the bundled starter model is not installed ({path}); pass --model FILE"
+            )
+    return load_model_file(path)
+
+
+def _raise_on_term(signum, frame):  # noqa: ARG001
+    # SIGTERM becomes an exception so the writer's context manager removes its temporary file.
+    raise KeyboardInterrupt
+
+
+def run(args) -> int:
+    from ..inference import resolve_tiling
+
+    inputs = expand_inputs(args.inputs)
+    outputs = plan_outputs(inputs, out=args.out, out_dir=args.out_dir, suffix=args.suffix)
+    if args.threads is not None and args.threads < 1:
+        raise InputError(f"--threads must be at least 1, got {args.threads}")
+    model = load_model(args.model)
+    # Check the tile options once, before any file is touched.
+    side = 2 * max(model.receptive_field, args.tile or 1)
+    resolve_tiling((side, side), model, tile=args.tile, overlap=args.overlap)
+
+    shown = set()
+
+    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
+        # The same note about many files is printed once: compare it without its "path: ".
+        text = str(message)
+        key = text.split(": ", 1)[1] if ": " in text else text
+        if key not in shown:
+            shown.add(key)
+            print(f"despeck: warning: {text}", file=sys.stderr)
+
+    previous = signal.signal(signal.SIGTERM, _raise_on_term)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("always")
+            warnings.showwarning = show
+            done, skipped, failed = _run_all(args, inputs, outputs, model)
+    finally:
+        signal.signal(signal.SIGTERM, previous)
+    if not args.quiet and len(inputs) > 1:
+        print(f"{done} written, {skipped} skipped, {failed} failed")
+    return 2 if failed else 0
+
+
+def _run_all(args, inputs, outputs, model):
+    from ..inference import despeckle_file
+
+    done = skipped = failed = 0
+    for src, dst in zip(inputs, outputs):
+        if dst.exists() and not args.overwrite:
+            skipped += 1
+            if not args.quiet:
+                print(f"{src} -> {dst}: exists, skipped (use --overwrite to redo)")
+            continue
+        start = time.perf_counter()
+        try:
+            despeckle_file(
+                src, dst, model, units=args.units, out_units=args.out_units, overwrite=args.overwrite,
+                tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=args.bf16,
+                progress=not args.quiet,
+            )
+        except DespeckError as exc:
+            # One bad scene must not stop a batch; the exit status reports it.
+            failed += 1
+            print(f"despeck: error: {exc}", file=sys.stderr)
+            continue
+        done += 1
+        if not args.quiet:
+            print(f"{src} -> {dst} ({time.perf_counter() - start:.1f} s)")
+    return done, skipped, failed
