@@ -223,7 +223,7 @@ def detect_units(sample=None, *, dtype="float32", band_count=1, descriptions=(),
     6. otherwise linear ``intensity`` is assumed and the decision says so.
 
     Warnings (not errors) flag declared dB without a single negative value and
-    linear data with an implausibly narrow dynamic range (p99/p1 < 1.5 in intensity,
+    linear data with an implausibly narrow dynamic range (p99/p1 < 3 in intensity,
     which speckled linear data do not have but dB values often do).
 
     Parameters
@@ -313,7 +313,7 @@ def _doubts(values, units) -> list:
             if units == "amplitude":
                 positive = positive * positive
             p1, p99 = np.percentile(positive, [1, 99])
-            if p99 < 1.5 * p1:
+            if p99 < 3.0 * p1:
                 notes.append(
                     f"values declared or assumed as linear {units} have a very narrow dynamic range "
                     f"(1st-99th percentile {p1:.3g} to {p99:.3g}); is the file in dB?"

@@ -36,7 +36,9 @@ def add_arguments(parser):
 
 
 def run(args) -> int:
-    speckle.check_looks(args.looks, "--looks")
+    looks = speckle.check_looks(args.looks, "--looks")
+    if args.correlated and looks != round(looks):
+        raise InputError(f"--looks must be a whole number with --correlated (single looks are averaged), got {args.looks:g}")
     if args.seed is not None and args.seed < 0:
         raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
     seed = args.seed
