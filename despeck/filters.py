@@ -65,7 +65,7 @@ __all__ = [
 STRIP_PIXELS = 1 << 19
 
 #: Size and seed of the simulated pure-speckle image that calibrates the radiometric
-#: correction of the Gamma-MAP and improved sigma filters (see :func:`_calibrated`).
+#: correction of the Gamma-MAP, refined Lee and improved sigma filters (see :func:`_calibrated`).
 CALIBRATION_SIZE = 512
 CALIBRATION_SEED = 8675309
 
@@ -608,7 +608,7 @@ def gamma_map(intensity, *, looks, window=None, mask=None, workers=None, cmax=No
 
 # --------------------------------------------------------------------------- refined Lee
 
-def _plan_refined_lee(looks, window):
+def _plan_refined_lee(looks, window, correct_bias=True):
     L = check_looks(looks)
     w = check_window(window)
     if w < 7 or (w - 1) % 4 != 2:
@@ -662,26 +662,30 @@ def _plan_refined_lee(looks, window):
             sums.append(total)
         return sums
 
-    def kernel(p, ok):
+    def core_and_mask(p, ok):
         hc, wc = p.shape[0] - 2 * half, p.shape[1] - 2 * half
         # 3 x 3 sub-window means on the core
         n_sub = _box_count(ok, sub)
         m_sub = _box_sum(p, sub) / n_sub
-        m_sub = np.where(n_sub > 0, m_sub, 0.0)
         M = [[m_sub[half + oy : half + oy + hc, half + ox : half + ox + wc] for ox in offsets] for oy in offsets]
-        g = np.stack([
-            np.abs((M[0][2] + M[1][2] + M[2][2]) - (M[0][0] + M[1][0] + M[2][0])),  # vertical edge
-            np.abs((M[2][0] + M[2][1] + M[2][2]) - (M[0][0] + M[0][1] + M[0][2])),  # horizontal edge
-            np.abs((M[0][1] + M[0][2] + M[1][2]) - (M[1][0] + M[2][0] + M[2][1])),  # edge along the main diagonal
-            np.abs((M[0][0] + M[0][1] + M[1][0]) - (M[1][2] + M[2][1] + M[2][2])),  # edge along the anti-diagonal
-        ])
-        direction = np.argmax(g, axis=0)
-        centre = M[1][1]
-        # the half window on the side whose sub-mean is closer to the centre's
-        pairs = ((M[1][0], M[1][2]), (M[0][1], M[2][1]), (M[0][2], M[2][0]), (M[0][0], M[2][2]))
+        # a sub-window with no valid pixel (outside the image, nodata) shows no edge:
+        # it takes the centre's sub-mean (the centre sub-window always has the valid centre)
+        M = [[np.where(np.isfinite(m), m, M[1][1]) for m in row] for row in M]
+        # the two sides of an edge in each direction, as sums of three sub-means, in the
+        # order of the masks: left/right, top/bottom, the main diagonal's upper-right and
+        # lower-left, the anti-diagonal's upper-left and lower-right
+        sides = (
+            (M[0][0] + M[1][0] + M[2][0], M[0][2] + M[1][2] + M[2][2]),
+            (M[0][0] + M[0][1] + M[0][2], M[2][0] + M[2][1] + M[2][2]),
+            (M[0][1] + M[0][2] + M[1][2], M[1][0] + M[2][0] + M[2][1]),
+            (M[0][0] + M[0][1] + M[1][0], M[1][2] + M[2][1] + M[2][2]),
+        )
+        direction = np.argmax(np.stack([np.abs(b - a) for a, b in sides]), axis=0)
+        centre = 3.0 * M[1][1]
+        # the half window on the side whose sub-means are closer to the centre's
         choice = np.empty((hc, wc), dtype=np.int8)
-        for d, (first, second) in enumerate(pairs):
-            second_side = np.abs(np.log(second / centre)) < np.abs(np.log(first / centre))
+        for d, (first, second) in enumerate(sides):
+            second_side = np.abs(second - centre) < np.abs(first - centre)
             choice = np.where(direction == d, 2 * d + second_side, choice)
         s1 = mask_sums(p, hc, wc)
         s2 = mask_sums(p * p, hc, wc)
@@ -701,31 +705,43 @@ def _plan_refined_lee(looks, window):
         var = np.maximum(S2 / N - mean * mean, 0.0)
         weight = np.clip(_kuan_gain(_ci2(mean, var), cu2), 0.0, 1.0)
         x = _crop(p, half)
-        return np.where(N > 0, mean + weight * (x - mean), x)
+        return np.where(N > 0, mean + weight * (x - mean), x), (N > 0) & (var > 0)
 
+    if not correct_bias:
+        return _Plan(lambda p, ok: core_and_mask(p, ok)[0], half)
+    kernel, _ = _calibrated(core_and_mask, half, L, ("refined-lee", L, w))
     return _Plan(kernel, half)
 
 
-def refined_lee(intensity, *, looks, window=None, mask=None, workers=None):
+def refined_lee(intensity, *, looks, window=None, mask=None, workers=None, correct_bias=True):
     """Refined Lee filter: LMMSE over the edge-aligned half window most like the centre.
 
     The window (7, 11, 15, ...) is covered by 3 x 3 overlapping sub-windows of size
     ``(window - 1) / 2``; their means give gradients in four directions (vertical,
-    horizontal, two diagonals). Of the two half windows on either side of the
+    horizontal, two diagonals), each the difference of the sums of the three
+    sub-means on either side. Of the two half windows on either side of the
     strongest edge (each including the line through the centre), the one whose
-    sub-mean is closer to the centre sub-mean is used for the local mean and
+    three sub-means average closer to the centre sub-mean is used for the local mean and
     variance, and the LMMSE gain ``(1 - Cu^2 / Ci^2) / (1 + Cu^2)`` is applied.
 
-    Parameters are those of :func:`boxcar`; ``window`` must be 7, 11, 15, ...
+    Parameters
+    ----------
+    correct_bias : bool
+        Apply the radiometric correction described below (default True).
+
+    Other parameters are those of :func:`boxcar`; ``window`` must be 7, 11, 15, ...
 
     Notes
     -----
     The mask details and the gradient templates are from memory (METHODS.md
-    section 3). Bias correction: comparing the sides by their differences from the
-    centre, as for additive noise, favours the darker side under multiplicative
-    speckle (darker sub-means scatter less) and biased the mean by -0.06 dB at
-    L = 1 in our simulations; comparing ratios removes this (mean preservation is
-    tested). No other correction.
+    section 3). Bias correction: under multiplicative speckle darker sub-means
+    scatter less, so the side closer to the centre is more often the darker one
+    and the result comes out low on homogeneous areas (-0.06 dB at L = 1, -0.02 dB
+    at L = 4 in our simulations). Comparing ratios instead removes that bias but
+    picks the wrong side next to strong edges, so the differences are kept and the
+    filtered pixels whose half window is not constant are multiplied by a factor
+    measured once per (looks, window) on simulated unit-mean speckle (see
+    ``_calibrated``). Mean preservation is tested.
 
     References
     ----------
@@ -736,7 +752,8 @@ def refined_lee(intensity, *, looks, window=None, mask=None, workers=None):
     filtering and its implication for classification. IEEE TGRS 37(5), 2363-2373.
     doi:10.1109/36.789635
     """
-    return _apply(_plan_refined_lee(looks, _window("refined-lee", window)), intensity, mask, workers)
+    plan = _plan_refined_lee(looks, _window("refined-lee", window), correct_bias=correct_bias)
+    return _apply(plan, intensity, mask, workers)
 
 
 # --------------------------------------------------------------------------- improved Lee sigma
@@ -824,7 +841,8 @@ def _plan_improved_sigma(looks, window, xi=0.9, point_threshold=None, point_coun
             ci2 = np.where(var > 0, var / (mean * mean), 0.0)
             gain = np.clip(np.where(ci2 > 0, (1.0 - eta2 / ci2) / (1.0 + eta2), 0.0), 0.0, 1.0)
             est = np.where(n >= 2, mean + gain * (centre - mean), prior)
-            return np.where(point, centre, est), ~point
+            # kept pixels that are all equal carry no speckle, hence no speckle bias to correct
+            return np.where(point, centre, est), ~point & (n >= 2) & (var > 0)
 
         return core_and_mask
 
@@ -1183,7 +1201,7 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
                         padded[top : top + (s1 - s0), plan.halo : plan.halo + w] = np.where(ok, data, 0.0)
                         pvalid[top : top + (s1 - s0), plan.halo : plan.halo + w] = ok
                         core_valid = ok[r0 - s0 : r0 - s0 + (r1 - r0)]
-                        batch.append((r0, r1, core_valid, pool.submit(plan.kernel, padded, pvalid)))
+                        batch.append((r0, r1, core_valid, pool.submit(_call, plan, padded, pvalid)))
                     for r0, r1, core_valid, future in batch:
                         result = future.result().astype(np.float32)
                         result[~core_valid] = 0.0
