@@ -1,0 +1,397 @@
+"""Training data: random patches of clean references, speckled on the fly.
+
+Clean references (rasters in any units :mod:`despeck.raster` reads, or procedural
+scenes from :mod:`despeck.synthetic`) are held in memory as float32 intensity plus a
+validity mask. A training sample is a random ``patch_size`` square whose valid fraction
+is at least ``min_valid_fraction`` (nodata is skipped by construction: only such
+positions are ever drawn), a random flip/rotation, and fresh Gamma speckle with a fixed
+number of looks or one drawn uniformly from a range, optionally spatially correlated.
+Positions are drawn uniformly over all allowed positions of all references, so an epoch
+has ``patches_per_epoch`` samples whatever the number of files.
+
+Every sample is a pure function of ``(seed, epoch, index)``: the sampler yields
+``(epoch, index)`` keys and the dataset seeds a fresh numpy generator from them. The
+same run therefore sees the same data whether or not it was interrupted, which is what
+makes resuming from a checkpoint reproduce an uninterrupted run. Validation patches
+and their speckle are drawn once from a separate seed and never change.
+"""
+
+from __future__ import annotations
+
+import glob
+import math
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import torch
+from scipy import special
+from torch.utils.data import DataLoader, Dataset, Sampler
+
+from ..errors import ConfigError, DespeckError, RasterError
+from ..speckle import gamma_speckle
+from .config import TrainConfig
+from .losses import psnr_db
+
+__all__ = ["Reference", "PatchDataset", "EpochSampler", "ValidationSet", "TrainingData", "resolve_raster_paths"]
+
+RASTER_SUFFIXES = {".tif", ".tiff", ".vrt", ".img", ".jp2", ".png", ".jpg", ".jpeg", ".bmp", ".nc", ".hdf", ".h5"}
+
+
+def resolve_raster_paths(entries, key: str) -> list[Path]:
+    """Expand files, folders (their rasters, not recursive) and glob patterns; one-line ConfigError if empty."""
+    paths: list[Path] = []
+    for entry in entries:
+        text = str(entry)
+        p = Path(text).expanduser()
+        if any(ch in text for ch in "*?["):
+            found = sorted(Path(m) for m in glob.glob(str(p)) if Path(m).is_file())
+            if not found:
+                raise ConfigError(f"config key {key}: no files match {text!r}")
+            paths += found
+        elif p.is_dir():
+            found = sorted(f for f in p.iterdir() if f.is_file() and f.suffix.lower() in RASTER_SUFFIXES
+                           and not f.name.startswith("."))
+            if not found:
+                raise ConfigError(
+                    f"config key {key}: folder {p} holds no raster files ({', '.join(sorted(RASTER_SUFFIXES))})"
+                )
+            paths += found
+        elif p.is_file():
+            paths.append(p)
+        else:
+            raise ConfigError(f"config key {key}: {p} does not exist")
+    unique = list(dict.fromkeys(q.resolve() for q in paths))
+    return unique
+
+
+def _allowed_positions(valid: np.ndarray, patch: int, min_fraction: float, row_lo: int, row_hi: int) -> np.ndarray:
+    """Boolean map of top-left corners whose patch lies in rows [row_lo, row_hi) and is valid enough."""
+    h, w = valid.shape
+    out = np.zeros((max(h - patch + 1, 0), max(w - patch + 1, 0)), dtype=bool)
+    if row_hi - row_lo < patch or w < patch:
+        return out
+    # Box sums from a summed-area table (int32 is enough for < 2**31 pixels per patch).
+    sat = np.zeros((h + 1, w + 1), dtype=np.int32)
+    np.cumsum(np.cumsum(valid, axis=0, dtype=np.int32), axis=1, out=sat[1:, 1:])
+    counts = sat[patch:, patch:] - sat[:-patch, patch:] - sat[patch:, :-patch] + sat[:-patch, :-patch]
+    need = math.ceil(min_fraction * patch * patch - 1e-9)
+    ok = counts >= need
+    rows = np.arange(ok.shape[0])
+    ok &= ((rows >= row_lo) & (rows + patch <= row_hi))[:, None]
+    return ok
+
+
+class _PositionTable:
+    """Uniform sampling of allowed top-left positions without listing them all."""
+
+    def __init__(self, allowed: np.ndarray):
+        self.allowed = allowed
+        self.row_cum = np.cumsum(allowed.sum(axis=1, dtype=np.int64))
+        self.total = int(self.row_cum[-1]) if self.row_cum.size else 0
+
+    def position(self, k: int):
+        r = int(np.searchsorted(self.row_cum, k, side="right"))
+        before = int(self.row_cum[r - 1]) if r else 0
+        c = int(np.flatnonzero(self.allowed[r])[k - before])
+        return r, c
+
+
+@dataclass
+class Reference:
+    """One clean reference in memory with its training and validation positions."""
+
+    name: str
+    intensity: np.ndarray
+    valid: np.ndarray
+    log_mean: float
+    train: _PositionTable
+    val: _PositionTable
+
+
+def _make_reference(name, intensity, valid, patch, min_fraction, val_rows, role):
+    h, w = intensity.shape
+    if h < patch or w < patch:
+        raise ConfigError(f"config key data.patch_size: {patch} is larger than raster {name} ({w}x{h} pixels)")
+    if not valid.any():
+        raise RasterError(f"{name}: every pixel is nodata or invalid; nothing to train on")
+    log_mean = float(np.mean(np.log(intensity[valid].astype(np.float64))))
+    if role == "train":
+        train_hi = h - val_rows if val_rows else h
+        train = _PositionTable(_allowed_positions(valid, patch, min_fraction, 0, train_hi))
+        val = _PositionTable(_allowed_positions(valid, patch, min_fraction, train_hi, h) if val_rows
+                             else np.zeros((0, 0), bool))
+    else:
+        train = _PositionTable(np.zeros((0, 0), bool))
+        val = _PositionTable(_allowed_positions(valid, patch, min_fraction, 0, h))
+    return Reference(name, intensity, valid, log_mean, train, val)
+
+
+def _augment(a: np.ndarray, k: int) -> np.ndarray:
+    # The eight symmetries of the square: rot90 by k % 4, then a flip for k >= 4.
+    a = np.rot90(a, k % 4)
+    return np.ascontiguousarray(a[:, ::-1] if k >= 4 else a)
+
+
+def _speckle(clean, looks, *, rng, correlated, oversampling, taper):
+    if correlated:
+        from ..speckle import simulate_correlated_intensity
+
+        return simulate_correlated_intensity(clean, max(1, int(round(looks))), rng=rng,
+                                             oversampling=oversampling, taper=taper).astype(np.float32)
+    return (clean * gamma_speckle(clean.shape, looks, rng=rng)).astype(np.float32)
+
+
+def log_speckle_mean(looks) -> float:
+    """``psi(L) - ln L``, the mean log of unit-mean L-look speckle (METHODS.md section 1)."""
+    return float(special.digamma(looks) - math.log(looks))
+
+
+class EpochSampler(Sampler):
+    """Yields ``(epoch, index)`` keys; Lightning calls :meth:`set_epoch` before each epoch."""
+
+    def __init__(self, length: int):
+        self.length = int(length)
+        self.epoch = 0
+
+    def set_epoch(self, epoch: int) -> None:
+        self.epoch = int(epoch)
+
+    def __iter__(self):
+        e = self.epoch
+        return iter([(e, i) for i in range(self.length)])
+
+    def __len__(self):
+        return self.length
+
+
+class PatchDataset(Dataset):
+    """Random speckled training patches; item ``(epoch, index)`` is deterministic.
+
+    Each item is a dict of tensors: ``noisy``, ``clean``, ``target`` (clean, or an
+    independent speckled view for noisy-target losses), ``valid`` (each ``(1, p, p)``),
+    ``looks`` and ``log_offset`` (scalars). ``log_offset`` imitates the scene-level
+    normalisation of inference: the reference's mean clean log plus ``psi(L) - ln L``
+    (the expected mean log of the speckled scene) plus a random jitter of
+    ``offset_jitter`` nepers so the network does not rely on the offset being exact.
+    """
+
+    def __init__(self, references, config: TrainConfig):
+        self.refs = [r for r in references if r.train.total > 0]
+        self.cum = np.cumsum([r.train.total for r in self.refs])
+        self.config = config
+        self.length = config.data.patches_per_epoch
+
+    def __len__(self):
+        return self.length
+
+    def __getitem__(self, key):
+        epoch, index = key if isinstance(key, tuple) else (0, int(key))
+        c = self.config
+        rng = np.random.default_rng([c.trainer.seed, 1, int(epoch), int(index)])
+        k = int(rng.integers(int(self.cum[-1])))
+        f = int(np.searchsorted(self.cum, k, side="right"))
+        ref = self.refs[f]
+        r0, c0 = ref.train.position(k - (int(self.cum[f - 1]) if f else 0))
+        p = c.data.patch_size
+        clean = ref.intensity[r0:r0 + p, c0:c0 + p]
+        valid = ref.valid[r0:r0 + p, c0:c0 + p]
+        if c.data.augment:
+            t = int(rng.integers(8))
+            clean, valid = _augment(clean, t), _augment(valid, t)
+        clean = np.where(valid, clean, 0).astype(np.float32)
+        looks = c.speckle.looks
+        looks = float(rng.uniform(looks[0], looks[1])) if isinstance(looks, list) and len(looks) == 2 else float(
+            looks[0] if isinstance(looks, list) else looks)
+        correlated = c.speckle.correlated_fraction > 0 and rng.random() < c.speckle.correlated_fraction
+        if correlated:
+            looks = float(max(1, round(looks)))
+        kw = dict(rng=rng, correlated=correlated, oversampling=c.speckle.oversampling, taper=c.speckle.taper)
+        noisy = _speckle(clean, looks, **kw)
+        target = _speckle(clean, looks, **kw) if c.loss.target == "noisy" else clean
+        offset = ref.log_mean + log_speckle_mean(looks) + c.data.offset_jitter * float(rng.standard_normal())
+        return _as_item(noisy, clean, target, valid, looks, offset)
+
+
+def _as_item(noisy, clean, target, valid, looks, offset):
+    return {
+        "noisy": torch.from_numpy(np.ascontiguousarray(noisy, dtype=np.float32))[None],
+        "clean": torch.from_numpy(np.ascontiguousarray(clean, dtype=np.float32))[None],
+        "target": torch.from_numpy(np.ascontiguousarray(target, dtype=np.float32))[None],
+        "valid": torch.from_numpy(np.ascontiguousarray(valid, dtype=bool))[None],
+        "looks": torch.tensor(looks, dtype=torch.float32),
+        "log_offset": torch.tensor(offset, dtype=torch.float32),
+    }
+
+
+class ValidationSet(Dataset):
+    """Fixed validation patches with fixed speckle, drawn once from the validation regions.
+
+    Also holds a homogeneous patch (constant reflectivity at the references' typical
+    level, speckled with ``val_looks``) for the ENL and radiometric-bias columns, the
+    fixed PSNR/SSIM data range (dB) and the noisy input's own PSNR for comparison.
+    """
+
+    def __init__(self, references, config: TrainConfig):
+        c = config
+        refs = [r for r in references if r.val.total > 0]
+        if not refs:
+            raise ConfigError(
+                "config key data.val_fraction: no raster has room for a validation strip of "
+                f"{c.data.patch_size} rows below its training area (rasters need at least "
+                f"{2 * c.data.patch_size} valid rows); list data.validation files or use taller rasters"
+            )
+        rng = np.random.default_rng([c.trainer.seed, 2])
+        cum = np.cumsum([r.val.total for r in refs])
+        looks = self.looks = float(validation_looks(c))
+        p = c.data.patch_size
+        items = []
+        for _ in range(c.data.val_patches):
+            k = int(rng.integers(int(cum[-1])))
+            f = int(np.searchsorted(cum, k, side="right"))
+            ref = refs[f]
+            r0, c0 = ref.val.position(k - (int(cum[f - 1]) if f else 0))
+            valid = ref.valid[r0:r0 + p, c0:c0 + p].copy()
+            clean = np.where(valid, ref.intensity[r0:r0 + p, c0:c0 + p], 0).astype(np.float32)
+            noisy = (clean * gamma_speckle(clean.shape, looks, rng=rng)).astype(np.float32)
+            target = ((clean * gamma_speckle(clean.shape, looks, rng=rng)).astype(np.float32)
+                      if c.loss.target == "noisy" else clean)
+            offset = ref.log_mean + log_speckle_mean(looks)
+            items.append(_as_item(noisy, clean, target, valid, looks, offset))
+        self.items = items
+        clean_db = np.concatenate([10 * np.log10(it["clean"][it["valid"]].numpy()) for it in items])
+        # One fixed peak for every epoch: the validation references' dB dynamic range.
+        self.data_range_db = float(max(clean_db.max() - clean_db.min(), 1.0))
+        level = float(np.mean([r.log_mean for r in refs]))
+        side = max(2 * p, 128)
+        reflectivity = math.exp(level)
+        noisy = (reflectivity * gamma_speckle((side, side), looks, rng=rng)).astype(np.float32)
+        self.homogeneous = {
+            "noisy": torch.from_numpy(noisy)[None, None],
+            "valid": torch.ones(1, 1, side, side, dtype=torch.bool),
+            "log_offset": torch.tensor([level + log_speckle_mean(looks)], dtype=torch.float32),
+            "reflectivity": reflectivity,
+        }
+        self.noisy_psnr_db = float(np.mean([
+            psnr_db(it["clean"][0].numpy(), it["noisy"][0].numpy(), it["valid"][0].numpy(), self.data_range_db)
+            for it in items
+        ]))
+
+    def __len__(self):
+        return len(self.items)
+
+    def __getitem__(self, i):
+        return self.items[i]
+
+
+def validation_looks(config: TrainConfig) -> float:
+    s = config.speckle
+    if s.val_looks is not None:
+        return float(s.val_looks)
+    return float(min(s.looks) if isinstance(s.looks, list) else s.looks)
+
+
+def _worker_init(_):
+    # Workers generate patches; one thread each so they do not compete with the
+    # training process's intra-op threads for the same cores.
+    torch.set_num_threads(1)
+
+
+class TrainingData:
+    """All references, the training dataset and the validation set for one config.
+
+    Reading and checking happen here, before any training starts: missing files,
+    unreadable rasters, patches larger than a raster, rasters without a single
+    sufficiently valid patch, and too many pixels for memory all raise one-line errors.
+    """
+
+    def __init__(self, config: TrainConfig, progress: bool = False):
+        self.config = config
+        d = config.data
+        p = d.patch_size
+        references = []
+        total_pixels = 0
+
+        def add(name, intensity, valid, role):
+            nonlocal total_pixels
+            total_pixels += intensity.size
+            if total_pixels > d.max_pixels:
+                raise ConfigError(
+                    f"config key data.max_pixels: the references exceed {d.max_pixels} pixels at {name}; "
+                    "crop them, list fewer files or raise data.max_pixels"
+                )
+            h = intensity.shape[0]
+            val_rows = 0
+            if role == "train" and not d.validation and h >= 2 * p:
+                val_rows = max(p, math.ceil(d.val_fraction * h))
+                val_rows = min(val_rows, h - p)
+            references.append(_make_reference(name, intensity, valid, p, d.min_valid_fraction, val_rows, role))
+
+        train_paths = resolve_raster_paths(d.train, "data.train") if d.train else []
+        val_paths = resolve_raster_paths(d.validation, "data.validation") if d.validation else []
+        for role, paths in (("train", train_paths), ("val", val_paths)):
+            for path in paths:
+                intensity, valid = _read_reference(path, d.units, d.band)
+                add(str(path), intensity, valid, role)
+        if d.synthetic_scenes:
+            from ..synthetic import make_scene
+
+            n = d.synthetic_scenes + (0 if (train_paths or val_paths) else 1)
+            for i in range(n):
+                scene = np.asarray(make_scene((d.synthetic_size, d.synthetic_size),
+                                              rng=np.random.default_rng([config.trainer.seed, 3, i])),
+                                   dtype=np.float32)
+                valid = np.isfinite(scene) & (scene > 0)
+                # Without files, the extra procedural scene is the validation scene.
+                role = "val" if i == d.synthetic_scenes else "train"
+                add(f"synthetic scene {i}", scene, valid, role)
+        self.references = references
+        if not any(r.train.total for r in references):
+            names = ", ".join(r.name for r in references[:3])
+            raise RasterError(
+                f"no {p}x{p} training patch with at least {d.min_valid_fraction:.0%} valid pixels in {names}"
+                f"{' ...' if len(references) > 3 else ''}; lower data.min_valid_fraction or data.patch_size"
+            )
+        self.train_set = PatchDataset(references, config)
+        self.val_set = ValidationSet(references, config)
+
+    def train_dataloader(self) -> DataLoader:
+        d = self.config.data
+        return DataLoader(
+            self.train_set, batch_size=d.batch_size, sampler=EpochSampler(len(self.train_set)),
+            num_workers=d.num_workers, worker_init_fn=_worker_init if d.num_workers else None,
+            persistent_workers=d.num_workers > 0, drop_last=True,
+        )
+
+    def val_dataloader(self) -> DataLoader:
+        return DataLoader(self.val_set, batch_size=self.config.data.batch_size, shuffle=False)
+
+    def describe(self) -> dict:
+        """JSON-ready description of the training data, for the model file."""
+        c = self.config
+        return {
+            "references": [r.name for r in self.references],
+            "synthetic_scenes": c.data.synthetic_scenes,
+            "units": c.data.units or "detected",
+            "patch_size": c.data.patch_size,
+            "looks": c.speckle.looks,
+            "correlated_fraction": c.speckle.correlated_fraction,
+            "validation_looks": self.val_set.looks,
+        }
+
+
+def _read_reference(path, units, band):
+    from ..raster import read_scene
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            scene = read_scene(path, units=units, band=band)
+    except DespeckError:
+        raise
+    except (OSError, ValueError) as exc:
+        raise RasterError(f"{path}: cannot read ({exc})") from None
+    intensity = np.asarray(scene.intensity, dtype=np.float32)
+    valid = np.asarray(scene.valid, dtype=bool) & np.isfinite(intensity) & (intensity > 0)
+    return intensity, valid

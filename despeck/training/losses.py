@@ -1,0 +1,173 @@
+"""Training losses in the log domain and the validation measures in decibels.
+
+The network's estimate enters every loss as a natural-log intensity ``y_hat``
+(nepers). Losses and what their minimiser is (which fixes the bias correction the
+exported model needs; see :mod:`despeck.models.wrapper`):
+
+* ``gamma_nll`` -- ``exp(t - y_hat) - (t - y_hat) - 1`` with ``t`` the log target: the
+  Gamma negative log-likelihood ``y_hat + I exp(-y_hat)`` shifted by its minimum so it
+  is zero for a perfect estimate (a Gamma deviance). Minimised at
+  ``y_hat = ln E[I_target | input]``: the linear output estimates the mean intensity,
+  no correction needed, whether the target is clean or noisy.
+* ``mse_log`` -- ``(y_hat - t)^2``. Against the clean log it is minimised at
+  ``E[ln R | input]`` (no correction; geometric-mean unbiased on homogeneous areas).
+  Against a noisy L-look log target it would converge to ``ln R + psi(L) - ln L``, so the
+  target gets ``ln L - psi(L)`` added per sample (exact also when L varies per sample).
+* optional ``tv_weight`` times the mean absolute log difference between neighbours.
+
+Validation PSNR and SSIM are computed on ``10 log10`` intensities (the dB domain) with
+scikit-image and a fixed ``data_range`` in dB.
+
+References
+----------
+Chierchia, G., Cozzolino, D., Poggi, G., Verdoliva, L. (2017). SAR image despeckling
+through convolutional neural networks. IGARSS 2017, arXiv:1704.00275.
+Wang, P., Zhang, H., Patel, V. M. (2017). SAR image despeckling using a convolutional
+neural network. IEEE SPL 24(12), 1763-1767 (L2 + total-variation loss).
+Lehtinen, J. et al. (2018). Noise2Noise: learning image restoration without clean data.
+ICML 2018, arXiv:1803.04189.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import torch
+from torch import nn
+
+from ..errors import InputError
+
+__all__ = [
+    "gamma_nll",
+    "log_mse",
+    "total_variation",
+    "log_target",
+    "DespeckleLoss",
+    "psnr_db",
+    "ssim_db",
+]
+
+# exp(d) with d above this would overflow float32 gradients; targets that bright relative
+# to the estimate (e^30 ~ 130 dB) only occur with corrupt data.
+_MAX_LOG_GAP = 30.0
+
+
+def _masked_mean(values, mask):
+    if mask is None:
+        return values.mean()
+    m = mask.to(values.dtype)
+    return (values * m).sum() / m.sum().clamp(min=1.0)
+
+
+def gamma_nll(pred_log, target_log, mask=None):
+    """Gamma deviance ``exp(d) - d - 1``, ``d = target_log - pred_log``, averaged over ``mask``."""
+    d = (target_log - pred_log).clamp(max=_MAX_LOG_GAP)
+    return _masked_mean(torch.expm1(d) - d, mask)
+
+
+def log_mse(pred_log, target_log, mask=None):
+    """Mean squared log difference (nepers squared) over ``mask``."""
+    return _masked_mean((pred_log - target_log) ** 2, mask)
+
+
+def total_variation(pred_log, mask=None):
+    """Mean absolute difference between horizontal and vertical neighbours (both valid)."""
+    dx = (pred_log[..., :, 1:] - pred_log[..., :, :-1]).abs()
+    dy = (pred_log[..., 1:, :] - pred_log[..., :-1, :]).abs()
+    if mask is None:
+        return dx.mean() + dy.mean()
+    mx = mask[..., :, 1:] & mask[..., :, :-1]
+    my = mask[..., 1:, :] & mask[..., :-1, :]
+    return _masked_mean(dx, mx) + _masked_mean(dy, my)
+
+
+def log_target(batch, loss_name: str, target: str):
+    """The log target for ``loss_name`` and ``target`` ('clean' or 'noisy'), bias-corrected where needed."""
+    tiny = float(np.finfo(np.float32).tiny)
+    t = torch.log(batch["target"].clamp(min=tiny))
+    if target == "noisy" and loss_name == "mse_log":
+        looks = batch["looks"].to(t.dtype).reshape(-1, 1, 1, 1)
+        # ln L - psi(L): METHODS.md section 5 (Chierchia et al. 2017), per sample.
+        t = t + torch.log(looks) - torch.special.digamma(looks)
+    return t
+
+
+class DespeckleLoss(nn.Module):
+    """The configured training loss on a batch; ``forward(pred_log, batch) -> scalar``.
+
+    Parameters
+    ----------
+    name : {'gamma_nll', 'mse_log'}
+    target : {'clean', 'noisy'}
+    tv_weight : float
+    """
+
+    def __init__(self, name="gamma_nll", target="clean", tv_weight=0.0):
+        super().__init__()
+        if name not in ("gamma_nll", "mse_log"):
+            raise InputError(f"loss must be 'gamma_nll' or 'mse_log', got {name!r}")
+        if target not in ("clean", "noisy"):
+            raise InputError(f"loss target must be 'clean' or 'noisy', got {target!r}")
+        self.name, self.target, self.tv_weight = name, target, float(tv_weight)
+        self._fn = gamma_nll if name == "gamma_nll" else log_mse
+
+    def forward(self, pred_log, batch):
+        mask = batch["valid"]
+        t = log_target(batch, self.name, self.target)
+        loss = self._fn(pred_log, t, mask)
+        if self.tv_weight:
+            loss = loss + self.tv_weight * total_variation(pred_log, mask)
+        return loss
+
+    def describe(self) -> dict:
+        return {
+            "loss": self.name,
+            "target": self.target,
+            "tv_weight": self.tv_weight,
+            "bias_correction": (
+                "none needed (the estimate is the conditional mean intensity)" if self.name == "gamma_nll"
+                else "ln L - psi(L) added to the noisy log target per sample" if self.target == "noisy"
+                else "learned by the network (geometric mean unbiased)"
+            ) + ("; exported log_bias = -s^2/2, s^2 the log variance of the output on a homogeneous "
+                 "validation patch, so the arithmetic mean is kept too" if self.name == "mse_log" else ""),
+        }
+
+
+def _db(x):
+    return 10.0 * np.log10(np.maximum(np.asarray(x, dtype=np.float64), np.finfo(np.float32).tiny))
+
+
+def psnr_db(clean, estimate, valid, data_range_db) -> float:
+    """PSNR (dB) between ``10 log10`` images over valid pixels, peak = ``data_range_db``.
+
+    Uses :func:`skimage.metrics.peak_signal_noise_ratio`; the domain is dB intensity.
+    """
+    from skimage.metrics import peak_signal_noise_ratio
+
+    valid = np.asarray(valid, dtype=bool)
+    a, b = _db(clean)[valid], _db(estimate)[valid]
+    if a.size == 0:
+        return math.nan
+    if np.array_equal(a, b):
+        return math.inf
+    return float(peak_signal_noise_ratio(a, b, data_range=data_range_db))
+
+
+def ssim_db(clean, estimate, valid, data_range_db) -> float:
+    """SSIM between ``10 log10`` images (:func:`skimage.metrics.structural_similarity`).
+
+    Invalid pixels take the clean value in both images so they add no error.
+    """
+    from skimage.metrics import structural_similarity
+
+    valid = np.asarray(valid, dtype=bool)
+    a = _db(clean)
+    b = np.where(valid, _db(estimate), a)
+    a = np.where(valid, a, a[valid].mean() if valid.any() else 0.0)
+    b = np.where(valid, b, a)
+    side = min(a.shape)
+    win = min(7, side if side % 2 else side - 1)
+    if win < 3:
+        return math.nan
+    return float(structural_similarity(a, b, data_range=data_range_db, win_size=win))

@@ -1,0 +1,141 @@
+"""The thin LightningModule: a plain network inside the intensity wrapper, a loss, an optimiser.
+
+All the despeckling logic lives elsewhere -- the network in :mod:`despeck.models`, the
+normalisation and bias correction in :class:`despeck.models.Despeckler`, the loss in
+:mod:`despeck.training.losses`, the data in :mod:`despeck.training.data`. This module
+only wires them into Lightning's steps and logs the validation measures: loss, PSNR and
+SSIM in the dB domain, and the ENL and radiometric bias of the output on a homogeneous
+validation patch.
+"""
+
+from __future__ import annotations
+
+import math
+
+import lightning.pytorch as pl
+import numpy as np
+import torch
+
+from ..models import Despeckler
+from ..speckle import enl_intensity
+from .config import LossConfig, OptimConfig
+from .losses import DespeckleLoss, psnr_db, ssim_db
+
+__all__ = ["DespeckleModule", "CHECKPOINT_FORMAT", "CHECKPOINT_VERSION"]
+
+CHECKPOINT_FORMAT = "despeck-checkpoint"
+CHECKPOINT_VERSION = 1
+
+
+class DespeckleModule(pl.LightningModule):
+    """Train ``network`` (normalised log in, normalised log out) on speckled patches.
+
+    Parameters
+    ----------
+    network : nn.Module
+        From :func:`despeck.models.create_model`.
+    looks : float or [float, float]
+        Looks the network is trained for (recorded in the model).
+    log_scale : float
+        Normalisation scale of the wrapper, nepers per unit.
+    loss, optim : LossConfig, OptimConfig
+    max_epochs : int, optional
+        Length of a cosine schedule.
+    validation : ValidationSet, optional
+        Supplies the dB data range, the homogeneous patch and the noisy input's PSNR.
+    """
+
+    def __init__(self, network, *, looks, log_scale, loss: LossConfig, optim: OptimConfig,
+                 max_epochs=None, validation=None):
+        super().__init__()
+        self.despeckler = Despeckler(network, looks=looks, log_scale=log_scale)
+        self.loss_fn = DespeckleLoss(loss.name, loss.target, loss.tv_weight)
+        self.optim = optim
+        self.max_epochs = max_epochs
+        self.validation = validation
+        self._val_batches = []
+        self.val_metrics = {}
+
+    @property
+    def network(self):
+        return self.despeckler.network
+
+    def predict_log(self, batch):
+        """Natural-log intensity estimate for a batch (float32, no bias added: ``log_bias`` is 0)."""
+        z, off, _ = self.despeckler.normalise(batch["noisy"], batch["valid"], batch["log_offset"])
+        y = self.network(z)
+        return self.despeckler.denormalise(y.float(), off)
+
+    def training_step(self, batch, batch_idx):
+        loss = self.loss_fn(self.predict_log(batch), batch)
+        n = batch["noisy"].shape[0]
+        self.log("train_loss", loss, on_step=True, on_epoch=True, prog_bar=True, batch_size=n)
+        return loss
+
+    def validation_step(self, batch, batch_idx):
+        pred = self.predict_log(batch)
+        loss = self.loss_fn(pred, batch)
+        self.log("val_loss", loss, on_epoch=True, prog_bar=True, batch_size=batch["noisy"].shape[0])
+        self._val_batches.append((batch["clean"].cpu(), torch.exp(pred).cpu(), batch["valid"].cpu()))
+
+    def on_validation_epoch_start(self):
+        self._val_batches = []
+
+    def on_validation_epoch_end(self):
+        if self.validation is None or not self._val_batches:
+            return
+        rng_db = self.validation.data_range_db
+        psnr, ssim = [], []
+        for clean, est, valid in self._val_batches:
+            for c, e, v in zip(clean[:, 0].numpy(), est[:, 0].numpy(), valid[:, 0].numpy()):
+                psnr.append(psnr_db(c, e, v, rng_db))
+                ssim.append(ssim_db(c, e, v, rng_db))
+        self._val_batches = []
+        h = self.validation.homogeneous
+        with torch.no_grad():
+            out = self.despeckler(h["noisy"].to(self.device), h["valid"].to(self.device),
+                                  h["log_offset"].to(self.device))[0, 0].float().cpu().numpy()
+        # Ignore a margin of half the receptive field: border pixels see zero padding.
+        m = min(self.despeckler.receptive_field // 2, out.shape[0] // 4)
+        core = out[m:out.shape[0] - m, m:out.shape[1] - m].astype(np.float64)
+        log_var = float(np.var(np.log(core)))
+        # Log-MSE estimates are unbiased for the geometric mean; the arithmetic mean sits
+        # higher by exp(s^2 / 2) (log-normal approximation), so the exported model
+        # subtracts s^2 / 2 measured here. The Gamma NLL needs no correction.
+        log_bias = -0.5 * log_var if self.loss_fn.name == "mse_log" else 0.0
+        core = core * math.exp(log_bias)
+        metrics = {
+            "val_psnr_db": float(np.nanmean(psnr)),
+            "val_ssim_db": float(np.nanmean(ssim)),
+            "val_psnr_noisy_db": float(self.validation.noisy_psnr_db),
+            "val_enl": float(min(enl_intensity(core), 1e6)),
+            "val_bias_db": float(10 * math.log10(core.mean() / h["reflectivity"])),
+            "val_log_bias": log_bias,
+        }
+        for k, v in metrics.items():
+            self.log(k, v, prog_bar=k == "val_psnr_db")
+        self.val_metrics = {**metrics, "epoch": int(self.current_epoch), "step": int(self.global_step)}
+
+    def configure_optimizers(self):
+        o = self.optim
+        opt = torch.optim.Adam(self.parameters(), lr=o.lr, weight_decay=o.weight_decay)
+        if o.schedule == "constant":
+            return opt
+        if o.schedule == "cosine":
+            sched = torch.optim.lr_scheduler.CosineAnnealingLR(opt, T_max=int(self.max_epochs), eta_min=o.min_lr)
+            return {"optimizer": opt, "lr_scheduler": {"scheduler": sched, "interval": "epoch"}}
+        sched = torch.optim.lr_scheduler.ReduceLROnPlateau(
+            opt, mode="min", factor=o.plateau_factor, patience=o.plateau_patience, min_lr=o.min_lr)
+        return {"optimizer": opt, "lr_scheduler": {"scheduler": sched, "monitor": "val_loss", "interval": "epoch"}}
+
+    def on_save_checkpoint(self, checkpoint):
+        # Marks our checkpoints so resuming can refuse foreign ones, and keeps the
+        # validation measures of the epoch with the weights they describe.
+        net = self.network
+        checkpoint["despeck"] = {
+            "format": CHECKPOINT_FORMAT,
+            "format_version": CHECKPOINT_VERSION,
+            "architecture": getattr(net, "architecture", None),
+            "kwargs": getattr(net, "architecture_kwargs", None),
+            "metrics": dict(self.val_metrics),
+        }

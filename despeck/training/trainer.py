@@ -1,0 +1,369 @@
+"""The time-budgeted CPU trainer: config in, checkpoints, metrics and a model file out.
+
+:func:`train` checks everything that can be checked (config, output folder, training
+rasters, checkpoint to resume from) before any training starts, sets up the CPU
+(threads, flushed denormals, optional bf16), and runs Lightning with:
+
+* a checkpoint after every epoch (``checkpoints/last.ckpt`` and ``checkpoints/best.ckpt``,
+  the best by validation loss; Lightning's ``ModelCheckpoint``);
+* a wall-time budget that stops at an epoch boundary when the next epoch would not fit
+  (:class:`EpochTimeBudget`), so every checkpoint is an end-of-epoch one and resuming
+  reproduces the uninterrupted run (the data of an epoch depend only on the seed and the
+  epoch number; see :mod:`despeck.training.data`); the elapsed time is stored in the
+  checkpoint, so a resumed run honours the original budget;
+* optional early stopping, a tqdm progress bar, and a CSV log ``metrics.csv``.
+
+At the end the best weights are exported with :func:`despeck.models.save_model_file`.
+"""
+
+from __future__ import annotations
+
+import csv
+import math
+import os
+import tempfile
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import lightning.pytorch as pl
+import torch
+
+from ..errors import ConfigError, InputError, ModelFileError
+from .config import TrainConfig, config_to_dict, dump_config, parse_duration
+
+__all__ = ["train", "TrainResult", "EpochTimeBudget", "bf16_supported", "usable_cores", "configure_cpu"]
+
+
+@dataclass
+class TrainResult:
+    """What a finished run produced."""
+
+    output_dir: Path
+    model_path: Path
+    config_path: Path
+    metrics_path: Path
+    best_checkpoint: Path
+    best_metrics: dict = field(default_factory=dict)
+    epochs: int = 0
+    steps: int = 0
+    stopped_by: str = ""
+
+
+def usable_cores() -> int:
+    """CPU cores this process may run on (affinity-aware where the OS tells)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def bf16_supported() -> bool:
+    """Whether the CPU has native bfloat16 arithmetic (AVX512-BF16 or AMX-BF16 on x86, BF16 on Arm)."""
+    try:
+        text = Path("/proc/cpuinfo").read_text()
+    except OSError:
+        return False
+    flags = set()
+    for line in text.splitlines():
+        if line.startswith(("flags", "Features")):
+            flags.update(line.split(":", 1)[1].split())
+    return bool(flags & {"avx512_bf16", "amx_bf16", "bf16"})
+
+
+def configure_cpu(threads=None) -> int:
+    """Set torch's intra-op threads (default: all usable cores), one inter-op thread, flush denormals.
+
+    Small convolutions run fastest with one intra-op thread per physical core and no
+    competing pools; denormal numbers (tiny activations late in training) would otherwise
+    slow x86 arithmetic by orders of magnitude. Returns the thread count used.
+    """
+    n = int(threads or usable_cores())
+    torch.set_num_threads(n)
+    try:
+        torch.set_num_interop_threads(1)
+    except RuntimeError:
+        pass  # already fixed by earlier parallel work in this process; harmless
+    torch.set_flush_denormal(True)
+    return n
+
+
+class EpochTimeBudget(pl.Callback):
+    """Lightning callback: stop at the epoch boundary before ``seconds`` of training would be exceeded.
+
+    After every epoch it predicts the next epoch's duration as the longest one so far and
+    stops if it would not fit. If a single epoch alone outlasts the budget, it stops
+    mid-epoch at the budget (then the last checkpoint is a mid-epoch one). Its state --
+    training time used so far -- is saved in checkpoints, so resuming continues the
+    same budget.
+    """
+
+    def __init__(self, seconds: float):
+        self.seconds = float(seconds)
+        self.used_before = 0.0
+        self.longest_epoch = 0.0
+        self._start = None
+        self._epoch_start = None
+        self.stopped = False
+
+    def elapsed(self) -> float:
+        return self.used_before + (time.monotonic() - self._start if self._start is not None else 0.0)
+
+    def on_train_start(self, trainer, pl_module):
+        self._start = time.monotonic()
+
+    def on_train_epoch_start(self, trainer, pl_module):
+        self._epoch_start = time.monotonic()
+
+    def on_train_batch_end(self, trainer, pl_module, outputs, batch, batch_idx):
+        if self.elapsed() >= self.seconds:
+            self.stopped = True
+            trainer.should_stop = True
+
+    def on_train_epoch_end(self, trainer, pl_module):
+        if self._epoch_start is not None:
+            self.longest_epoch = max(self.longest_epoch, time.monotonic() - self._epoch_start)
+        if self.elapsed() + self.longest_epoch > self.seconds:
+            self.stopped = True
+            trainer.should_stop = True
+
+    def state_dict(self):
+        return {"used": self.elapsed(), "longest_epoch": self.longest_epoch}
+
+    def load_state_dict(self, state):
+        self.used_before = float(state.get("used", 0.0))
+        self.longest_epoch = float(state.get("longest_epoch", 0.0))
+
+
+def _atomic_write_text(path: Path, text: str) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as f:
+            f.write(text)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def _prepare_output(config: TrainConfig, resume: bool) -> Path:
+    out = Path(config.output.dir).expanduser()
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+        fd, probe = tempfile.mkstemp(prefix=".write-test.", dir=out)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise ConfigError(f"config key output.dir: cannot write to {out} ({exc.strerror or exc})") from None
+    last = out / "checkpoints" / "last.ckpt"
+    if resume and not last.is_file():
+        raise ConfigError(f"config key output.dir: nothing to resume, {last} does not exist")
+    if not resume and (last.exists() or (out / "metrics.csv").exists()):
+        raise ConfigError(
+            f"config key output.dir: {out} already holds a training run; pass --resume to continue it "
+            "or choose another output.dir"
+        )
+    return out
+
+
+def read_checkpoint(path) -> dict:
+    """Load a despeck training checkpoint as plain data (``weights_only``: no code runs).
+
+    Raises
+    ------
+    ModelFileError
+        Missing, corrupt, foreign or newer-format checkpoint.
+    """
+    from .module import CHECKPOINT_FORMAT, CHECKPOINT_VERSION
+
+    path = Path(path)
+    if not path.is_file():
+        raise ModelFileError(f"checkpoint {path} does not exist")
+    try:
+        ckpt = torch.load(path, map_location="cpu", weights_only=True)
+    except Exception as exc:  # torch raises many types for corrupt or pickle-bearing files
+        first = (str(exc).splitlines() or [type(exc).__name__])[0][:160]
+        raise ModelFileError(f"checkpoint {path} is corrupt or not a plain despeck checkpoint ({first})") from None
+    info = ckpt.get("despeck") if isinstance(ckpt, dict) else None
+    if not isinstance(info, dict) or info.get("format") != CHECKPOINT_FORMAT:
+        raise ModelFileError(f"checkpoint {path} was not written by despeck train")
+    if int(info.get("format_version", 0)) > CHECKPOINT_VERSION:
+        raise ModelFileError(
+            f"checkpoint {path} uses format version {info.get('format_version')}, newer than this despeck reads "
+            f"(up to {CHECKPOINT_VERSION}); upgrade despeck"
+        )
+    if "state_dict" not in ckpt:
+        raise ModelFileError(f"checkpoint {path} holds no weights")
+    return ckpt
+
+
+def _truncate_metrics(path: Path, step: int) -> None:
+    """Drop CSV rows logged after ``step`` (work lost when a run was killed after its last checkpoint)."""
+    if not path.is_file():
+        return
+    with path.open(newline="") as f:
+        rows = list(csv.reader(f))
+    if not rows or "step" not in rows[0]:
+        return
+    i = rows[0].index("step")
+    kept = [rows[0]] + [r for r in rows[1:] if not r[i] or float(r[i]) <= step]
+    if len(kept) != len(rows):
+        import io
+
+        buf = io.StringIO()
+        csv.writer(buf, lineterminator="\n").writerows(kept)
+        _atomic_write_text(path, buf.getvalue())
+
+
+def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks=()) -> TrainResult:
+    """Train a despeckling network as ``config`` says and export the best model.
+
+    Parameters
+    ----------
+    config : TrainConfig
+        From :func:`despeck.training.load_config` (already checked).
+    resume : bool
+        Continue the run in ``output.dir`` from ``checkpoints/last.ckpt``; the result
+        equals that of an uninterrupted run (within float tolerance), and the time budget
+        counts the time already spent.
+    progress : bool, optional
+        Show tqdm progress bars (default: ``trainer.progress`` of the config).
+    callbacks : sequence of lightning.pytorch.Callback
+        Extra callbacks (e.g. for monitoring).
+
+    Returns
+    -------
+    TrainResult
+
+    Raises
+    ------
+    ConfigError, RasterError, ModelFileError
+        One-line errors, all raised before training starts.
+    """
+    from lightning.pytorch.callbacks import EarlyStopping, LearningRateMonitor, ModelCheckpoint, TQDMProgressBar
+    from lightning.pytorch.loggers import CSVLogger
+
+    from ..models import Despeckler, create_model, save_model_file
+    from .data import TrainingData
+    from .module import DespeckleModule
+
+    progress = config.trainer.progress if progress is None else bool(progress)
+    out = _prepare_output(config, resume)
+    ckpt_dir = out / "checkpoints"
+    last = ckpt_dir / "last.ckpt"
+    resume_ckpt = read_checkpoint(last) if resume else None
+
+    if config.trainer.precision == "bf16" and not bf16_supported():
+        raise ConfigError("config key trainer.precision: bf16 needs a CPU with native bfloat16 "
+                          "(avx512_bf16 or amx_bf16); use precision: '32'")
+    max_time = parse_duration(config.budget.max_time, "budget.max_time") if config.budget.max_time else None
+    threads = configure_cpu(config.trainer.threads)
+
+    pl.seed_everything(config.trainer.seed, workers=True, verbose=False)
+    try:
+        network = create_model(config.model.name, **config.model.kwargs)
+    except InputError as exc:
+        raise ConfigError(f"config key model.kwargs: {exc}") from None
+    if resume_ckpt is not None:
+        info = resume_ckpt["despeck"]
+        if info.get("architecture") != network.architecture or info.get("kwargs") != network.architecture_kwargs:
+            raise ModelFileError(
+                f"checkpoint {last} holds a {info.get('architecture')} network with {info.get('kwargs')}, "
+                f"but the config asks for {network.architecture} with {network.architecture_kwargs}"
+            )
+
+    data = TrainingData(config)
+
+    module = DespeckleModule(
+        network, looks=config.speckle.looks, log_scale=config.model.log_scale, loss=config.loss,
+        optim=config.optim, max_epochs=config.budget.max_epochs, validation=data.val_set,
+    )
+    checkpoint = ModelCheckpoint(
+        dirpath=ckpt_dir, filename="best", monitor="val_loss", mode="min", save_top_k=1,
+        save_last=True, enable_version_counter=False,
+    )
+    cbs = [checkpoint, LearningRateMonitor(logging_interval="epoch")]
+    budget = EpochTimeBudget(max_time) if max_time else None
+    if budget is not None:
+        cbs.append(budget)
+    early = None
+    if config.budget.early_stopping:
+        early = EarlyStopping(monitor="val_loss", mode="min", patience=config.budget.early_stopping)
+        cbs.append(early)
+    if progress:
+        cbs.append(TQDMProgressBar(refresh_rate=max(1, min(20, config.data.patches_per_epoch
+                                                            // config.data.batch_size // 10 or 1))))
+    cbs.extend(callbacks)
+
+    config_path = out / "config.yaml"
+    _atomic_write_text(config_path, dump_config(config))
+    metrics_path = out / "metrics.csv"
+    if resume_ckpt is not None:
+        _truncate_metrics(metrics_path, int(resume_ckpt.get("global_step", 0)))
+    logger = CSVLogger(save_dir=str(out), name="", version="")
+
+    trainer = pl.Trainer(
+        accelerator="cpu", devices=1,
+        precision="bf16-mixed" if config.trainer.precision == "bf16" else "32-true",
+        max_epochs=config.budget.max_epochs if config.budget.max_epochs else -1,
+        max_steps=config.budget.max_steps if config.budget.max_steps else -1,
+        callbacks=cbs, logger=logger, default_root_dir=str(out),
+        enable_progress_bar=progress, enable_model_summary=progress,
+        num_sanity_val_steps=0, deterministic=True, benchmark=False,
+        log_every_n_steps=config.trainer.log_every_n_steps,
+        gradient_clip_val=config.optim.grad_clip or None,
+    )
+    import logging
+
+    lightning_log = logging.getLogger("lightning.pytorch")
+    previous_level = lightning_log.level
+    if not progress:
+        lightning_log.setLevel(logging.WARNING)  # quiet: no "fit stopped" or device notes
+    with warnings.catch_warnings():
+        # Lightning's notes about our deliberate choices (no workers on a small CPU, an
+        # existing log folder on resume, a fixed epoch length) are not user errors.
+        warnings.filterwarnings("ignore", message=".*does not have many workers.*")
+        warnings.filterwarnings("ignore", message=".*Experiment logs directory.*")
+        warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
+        warnings.filterwarnings("ignore", message=".*Checkpoint directory.*")
+        warnings.filterwarnings("ignore", category=DeprecationWarning, module="lightning")
+        warnings.filterwarnings("ignore", message=".*treespec.*")
+        try:
+            trainer.fit(module, train_dataloaders=data.train_dataloader(), val_dataloaders=data.val_dataloader(),
+                        ckpt_path=str(last) if resume else None)
+        finally:
+            lightning_log.setLevel(previous_level)
+
+    if trainer.interrupted:  # pragma: no cover - Lightning turns Ctrl-C into an exit
+        raise KeyboardInterrupt
+    best_path = Path(checkpoint.best_model_path) if checkpoint.best_model_path else last
+    if not best_path.is_file():
+        raise ModelFileError(f"training ended before the first checkpoint; nothing to export in {ckpt_dir}")
+    best = read_checkpoint(best_path)
+    prefix = "despeckler.network."
+    network.load_state_dict({k[len(prefix):]: v for k, v in best["state_dict"].items() if k.startswith(prefix)})
+    best_metrics = dict(best["despeck"].get("metrics") or {})
+    model = Despeckler(network, looks=config.speckle.looks, log_bias=float(best_metrics.get("val_log_bias", 0.0)),
+                       log_scale=config.model.log_scale)
+    stopped_by = ("time budget" if budget is not None and budget.stopped
+                  else "early stopping" if early is not None and early.stopped_epoch
+                  else "max_steps" if config.budget.max_steps and trainer.global_step >= config.budget.max_steps
+                  else "max_epochs")
+    cfg = config_to_dict(config)
+    model_path = save_model_file(
+        out / config.output.model_file, model,
+        normalisation={**module.loss_fn.describe()},
+        training={
+            "data": data.describe(),
+            "config": {k: cfg[k] for k in ("model", "speckle", "loss", "optim", "budget")},
+            "epochs": int(trainer.current_epoch), "steps": int(trainer.global_step),
+            "threads": threads, "precision": config.trainer.precision, "stopped_by": stopped_by,
+        },
+        metrics={k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in best_metrics.items()},
+    )
+    return TrainResult(
+        output_dir=out, model_path=model_path, config_path=config_path, metrics_path=metrics_path,
+        best_checkpoint=best_path, best_metrics=best_metrics, epochs=int(trainer.current_epoch),
+        steps=int(trainer.global_step), stopped_by=stopped_by,
+    )
