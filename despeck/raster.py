@@ -51,6 +51,7 @@ __all__ = [
     "check_output_path",
     "read_with_halo",
     "process_file",
+    "limit_gdal_cache",
 ]
 
 UNITS = ("intensity", "amplitude", "db", "complex")
@@ -70,6 +71,32 @@ _PROBE_PIXELS = 1 << 18
 
 # Band descriptions that mark a two-band file as in-phase / quadrature parts.
 _IQ_NAMES = {("i", "q"), ("real", "imag"), ("real", "imaginary"), ("re", "im"), ("in-phase", "quadrature")}
+
+
+#: Size of GDAL's block cache (MiB) while despeck reads and writes, unless the
+#: environment sets GDAL_CACHEMAX. GDAL's default (5 % of RAM) lets a streamed pass
+#: over a large scene grow to that size; a pass reads and writes each block about
+#: once, so a modest cache costs nothing and keeps memory flat.
+GDAL_CACHE_MB = 64
+
+_cache_limited = False
+
+
+def limit_gdal_cache(megabytes=None) -> None:
+    """Cap GDAL's block cache (once per process, unless GDAL_CACHEMAX is set in the environment).
+
+    Called by :func:`open_scene` and :func:`open_output`. Passing ``megabytes``
+    sets the cap explicitly, whatever the environment says.
+    """
+    global _cache_limited
+    if megabytes is None:
+        if _cache_limited or os.environ.get("GDAL_CACHEMAX"):
+            return
+        megabytes = GDAL_CACHE_MB
+    from rasterio.env import set_gdal_config
+
+    set_gdal_config("GDAL_CACHEMAX", int(float(megabytes) * 2**20))
+    _cache_limited = True
 
 
 class UnitsWarning(UserWarning):
@@ -431,6 +458,7 @@ class SceneReader:
             raise RasterError(f"{name}: no such file")
         if self.path.is_dir():
             raise RasterError(f"{name}: is a directory, not a raster file")
+        limit_gdal_cache()
         try:
             self._ds = rasterio.open(self.path)
         except RasterioIOError as exc:
@@ -709,6 +737,7 @@ class SceneWriter:
     """
 
     def __init__(self, path, like, *, units=None, band_count=None, overwrite=False, dtype="float32"):
+        limit_gdal_cache()
         like_path = getattr(like, "path", None)
         self.path = check_output_path(path, [like_path] if like_path else [], overwrite=overwrite)
         if units is None:
@@ -730,20 +759,18 @@ class SceneWriter:
             raise InputError(f"{self.path}: the source scene has no size to copy")
         nodata = getattr(like, "nodata", profile.get("nodata"))
         self.nodata = float(nodata) if _nodata_is_safe(nodata, self.units) else float("nan")
-        for key in ("blockxsize", "blockysize", "tiled", "compress", "predictor", "interleave",
-                    "photometric", "bigtiff", "zlevel", "jpeg_quality", "blockysize"):
-            profile.pop(key, None)
-        tile = OUTPUT_TILE
-        profile.update(
+        # A fresh GeoTIFF profile: the source's driver-specific creation options do not apply.
+        profile = dict(
             driver="GTiff", width=self.width, height=self.height, count=self.band_count, dtype=dtype,
-            crs=getattr(like, "crs", profile.get("crs")), transform=getattr(like, "transform", profile.get("transform")),
-            nodata=self.nodata, tiled=True, blockxsize=tile, blockysize=tile, compress="deflate", predictor=3,
-            interleave="band", bigtiff="IF_SAFER",
+            nodata=self.nodata, tiled=True, blockxsize=OUTPUT_TILE, blockysize=OUTPUT_TILE, compress="deflate",
+            predictor=3, interleave="band", bigtiff="IF_SAFER",
         )
-        if profile.get("crs") is None:
-            profile.pop("crs")
-        if profile.get("transform") is None:
-            profile.pop("transform")
+        crs = getattr(like, "crs", None)
+        transform = getattr(like, "transform", None)
+        if crs is not None:
+            profile["crs"] = crs
+        if transform is not None:
+            profile["transform"] = transform
         self._profile = profile
         fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".tmp", dir=self.path.parent)
         os.close(fd)

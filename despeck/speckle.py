@@ -5,6 +5,10 @@ an observed L-look intensity is ``I = R * n`` with ``R`` the reflectivity
 (mean backscatter) and ``n ~ Gamma(shape=L, scale=1/L)`` (mean 1, variance 1/L).
 Functions are pure and take an explicit random generator (numpy
 ``Generator`` or ``torch.Generator``): the same seed gives the same sample.
+Besides white speckle the module simulates spatially correlated speckle (a complex
+field filtered by a band-limited, tapered system response), splits complex images
+into sub-looks, and estimates a scene's number of looks on homogeneous blocks it
+finds by itself.
 
 References
 ----------

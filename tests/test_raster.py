@@ -282,3 +282,15 @@ def test_output_refusals(tmp_path, rng):
         deep = raster.check_output_path(tmp_path / "a" / "b" / "out.tif", [src])
         assert deep.parent.is_dir()
     assert not any(name.endswith(".tmp") for name in os.listdir(tmp_path))
+
+
+def test_gdal_block_cache_is_capped(tmp_path, rng, monkeypatch):
+    # GDAL's default cache (5 % of RAM) would let a streamed pass grow with the scene;
+    # despeck caps it (common practice: GDAL_CACHEMAX) unless the user chose a size.
+    from rasterio.env import get_gdal_config
+
+    monkeypatch.delenv("GDAL_CACHEMAX", raising=False)
+    monkeypatch.setattr(raster, "_cache_limited", False)
+    src = make_tif(tmp_path / "c.tif", rng.gamma(1, 1, (20, 20)))
+    raster.open_scene(src).close()
+    assert int(get_gdal_config("GDAL_CACHEMAX")) == raster.GDAL_CACHE_MB * 2**20
