@@ -79,24 +79,24 @@ _IQ_NAMES = {("i", "q"), ("real", "imag"), ("real", "imaginary"), ("re", "im"), 
 #: once, so a modest cache costs nothing and keeps memory flat.
 GDAL_CACHE_MB = 64
 
-_cache_limited = False
-
-
 def limit_gdal_cache(megabytes=None) -> None:
-    """Cap GDAL's block cache (once per process, unless GDAL_CACHEMAX is set in the environment).
+    """Cap GDAL's block cache at ``megabytes`` (default :data:`GDAL_CACHE_MB`).
 
-    Called by :func:`open_scene` and :func:`open_output`. Passing ``megabytes``
-    sets the cap explicitly, whatever the environment says.
+    Called by :func:`open_scene` and :func:`open_output`. Without ``megabytes`` it
+    leaves alone a cache size chosen by the user, in the environment
+    (``GDAL_CACHEMAX``) or in an active ``rasterio.Env``, and a cache already smaller
+    than the cap.
     """
-    global _cache_limited
-    if megabytes is None:
-        if _cache_limited or os.environ.get("GDAL_CACHEMAX"):
-            return
-        megabytes = GDAL_CACHE_MB
-    from rasterio.env import set_gdal_config
+    from rasterio.env import get_gdal_config, getenv, hasenv, set_gdal_config
 
-    set_gdal_config("GDAL_CACHEMAX", int(float(megabytes) * 2**20))
-    _cache_limited = True
+    cap = int(float(GDAL_CACHE_MB if megabytes is None else megabytes) * 2**20)
+    if megabytes is None:
+        if os.environ.get("GDAL_CACHEMAX") or (hasenv() and "GDAL_CACHEMAX" in getenv()):
+            return
+        current = get_gdal_config("GDAL_CACHEMAX")
+        if isinstance(current, int) and current <= cap:
+            return
+    set_gdal_config("GDAL_CACHEMAX", cap)
 
 
 class UnitsWarning(UserWarning):
