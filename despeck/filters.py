@@ -60,9 +60,13 @@ __all__ = [
     "filter_raster",
 ]
 
-#: Pixels per strip when an image is processed in strips (about 4 MB per float64 array):
-#: small enough for the caches and for scenes larger than memory.
-STRIP_PIXELS = 1 << 19
+#: Pixels per strip read from a file by :func:`filter_raster` (bounded memory for
+#: scenes larger than memory).
+STRIP_PIXELS = 1 << 21
+
+#: Side of the tiles a strip or an in-memory image is cut into for the kernels
+#: (working arrays small enough for the CPU caches, and one tile per thread).
+TILE = 128
 
 #: Size and seed of the simulated pure-speckle image that calibrates the radiometric
 #: correction of the Gamma-MAP, refined Lee and improved sigma filters (see :func:`_calibrated`).
@@ -149,14 +153,21 @@ class _Plan:
     halo: int
 
 
-def _pad_block(img, valid, r0, r1, halo):
-    """Rows ``r0:r1`` of a full image with ``halo`` pixels of context on every side."""
+def _pad_block(img, valid, r0, r1, halo, c0=0, c1=None):
+    """Pixels ``[r0:r1, c0:c1]`` of an image with ``halo`` pixels of context on every side.
+
+    Context outside the image is zero and invalid.
+    """
     h, w = img.shape
-    out = np.zeros((r1 - r0 + 2 * halo, w + 2 * halo))
+    c1 = w if c1 is None else c1
+    out = np.zeros((r1 - r0 + 2 * halo, c1 - c0 + 2 * halo))
     ok = np.zeros(out.shape, dtype=bool)
     s0, s1 = max(r0 - halo, 0), min(r1 + halo, h)
-    out[s0 - (r0 - halo) : s1 - (r0 - halo), halo : halo + w] = img[s0:s1]
-    ok[s0 - (r0 - halo) : s1 - (r0 - halo), halo : halo + w] = valid[s0:s1]
+    t0, t1 = max(c0 - halo, 0), min(c1 + halo, w)
+    rows = slice(s0 - (r0 - halo), s1 - (r0 - halo))
+    cols = slice(t0 - (c0 - halo), t1 - (c0 - halo))
+    out[rows, cols] = img[s0:s1, t0:t1]
+    ok[rows, cols] = valid[s0:s1, t0:t1]
     return out, ok
 
 
@@ -164,25 +175,41 @@ def _strip_rows(width: int, halo: int) -> int:
     return max(2 * halo + 8, STRIP_PIXELS // max(width, 1))
 
 
+def _tiles(height, width, size):
+    return [(r, min(r + size, height), c, min(c + size, width))
+            for r in range(0, height, size) for c in range(0, width, size)]
+
+
+def _run_tiles(plan: _Plan, img, valid, out, pool=None):
+    """Filter ``img`` (zeros where invalid) tile by tile into ``out``, in threads if ``pool``.
+
+    Tiles of ``TILE`` pixels keep a kernel's working arrays in the CPU caches; as each
+    output pixel is computed from its own neighbourhood only, the tiling does not
+    change a single bit of the result.
+    """
+
+    def one(tile):
+        r0, r1, c0, c1 = tile
+        padded, ok = _pad_block(img, valid, r0, r1, plan.halo, c0, c1)
+        out[r0:r1, c0:c1] = _call(plan, padded, ok)
+
+    tiles = _tiles(img.shape[0], img.shape[1], TILE)
+    if pool is None or len(tiles) == 1:
+        for t in tiles:
+            one(t)
+    else:
+        list(pool.map(one, tiles))
+
+
 def _run(plan: _Plan, img, valid, original, workers=None):
-    """Apply a plan strip by strip (in threads) and put invalid pixels back to their input value."""
-    h, w = img.shape
-    rows = _strip_rows(w, plan.halo)
-    starts = list(range(0, h, rows))
-    out = np.empty((h, w), dtype=np.float32)
-
-    def one(r0):
-        r1 = min(r0 + rows, h)
-        padded, ok = _pad_block(img, valid, r0, r1, plan.halo)
-        out[r0:r1] = _call(plan, padded, ok)
-
-    workers = min(_check_workers(workers), len(starts))
-    if workers == 1:
-        for r0 in starts:
-            one(r0)
+    """Apply a plan tile by tile (in threads) and put invalid pixels back to their input value."""
+    out = np.empty(img.shape, dtype=np.float32)
+    workers = _check_workers(workers)
+    if workers == 1 or img.size <= TILE * TILE:
+        _run_tiles(plan, img, valid, out)
     else:
         with ThreadPoolExecutor(workers) as pool:
-            list(pool.map(one, starts))
+            _run_tiles(plan, img, valid, out, pool)
     original = np.asarray(original)
     if not valid.all():
         out[~valid] = original[~valid].astype(np.float32)
@@ -621,46 +648,47 @@ def _plan_refined_lee(looks, window, correct_bias=True):
     step = (w + 1) // 4  # distance between sub-window centres
     offsets = (-step, 0, step)
 
-    # Eight edge-aligned half windows, each with the line through the centre, as
-    # (row offset -> inclusive column range) per mask: left, right, top, bottom,
-    # then the two sides of the main diagonal and of the anti-diagonal.
-    def runs(kind):
-        out = {}
-        for dy in range(-half, half + 1):
-            lo, hi = {
-                "left": (-half, 0), "right": (0, half),
-                "top": (-half, half) if dy <= 0 else None, "bottom": (-half, half) if dy >= 0 else None,
-                "upper-right": (max(dy, -half), half), "lower-left": (-half, min(dy, half)),
-                "upper-left": (-half, -dy), "lower-right": (-dy, half),
-            }[kind] or (None, None)
-            if lo is not None:
-                out[dy] = (lo, hi)
-        return out
+    ones = np.ones(w)
+    mask_pixels = float(w * (half + 1))  # every half window, the centre line included
 
-    kinds = ("left", "right", "top", "bottom", "upper-right", "lower-left", "upper-left", "lower-right")
-    mask_runs = [runs(k) for k in kinds]
+    def selected_sums(a, direction, second, hc, wc):
+        """Sum of ``a`` over each core pixel's chosen half window.
 
-    def mask_sums(a, hc, wc):
-        """Sums of ``a`` over each of the eight masks for the core pixels."""
-        # run sums along rows: right[a] = sum_{dx=a..half}, left[b] = sum_{dx=-half..b}
-        cols = [a[:, half + dx : half + dx + wc] for dx in range(-half, half + 1)]
-        right, left = {}, {}
-        acc = None
-        for dx in range(half, -half - 1, -1):
-            acc = cols[dx + half].copy() if acc is None else acc + cols[dx + half]
-            right[dx] = acc
-        acc = None
-        for dx in range(-half, half + 1):
-            acc = cols[dx + half].copy() if acc is None else acc + cols[dx + half]
-            left[dx] = acc
-        sums = []
-        for mr in mask_runs:
-            total = np.zeros((hc, wc))
-            for dy, (lo, hi) in mr.items():
-                run = right[lo] if hi == half else left[hi]
-                total += run[half + dy : half + dy + hc]
-            sums.append(total)
-        return sums
+        The eight half windows pair up across the four edge directions -- left/right,
+        top/bottom, the sides of the main diagonal (``dx >= dy``, ``dx <= dy``) and
+        of the anti-diagonal (``dx <= -dy``, ``dx >= -dy``) -- and the two of a pair
+        share the line through the centre, so the second is ``full - first + line``.
+        """
+        h = half
+        rows = slice(h, h + hc)
+        vert = ndimage.correlate1d(a, ones, axis=0, mode="constant")
+        horiz = ndimage.correlate1d(a, ones, axis=1, mode="constant")
+        full = ndimage.correlate1d(vert, ones, axis=1, mode="constant")[rows, h : h + wc]
+        left = vert[rows, 0:wc].copy()
+        for dx in range(-h + 1, 1):
+            left += vert[rows, h + dx : h + dx + wc]
+        top = horiz[0:hc, h : h + wc].copy()
+        for dy in range(-h + 1, 1):
+            top += horiz[h + dy : h + dy + hc, h : h + wc]
+        # right[x] = sum of a over columns x .. h of each row (all padded rows)
+        right = {h: a[:, 2 * h : 2 * h + wc].copy()}
+        for dx in range(h - 1, -h - 1, -1):
+            right[dx] = right[dx + 1] + a[:, h + dx : h + dx + wc]
+        upper_right = right[-h][0:hc].copy()  # dx >= dy
+        for dy in range(-h + 1, h + 1):
+            upper_right += right[dy][h + dy : h + dy + hc]
+        upper_left = right[h][1 : 1 + hc].copy()  # dx <= -dy is full minus dx >= 1 - dy
+        for dy in range(2 - h, h + 1):
+            upper_left += right[1 - dy][h + dy : h + dy + hc]
+        upper_left = full - upper_left
+        diag = a[0:hc, 0:wc].copy()
+        anti = a[0:hc, 2 * h : 2 * h + wc].copy()
+        for d in range(-h + 1, h + 1):
+            diag += a[h + d : h + d + hc, h + d : h + d + wc]
+            anti += a[h + d : h + d + hc, h - d : h - d + wc]
+        first = np.choose(direction, [left, top, upper_right, upper_left])
+        line = np.choose(direction, [vert[rows, h : h + wc], horiz[rows, h : h + wc], diag, anti])
+        return np.where(second, full - first + line, first)
 
     def core_and_mask(p, ok):
         hc, wc = p.shape[0] - 2 * half, p.shape[1] - 2 * half
@@ -672,8 +700,8 @@ def _plan_refined_lee(looks, window, correct_bias=True):
         # it takes the centre's sub-mean (the centre sub-window always has the valid centre)
         M = [[np.where(np.isfinite(m), m, M[1][1]) for m in row] for row in M]
         # the two sides of an edge in each direction, as sums of three sub-means, in the
-        # order of the masks: left/right, top/bottom, the main diagonal's upper-right and
-        # lower-left, the anti-diagonal's upper-left and lower-right
+        # order left/right, top/bottom, the main diagonal's upper-right and lower-left,
+        # the anti-diagonal's upper-left and lower-right
         sides = (
             (M[0][0] + M[1][0] + M[2][0], M[0][2] + M[1][2] + M[2][2]),
             (M[0][0] + M[0][1] + M[0][2], M[2][0] + M[2][1] + M[2][2]),
@@ -683,29 +711,17 @@ def _plan_refined_lee(looks, window, correct_bias=True):
         direction = np.argmax(np.stack([np.abs(b - a) for a, b in sides]), axis=0)
         centre = 3.0 * M[1][1]
         # the half window on the side whose sub-means are closer to the centre's
-        choice = np.empty((hc, wc), dtype=np.int8)
-        for d, (first, second) in enumerate(sides):
-            second_side = np.abs(second - centre) < np.abs(first - centre)
-            choice = np.where(direction == d, 2 * d + second_side, choice)
-        s1 = mask_sums(p, hc, wc)
-        s2 = mask_sums(p * p, hc, wc)
-        if ok.all():
-            counts = [np.full((hc, wc), float(sum(h - l + 1 for l, h in mr.values()))) for mr in mask_runs]
-        else:
-            counts = mask_sums(ok.astype(np.float64), hc, wc)
-        S1 = np.zeros((hc, wc))
-        S2 = np.zeros((hc, wc))
-        N = np.ones((hc, wc))
-        for k in range(8):
-            sel = choice == k
-            S1 = np.where(sel, s1[k], S1)
-            S2 = np.where(sel, s2[k], S2)
-            N = np.where(sel, counts[k], N)
+        second = np.choose(direction, [np.abs(b - centre) < np.abs(a - centre) for a, b in sides])
+        S1 = selected_sums(p, direction, second, hc, wc)
+        S2 = selected_sums(p * p, direction, second, hc, wc)
+        N = mask_pixels if ok.all() else selected_sums(ok.astype(np.float64), direction, second, hc, wc)
         mean = S1 / N
         var = np.maximum(S2 / N - mean * mean, 0.0)
-        weight = np.clip(_kuan_gain(_ci2(mean, var), cu2), 0.0, 1.0)
+        ci2 = _ci2(mean, var)
+        weight = np.clip(_kuan_gain(ci2, cu2), 0.0, 1.0)
         x = _crop(p, half)
-        return np.where(N > 0, mean + weight * (x - mean), x), (N > 0) & (var > 0)
+        # CV^2 below 1e-10 is rounding in the sums of a constant half window: no speckle, no correction
+        return np.where(N > 0, mean + weight * (x - mean), x), (N > 0) & (ci2 > 1e-10)
 
     if not correct_bias:
         return _Plan(lambda p, ok: core_and_mask(p, ok)[0], half)
@@ -825,16 +841,27 @@ def _plan_improved_sigma(looks, window, xi=0.9, point_threshold=None, point_coun
             prior = m0 + np.clip(_kuan_gain(_ci2(m0, v0), cu2), 0.0, 1.0) * (p - m0)
             prior = _crop(prior, halo)
             low, high = a1 * prior, a2 * prior
-            n = np.zeros((hc, wc))
+            count = np.zeros((hc, wc), dtype=np.int32)
             s1 = np.zeros((hc, wc))
             s2 = np.zeros((hc, wc))
+            keep = np.empty((hc, wc), dtype=bool)
+            inside = np.empty((hc, wc), dtype=bool)
+            kv = np.empty((hc, wc))
+            all_ok = bool(ok.all())
+            # in-place operations: this loop over the window is the filter's whole cost
             for y, x in zip(dy, dx):
                 v = p[halo + y : halo + y + hc, halo + x : halo + x + wc]
-                keep = (v >= low) & (v <= high) & ok[halo + y : halo + y + hc, halo + x : halo + x + wc]
-                kv = np.where(keep, v, 0.0)
-                n += keep
+                np.greater_equal(v, low, out=keep)
+                np.less_equal(v, high, out=inside)
+                keep &= inside
+                if not all_ok:
+                    keep &= ok[halo + y : halo + y + hc, halo + x : halo + x + wc]
+                np.multiply(v, keep, out=kv)
+                count += keep
                 s1 += kv
-                s2 += kv * kv
+                kv *= kv
+                s2 += kv
+            n = count.astype(np.float64)
             centre = _crop(p, halo)
             mean = s1 / n
             var = np.maximum(s2 / n - mean * mean, 0.0)
@@ -1188,25 +1215,22 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
         starts = list(range(0, h, rows))
         bar = tqdm(total=h, unit="row", desc=f"{name} {in_path.name}", disable=not progress, leave=False)
         with raster.open_output(out_path, like=reader, units=out_units, band_count=1, overwrite=overwrite) as writer:
-            with ThreadPoolExecutor(nworkers) as pool, np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-                for i in range(0, len(starts), nworkers):
-                    batch = []
-                    for r0 in starts[i : i + nworkers]:
-                        r1 = min(r0 + rows, h)
-                        s0, s1 = max(r0 - plan.halo, 0), min(r1 + plan.halo, h)
-                        data, ok = reader.read(window=_row_window(s0, s1, w), band=band)
-                        padded = np.zeros((r1 - r0 + 2 * plan.halo, w + 2 * plan.halo))
-                        pvalid = np.zeros(padded.shape, dtype=bool)
-                        top = s0 - (r0 - plan.halo)
-                        padded[top : top + (s1 - s0), plan.halo : plan.halo + w] = np.where(ok, data, 0.0)
-                        pvalid[top : top + (s1 - s0), plan.halo : plan.halo + w] = ok
-                        core_valid = ok[r0 - s0 : r0 - s0 + (r1 - r0)]
-                        batch.append((r0, r1, core_valid, pool.submit(_call, plan, padded, pvalid)))
-                    for r0, r1, core_valid, future in batch:
-                        result = future.result().astype(np.float32)
-                        result[~core_valid] = 0.0
-                        writer.write(result, _row_window(r0, r1, w), band=1, valid=core_valid)
-                        bar.update(r1 - r0)
+            with ThreadPoolExecutor(nworkers) as pool:
+                for r0 in starts:
+                    r1 = min(r0 + rows, h)
+                    s0, s1 = max(r0 - plan.halo, 0), min(r1 + plan.halo, h)
+                    data, ok = reader.read(window=_row_window(s0, s1, w), band=band)
+                    data = np.where(ok, data, 0.0)
+                    # the strip with its halo rows, as an image of its own whose top and
+                    # bottom context is real data (or the scene's edge)
+                    result = np.empty((s1 - s0, w), dtype=np.float32)
+                    _run_tiles(plan, data, ok, result, pool if nworkers > 1 else None)
+                    core = slice(r0 - s0, r0 - s0 + (r1 - r0))
+                    core_valid = ok[core]
+                    result = result[core]
+                    result[~core_valid] = 0.0
+                    writer.write(result, _row_window(r0, r1, w), band=1, valid=core_valid)
+                    bar.update(r1 - r0)
         bar.close()
     return {
         "method": name,

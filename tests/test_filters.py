@@ -79,10 +79,10 @@ def test_nodata_never_leaks_and_is_kept(name, rng):
 
 
 @pytest.mark.parametrize("name", NAMES)
-def test_strips_in_memory_equal_whole_image_exactly(name, rng, monkeypatch):
+def test_tiles_in_threads_equal_whole_image_exactly(name, rng, monkeypatch):
     noisy, valid = small_scene(rng)
-    whole = filters.FILTERS[name](noisy, looks=1, mask=valid, workers=1)
-    monkeypatch.setattr(filters, "STRIP_PIXELS", 72 * 5)  # strips of a few rows, narrower than the halo
+    whole = filters.FILTERS[name](noisy, looks=1, mask=valid, workers=1)  # one 128-pixel tile
+    monkeypatch.setattr(filters, "TILE", 5)  # tiles smaller than most halos
     strips = filters.FILTERS[name](noisy, looks=1, mask=valid, workers=2)
     np.testing.assert_array_equal(strips, whole)
 
@@ -102,6 +102,7 @@ def test_halo_blocked_file_filtering_equals_whole_image(name, rng, tmp_path, mon
     src, dst = tmp_path / "in.tif", tmp_path / "out.tif"
     _write_tif(src, data)
     monkeypatch.setattr(filters, "STRIP_PIXELS", 64 * 7)  # many strips with halos
+    monkeypatch.setattr(filters, "TILE", 16)
     info = filters.filter_raster(name, src, dst, looks=1, progress=False, workers=2)
     extra = {"point_threshold": info["options"]["point_threshold"]} if name == "improved-sigma" else {}
     whole = filters.FILTERS[name](data.astype(np.float32), looks=1, mask=valid, **extra)
@@ -378,3 +379,41 @@ def test_cli_filter_bad_input_exits_2_with_one_line(tmp_path, capsys):
     assert len(err) == 4 and all(line.startswith("despeck: error:") for line in err)
     assert "boxcar" in err[1] and "odd" in err[2] and "looks" in err[3]
     assert not (tmp_path / "o.tif").exists()
+
+
+def test_refined_lee_matches_a_naive_per_pixel_loop(rng):
+    # Independent reference for the mask algebra: per pixel, the 3 x 3 sub-means, the four
+    # side sums, the strongest direction, the side closer to the centre, and the half window
+    # written as an explicit inequality (Lee et al. 1999 as restated in the refined_lee docstring)
+    noisy, valid = small_scene(rng, (19, 23))
+    looks, w, h, sub, step = 1.0, 7, 3, 3, 2
+    out = filters.refined_lee(noisy, looks=looks, mask=valid, correct_bias=False)
+    H, W = noisy.shape
+    halves = [lambda dy, dx: dx <= 0, lambda dy, dx: dx >= 0, lambda dy, dx: dy <= 0, lambda dy, dx: dy >= 0,
+              lambda dy, dx: dx >= dy, lambda dy, dx: dx <= dy, lambda dy, dx: dx <= -dy, lambda dy, dx: dx >= -dy]
+
+    def mean_of(r, c, size):
+        v = [noisy[y, x] for y in range(r - size // 2, r + size // 2 + 1) for x in range(c - size // 2, c + size // 2 + 1)
+             if 0 <= y < H and 0 <= x < W and valid[y, x]]
+        return float(np.mean(np.array(v, dtype=np.float64))) if v else None
+
+    for r in range(H):
+        for c in range(W):
+            if not valid[r, c]:
+                continue
+            centre = mean_of(r, c, sub)
+            M = [[mean_of(r + oy, c + ox, sub) for ox in (-step, 0, step)] for oy in (-step, 0, step)]
+            M = [[centre if m is None else m for m in row] for row in M]
+            sides = [(M[0][0] + M[1][0] + M[2][0], M[0][2] + M[1][2] + M[2][2]),
+                     (M[0][0] + M[0][1] + M[0][2], M[2][0] + M[2][1] + M[2][2]),
+                     (M[0][1] + M[0][2] + M[1][2], M[1][0] + M[2][0] + M[2][1]),
+                     (M[0][0] + M[0][1] + M[1][0], M[1][2] + M[2][1] + M[2][2])]
+            d = int(np.argmax([abs(b - a) for a, b in sides]))
+            a, b = sides[d]
+            k = 2 * d + int(abs(b - 3 * centre) < abs(a - 3 * centre))
+            v = np.array([noisy[r + dy, c + dx] for dy in range(-h, h + 1) for dx in range(-h, h + 1)
+                          if halves[k](dy, dx) and 0 <= r + dy < H and 0 <= c + dx < W and valid[r + dy, c + dx]],
+                         dtype=np.float64)
+            m, var = v.mean(), v.var()
+            gain = 0.0 if var == 0 else min(max((1 - (1 / looks) * m * m / var) / (1 + 1 / looks), 0.0), 1.0)
+            assert out[r, c] == pytest.approx(m + gain * (noisy[r, c] - m), rel=1e-5), (r, c)
