@@ -840,31 +840,38 @@ def _plan_improved_sigma(looks, window, xi=0.9, point_threshold=None, point_coun
             _, m0, v0 = _local_moments(p, ok, pw)
             prior = m0 + np.clip(_kuan_gain(_ci2(m0, v0), cu2), 0.0, 1.0) * (p - m0)
             prior = _crop(prior, halo)
-            low, high = a1 * prior, a2 * prior
+            # Single precision for the window loop, the filter's whole cost (1.5 x faster than
+            # double). The sums are of deviations from the a priori mean, so they carry no
+            # cancellation and a constant window sums to exactly zero.
+            low = (a1 * prior).astype(np.float32)
+            high = (a2 * prior).astype(np.float32)
+            ref = prior.astype(np.float32)
+            p32 = p.astype(np.float32)
             count = np.zeros((hc, wc), dtype=np.int32)
-            s1 = np.zeros((hc, wc))
-            s2 = np.zeros((hc, wc))
+            s1 = np.zeros((hc, wc), dtype=np.float32)
+            s2 = np.zeros((hc, wc), dtype=np.float32)
             keep = np.empty((hc, wc), dtype=bool)
             inside = np.empty((hc, wc), dtype=bool)
-            kv = np.empty((hc, wc))
+            kv = np.empty((hc, wc), dtype=np.float32)
             all_ok = bool(ok.all())
-            # in-place operations: this loop over the window is the filter's whole cost
             for y, x in zip(dy, dx):
-                v = p[halo + y : halo + y + hc, halo + x : halo + x + wc]
+                v = p32[halo + y : halo + y + hc, halo + x : halo + x + wc]
                 np.greater_equal(v, low, out=keep)
                 np.less_equal(v, high, out=inside)
                 keep &= inside
                 if not all_ok:
                     keep &= ok[halo + y : halo + y + hc, halo + x : halo + x + wc]
-                np.multiply(v, keep, out=kv)
+                np.subtract(v, ref, out=kv)
+                kv *= keep
                 count += keep
                 s1 += kv
                 kv *= kv
                 s2 += kv
             n = count.astype(np.float64)
             centre = _crop(p, halo)
-            mean = s1 / n
-            var = np.maximum(s2 / n - mean * mean, 0.0)
+            shift = s1.astype(np.float64) / n
+            mean = ref.astype(np.float64) + shift
+            var = np.maximum(s2.astype(np.float64) / n - shift * shift, 0.0)
             ci2 = np.where(var > 0, var / (mean * mean), 0.0)
             gain = np.clip(np.where(ci2 > 0, (1.0 - eta2 / ci2) / (1.0 + eta2), 0.0), 0.0, 1.0)
             est = np.where(n >= 2, mean + gain * (centre - mean), prior)
@@ -1050,7 +1057,10 @@ def nonlocal_glr(intensity, *, looks, window=None, mask=None, workers=None, patc
     two patches, and on homogeneous areas they do not favour bright or dark pixels,
     so the mean is preserved (tested). This is the first iteration of a
     probabilistic patch-based filter; the iterative refinement of the weights with
-    the previous estimate is not done.
+    the previous estimate is not done. Consequently an isolated point target, whose
+    patch resembles no other, is averaged with its surroundings (its peak dropped by
+    about 14 dB on the synthetic benchmark scene at L = 1): prefer the improved
+    sigma filter where small bright targets matter.
 
     References
     ----------
