@@ -42,7 +42,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import filters, metrics
-from .errors import ConfigError, DespeckError, InputError, RasterError
+from .errors import ConfigError, InputError, RasterError
 from .speckle import check_looks, estimate_looks
 
 __all__ = ["BenchScene", "Method", "parse_method", "load_scene_list", "run_benchmark", "DEFAULT_METHODS", "CAUTIONS"]
