@@ -17,16 +17,19 @@ output to keep the mean backscatter of homogeneous areas):
   ``log_bias = 0``.
 * Squared error on the log against a **noisy** log target (an independent L-look
   view): the minimiser is ``E[ln I] = ln R + psi(L) - ln L``; the correction
-  ``ln L - psi(L)`` (:func:`despeck.speckle.log_bias_correction`) must be added.
-  The trainer adds it to the target per sample (exact when the looks vary between
-  samples), so models it exports carry ``log_bias = 0``; a network trained against
-  uncorrected noisy log targets with fixed L needs ``log_bias = ln L - psi(L)`` here.
+  ``ln L - psi(L)`` (:func:`despeck.speckle.log_bias_correction`) must be added. The
+  trainer adds it to the target per sample (exact also when the looks vary between
+  samples); a network trained against uncorrected noisy log targets with fixed L needs
+  ``log_bias = ln L - psi(L)`` here.
 * Squared error on the log against the **clean** log target: the minimiser is
-  ``E[ln R | context]``; the network learns the ``psi(L) - ln L`` offset itself, so
-  ``log_bias = 0``. On a homogeneous area this makes the *geometric* mean of the output
-  unbiased; the arithmetic mean is then higher than R by about ``exp(s^2 / 2)``, where
-  ``s^2`` is the residual variance of the log output over the area (log-normal
-  approximation; about 1-3 % for a well-smoothed 1-look area).
+  ``E[ln R | context]``; the network learns the ``psi(L) - ln L`` offset itself.
+
+For both squared-error variants the log estimate is unbiased on a homogeneous area, so
+the *geometric* mean of the output equals R; the arithmetic mean is higher by about
+``exp(s^2 / 2)``, where ``s^2`` is the variance of the log output over the area
+(log-normal approximation; 1-3 % for a well-smoothed 1-look area). The trainer measures
+that excess on simulated constant validation patches and exports
+``log_bias = -ln(mean output / R)`` so the mean backscatter is kept.
 
 References
 ----------

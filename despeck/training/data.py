@@ -228,8 +228,9 @@ def _as_item(noisy, clean, target, valid, looks, offset):
 class ValidationSet(Dataset):
     """Fixed validation patches with fixed speckle, drawn once from the validation regions.
 
-    Also holds a homogeneous patch (constant reflectivity at the references' typical
-    level, speckled with ``val_looks``) for the ENL and radiometric-bias columns, the
+    Also holds four homogeneous patches (constant reflectivity at the references' typical
+    level, speckled with ``val_looks``) for the mean calibration, ENL and radiometric-bias
+    columns, the
     fixed PSNR/SSIM data range (dB) and the noisy input's own PSNR for comparison.
     """
 
@@ -266,11 +267,13 @@ class ValidationSet(Dataset):
         level = float(np.mean([r.log_mean for r in refs]))
         side = max(2 * p, 128)
         reflectivity = math.exp(level)
-        noisy = (reflectivity * gamma_speckle((side, side), looks, rng=rng)).astype(np.float32)
+        # Four constant patches: three calibrate the mean of log-MSE models, the fourth
+        # measures the exported model's bias independently.
+        noisy = (reflectivity * gamma_speckle((4, 1, side, side), looks, rng=rng)).astype(np.float32)
         self.homogeneous = {
-            "noisy": torch.from_numpy(noisy)[None, None],
-            "valid": torch.ones(1, 1, side, side, dtype=torch.bool),
-            "log_offset": torch.tensor([level + log_speckle_mean(looks)], dtype=torch.float32),
+            "noisy": torch.from_numpy(noisy),
+            "valid": torch.ones(4, 1, side, side, dtype=torch.bool),
+            "log_offset": torch.full((4,), level + log_speckle_mean(looks), dtype=torch.float32),
             "reflectivity": reflectivity,
         }
         self.noisy_psnr_db = float(np.mean([

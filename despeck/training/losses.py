@@ -129,8 +129,8 @@ class DespeckleLoss(nn.Module):
                 "none needed (the estimate is the conditional mean intensity)" if self.name == "gamma_nll"
                 else "ln L - psi(L) added to the noisy log target per sample" if self.target == "noisy"
                 else "learned by the network (geometric mean unbiased)"
-            ) + ("; exported log_bias = -s^2/2, s^2 the log variance of the output on a homogeneous "
-                 "validation patch, so the arithmetic mean is kept too" if self.name == "mse_log" else ""),
+            ) + ("; exported log_bias = -ln(mean output / R) on constant validation patches, so the "
+                 "arithmetic mean is kept too" if self.name == "mse_log" else ""),
         }
 
 

@@ -181,7 +181,9 @@ def read_checkpoint(path) -> dict:
     if not path.is_file():
         raise ModelFileError(f"checkpoint {path} does not exist")
     try:
-        ckpt = torch.load(path, map_location="cpu", weights_only=True)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # notes about pickle protocols of foreign files
+            ckpt = torch.load(path, map_location="cpu", weights_only=True)
     except Exception as exc:  # torch raises many types for corrupt or pickle-bearing files
         first = (str(exc).splitlines() or [type(exc).__name__])[0][:160]
         raise ModelFileError(f"checkpoint {path} is corrupt or not a plain despeck checkpoint ({first})") from None
@@ -198,22 +200,36 @@ def read_checkpoint(path) -> dict:
     return ckpt
 
 
-def _truncate_metrics(path: Path, step: int) -> None:
-    """Drop CSV rows logged after ``step`` (work lost when a run was killed after its last checkpoint)."""
+def _metrics_rows_until(path: Path, step: int):
+    """Header and rows of a metrics CSV logged at or before ``step`` (None if there is no file).
+
+    Rows after the last checkpoint belong to work that a kill threw away; the resumed
+    run logs those steps again.
+    """
     if not path.is_file():
-        return
+        return None
     with path.open(newline="") as f:
         rows = list(csv.reader(f))
     if not rows or "step" not in rows[0]:
-        return
+        return None
     i = rows[0].index("step")
-    kept = [rows[0]] + [r for r in rows[1:] if not r[i] or float(r[i]) <= step]
-    if len(kept) != len(rows):
+    return [rows[0]] + [r for r in rows[1:] if len(r) > i and (not r[i] or float(r[i]) <= step)]
+
+
+def _csv_logger(out: Path, previous_rows, flush_every: int):
+    from lightning.pytorch.loggers import CSVLogger
+
+    logger = CSVLogger(save_dir=str(out), name="", version="", flush_logs_every_n_steps=flush_every)
+    writer = logger.experiment  # creating the writer removes an existing metrics.csv ...
+    if previous_rows:
+        # ... so the rows of the run being resumed are written back for it to append to.
         import io
 
         buf = io.StringIO()
-        csv.writer(buf, lineterminator="\n").writerows(kept)
-        _atomic_write_text(path, buf.getvalue())
+        csv.writer(buf, lineterminator="\n").writerows(previous_rows)
+        _atomic_write_text(Path(writer.metrics_file_path), buf.getvalue())
+        writer.metrics_keys = sorted(previous_rows[0])
+    return logger
 
 
 def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks=()) -> TrainResult:
@@ -242,8 +258,6 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         One-line errors, all raised before training starts.
     """
     from lightning.pytorch.callbacks import EarlyStopping, LearningRateMonitor, ModelCheckpoint, TQDMProgressBar
-    from lightning.pytorch.loggers import CSVLogger
-
     from ..models import Despeckler, create_model, save_model_file
     from .data import TrainingData
     from .module import DespeckleModule
@@ -299,41 +313,38 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     config_path = out / "config.yaml"
     _atomic_write_text(config_path, dump_config(config))
     metrics_path = out / "metrics.csv"
-    if resume_ckpt is not None:
-        _truncate_metrics(metrics_path, int(resume_ckpt.get("global_step", 0)))
-    logger = CSVLogger(save_dir=str(out), name="", version="")
+    previous = _metrics_rows_until(metrics_path, int(resume_ckpt["global_step"])) if resume_ckpt else None
 
-    trainer = pl.Trainer(
-        accelerator="cpu", devices=1,
-        precision="bf16-mixed" if config.trainer.precision == "bf16" else "32-true",
-        max_epochs=config.budget.max_epochs if config.budget.max_epochs else -1,
-        max_steps=config.budget.max_steps if config.budget.max_steps else -1,
-        callbacks=cbs, logger=logger, default_root_dir=str(out),
-        enable_progress_bar=progress, enable_model_summary=progress,
-        num_sanity_val_steps=0, deterministic=True, benchmark=False,
-        log_every_n_steps=config.trainer.log_every_n_steps,
-        gradient_clip_val=config.optim.grad_clip or None,
-    )
     import logging
 
     lightning_log = logging.getLogger("lightning.pytorch")
     previous_level = lightning_log.level
     if not progress:
-        lightning_log.setLevel(logging.WARNING)  # quiet: no "fit stopped" or device notes
-    with warnings.catch_warnings():
-        # Lightning's notes about our deliberate choices (no workers on a small CPU, an
-        # existing log folder on resume, a fixed epoch length) are not user errors.
-        warnings.filterwarnings("ignore", message=".*does not have many workers.*")
-        warnings.filterwarnings("ignore", message=".*Experiment logs directory.*")
-        warnings.filterwarnings("ignore", message=".*exists and is not empty.*")
-        warnings.filterwarnings("ignore", message=".*Checkpoint directory.*")
-        warnings.filterwarnings("ignore", category=DeprecationWarning, module="lightning")
-        warnings.filterwarnings("ignore", message=".*treespec.*")
-        try:
+        lightning_log.setLevel(logging.WARNING)  # quiet: no device notes or "fit stopped"
+    try:
+        with warnings.catch_warnings():
+            # Lightning's notes about deliberate choices (no workers on a small CPU, an
+            # existing log folder on resume) are not user errors.
+            for message in (".*does not have many workers.*", ".*Experiment logs directory.*",
+                            ".*exists and is not empty.*", ".*Checkpoint directory.*", ".*treespec.*"):
+                warnings.filterwarnings("ignore", message=message)
+            warnings.filterwarnings("ignore", category=DeprecationWarning, module="lightning")
+            trainer = pl.Trainer(
+                accelerator="cpu", devices=1,
+                precision="bf16-mixed" if config.trainer.precision == "bf16" else "32-true",
+                max_epochs=config.budget.max_epochs if config.budget.max_epochs else -1,
+                max_steps=config.budget.max_steps if config.budget.max_steps else -1,
+                callbacks=cbs, logger=_csv_logger(out, previous, config.trainer.log_every_n_steps),
+                default_root_dir=str(out),
+                enable_progress_bar=progress, enable_model_summary=progress,
+                num_sanity_val_steps=0, deterministic=True, benchmark=False,
+                log_every_n_steps=config.trainer.log_every_n_steps,
+                gradient_clip_val=config.optim.grad_clip or None,
+            )
             trainer.fit(module, train_dataloaders=data.train_dataloader(), val_dataloaders=data.val_dataloader(),
                         ckpt_path=str(last) if resume else None)
-        finally:
-            lightning_log.setLevel(previous_level)
+    finally:
+        lightning_log.setLevel(previous_level)
 
     if trainer.interrupted:  # pragma: no cover - Lightning turns Ctrl-C into an exit
         raise KeyboardInterrupt

@@ -1,0 +1,329 @@
+"""Tests for despeck.training: config, patch data, losses, the trainer, resume, and `despeck train`."""
+
+import csv
+import math
+import pickle
+import shutil
+from pathlib import Path
+
+import lightning.pytorch as pl
+import numpy as np
+import pytest
+import rasterio
+import torch
+import yaml
+from affine import Affine
+from scipy import optimize, special, stats
+
+from despeck.cli import main as cli_main
+from despeck.errors import ConfigError, ModelFileError, RasterError
+from despeck.models import load_model_file
+from despeck.synthetic import make_scene
+from despeck.training import apply_overrides, config_from_dict, dump_config, load_config, parse_duration, train
+from despeck.training.data import TrainingData
+from despeck.training.losses import DespeckleLoss, gamma_nll, log_mse
+from despeck.training.trainer import EpochTimeBudget
+
+torch.set_num_threads(2)
+TINY = Path(__file__).resolve().parents[1] / "configs" / "tiny.yaml"
+
+
+def _write_tif(path, array, nodata=None):
+    with rasterio.open(path, "w", driver="GTiff", height=array.shape[0], width=array.shape[1], count=1,
+                       dtype="float32", nodata=nodata, transform=Affine(10.0, 0.0, 0.0, 0.0, -10.0, 0.0)) as dst:
+        dst.write(array.astype(np.float32), 1)
+    return path
+
+
+@pytest.fixture(scope="module")
+def references(tmp_path_factory):
+    """Two small clean references: one with a nodata border (0), one shorter."""
+    folder = tmp_path_factory.mktemp("refs")
+    a = make_scene((96, 96), rng=11)
+    a[:, :10] = 0.0
+    _write_tif(folder / "a.tif", a, nodata=0.0)
+    _write_tif(folder / "b.tif", make_scene((80, 96), rng=12)[:80])
+    return folder
+
+
+def _overrides(references, out):
+    # The tiny config, on the two rasters, 4 epochs of 12 steps: the run the tests share.
+    return [f"data.train=[{references}]", "data.synthetic_scenes=0", "data.patches_per_epoch=96",
+            "budget.max_epochs=4", "budget.max_time=null", f"output.dir={out}"]
+
+
+@pytest.fixture(scope="module")
+def tiny_run(references, tmp_path_factory):
+    """One uninterrupted tiny training run through the command line."""
+    out = tmp_path_factory.mktemp("runs") / "full"
+    args = ["train", "--config", str(TINY), "--quiet"]
+    for o in _overrides(references, out):
+        args += ["--set", o]
+    assert cli_main(args) == 0
+    return out
+
+
+# ----------------------------------------------------------------------------- config
+
+def test_config_rejects_unknown_keys_and_wrong_types():
+    with pytest.raises(ConfigError, match=r"data\.patchsize is unknown; allowed keys in data: .*patch_size"):
+        config_from_dict({"data": {"synthetic_scenes": 1, "patchsize": 3}})
+    with pytest.raises(ConfigError, match="section 'trainning' is unknown; allowed sections: data"):
+        config_from_dict({"trainning": {}})
+    with pytest.raises(ConfigError, match=r"data\.batch_size: expected an integer, got 'big'"):
+        config_from_dict({"data": {"synthetic_scenes": 1, "batch_size": "big"}})
+    with pytest.raises(ConfigError, match=r"speckle\.looks: must be positive"):
+        config_from_dict({"data": {"synthetic_scenes": 1}, "speckle": {"looks": 0}})
+    with pytest.raises(ConfigError, match=r"speckle\.looks: range must be \[min, max\]"):
+        config_from_dict({"data": {"synthetic_scenes": 1}, "speckle": {"looks": [4, 1]}})
+    with pytest.raises(ConfigError, match=r"loss\.name: must be one of gamma_nll, mse_log"):
+        config_from_dict({"data": {"synthetic_scenes": 1}, "loss": {"name": "l1"}})
+    with pytest.raises(ConfigError, match=r"model\.name: unknown model 'bignet'"):
+        config_from_dict({"data": {"synthetic_scenes": 1}, "model": {"name": "bignet"}})
+    with pytest.raises(ConfigError, match="no training data"):
+        config_from_dict({})
+
+
+def test_durations_and_overrides():
+    assert parse_duration("8h") == 8 * 3600 and parse_duration("90s") == 90
+    assert parse_duration("1h30m") == 5400 and parse_duration(45) == 45
+    with pytest.raises(ConfigError, match="budget.max_time: cannot read duration '8 hours'"):
+        config_from_dict({"data": {"synthetic_scenes": 1}, "budget": {"max_time": "8 hours"}})
+    values = apply_overrides({"speckle": {"looks": 1}}, ["speckle.looks=[1, 4]", "budget.max_time=2h"])
+    assert values == {"speckle": {"looks": [1, 4]}, "budget": {"max_time": "2h"}}
+    with pytest.raises(ConfigError, match="section.key"):
+        apply_overrides({}, ["looks=3"])
+
+
+def test_resolved_config_round_trips(tmp_path):
+    config = load_config(TINY, ["speckle.looks=[1,4]"])
+    saved = tmp_path / "config.yaml"
+    saved.write_text(dump_config(config))
+    assert load_config(saved) == config
+
+
+# ----------------------------------------------------------------------------- data
+
+def test_patches_skip_nodata_fixed_epoch_and_deterministic(references):
+    config = load_config(TINY, [f"data.train=[{references}]", "data.synthetic_scenes=0",
+                                "data.patches_per_epoch=40", "speckle.looks=4"])
+    data = TrainingData(config)
+    assert len(data.train_set) == 40  # fixed, whatever the number of files
+    items = [data.train_set[(1, i)] for i in range(40)]
+    assert all(bool(it["valid"].all()) for it in items)  # min_valid_fraction 1: no nodata drawn
+    again = data.train_set[(1, 7)]
+    assert torch.equal(again["noisy"], items[7]["noisy"])  # same (epoch, index), same sample
+    assert not torch.equal(data.train_set[(2, 7)]["noisy"], items[7]["noisy"])
+    # Speckle is Gamma(L, 1/L): mean 1, variance 1/L (scipy.stats.gamma; METHODS.md section 1).
+    ratio = torch.cat([(it["noisy"] / it["clean"]).flatten() for it in items]).double().numpy()
+    theory = stats.gamma(a=4, scale=1 / 4)
+    se = math.sqrt(theory.var() / ratio.size)
+    assert abs(ratio.mean() - theory.mean()) < 5 * se
+    assert ratio.var() == pytest.approx(theory.var(), rel=0.05)
+    # Validation comes from the bottom strip of each raster, never from training rows.
+    for ref in data.references:
+        train_rows = np.flatnonzero(ref.train.allowed.any(axis=1))
+        val_rows = np.flatnonzero(ref.val.allowed.any(axis=1))
+        assert train_rows.max() + config.data.patch_size <= val_rows.min()
+
+
+def test_looks_range_is_drawn_per_patch(references):
+    config = load_config(TINY, [f"data.train=[{references}]", "data.synthetic_scenes=0", "speckle.looks=[1, 4]"])
+    looks = np.array([TrainingData(config).train_set[(0, i)]["looks"].item() for i in range(30)])
+    assert looks.min() >= 1 and looks.max() <= 4 and looks.std() > 0.3
+
+
+def test_bad_inputs_fail_before_training(tmp_path, references):
+    def run(*overrides, resume=False):
+        cfg = load_config(TINY, [f"output.dir={tmp_path / 'out'}", "data.synthetic_scenes=0", *overrides])
+        train(cfg, resume=resume, progress=False)
+
+    (tmp_path / "empty").mkdir()
+    with pytest.raises(ConfigError, match="holds no raster files") as info:
+        run(f"data.train=[{tmp_path / 'empty'}]")
+    assert "\n" not in str(info.value)
+    with pytest.raises(ConfigError, match="does not exist"):
+        run(f"data.train=[{tmp_path / 'nothing.tif'}]")
+    with pytest.raises(ConfigError, match="no files match"):
+        run(f"data.train=[{tmp_path / '*.tif'}]")
+    with pytest.raises(ConfigError, match=r"data\.patch_size: 128 is larger than raster .*b\.tif"):
+        run(f"data.train=[{references / 'b.tif'}]", "data.patch_size=128")
+    holes = make_scene((96, 96), rng=3)
+    holes[::20, :] = np.nan  # a nodata row every 20 rows: no fully valid 32x32 patch
+    _write_tif(tmp_path / "holes.tif", holes)
+    with pytest.raises(RasterError, match="no 32x32 training patch with at least 100% valid pixels"):
+        run(f"data.train=[{tmp_path / 'holes.tif'}]")
+    _write_tif(tmp_path / "blank.tif", np.zeros((64, 64)), nodata=0.0)
+    with pytest.raises(RasterError, match="blank.tif"):
+        run(f"data.train=[{tmp_path / 'blank.tif'}]")
+    (tmp_path / "plain_file").write_text("x")
+    with pytest.raises(ConfigError, match="output.dir: cannot write"):
+        train(load_config(TINY, [f"output.dir={tmp_path / 'plain_file' / 'sub'}"]), progress=False)
+    with pytest.raises(ConfigError, match="nothing to resume"):
+        run(f"data.train=[{references}]", resume=True)
+    assert not (tmp_path / "out" / "metrics.csv").exists()  # nothing ever started
+
+
+def test_bad_checkpoints_are_refused_without_running_code(tmp_path):
+    out = tmp_path / "out"
+    (out / "checkpoints").mkdir(parents=True)
+    last = out / "checkpoints" / "last.ckpt"
+    cfg = load_config(TINY, [f"output.dir={out}"])
+    last.write_bytes(b"not a checkpoint at all")
+    with pytest.raises(ModelFileError, match="last.ckpt is corrupt"):
+        train(cfg, resume=True, progress=False)
+    torch.save({"state_dict": {}, "epoch": 3}, last)  # a plain but foreign checkpoint
+    with pytest.raises(ModelFileError, match="not written by despeck train"):
+        train(cfg, resume=True, progress=False)
+    marker = tmp_path / "executed"
+
+    class Boom:
+        def __reduce__(self):
+            return (open, (str(marker), "w"))
+
+    last.write_bytes(pickle.dumps({"despeck": Boom()}))
+    with pytest.raises(ModelFileError, match="last.ckpt"):
+        train(cfg, resume=True, progress=False)
+    assert not marker.exists()
+
+
+def test_bf16_refused_where_unsupported(tmp_path, monkeypatch):
+    import despeck.training.trainer as trainer_module
+
+    monkeypatch.setattr(trainer_module, "bf16_supported", lambda: False)
+    with pytest.raises(ConfigError, match="trainer.precision: bf16 needs"):
+        train(load_config(TINY, [f"output.dir={tmp_path}", "trainer.precision=bf16"]), progress=False)
+
+
+# ----------------------------------------------------------------------------- losses
+
+def test_loss_minimisers_and_bias_correction():
+    # Homogeneous area, R = 0.02, L = 2. Each loss is minimised over a constant estimate y.
+    rng = np.random.default_rng(5)
+    R, L, n = 0.02, 2.0, 200_000
+    noisy = R * rng.gamma(L, 1 / L, n)
+    t_noisy = torch.from_numpy(np.log(noisy))
+    batch = {"target": torch.from_numpy(noisy).reshape(1, 1, 1, n), "looks": torch.tensor([L]),
+             "valid": torch.ones(1, 1, 1, n, dtype=torch.bool)}
+
+    def argmin(f):
+        return optimize.minimize_scalar(lambda y: float(f(torch.tensor(y, dtype=torch.float64))),
+                                        bounds=(-10, 0), method="bounded", options={"xatol": 1e-8}).x
+
+    # Gamma NLL y + I exp(-y) is minimised at y = ln E[I] (METHODS.md section 5): no correction.
+    y_nll = argmin(lambda y: gamma_nll(y, t_noisy))
+    assert y_nll == pytest.approx(math.log(noisy.mean()), abs=1e-6)
+    # Log-MSE on noisy targets: minimiser mean(ln I) = ln R + psi(L) - ln L (scipy digamma) ...
+    y_mse = argmin(lambda y: log_mse(y, t_noisy))
+    se = math.sqrt(special.polygamma(1, L) / n)
+    assert abs(y_mse - (math.log(R) + special.digamma(L) - math.log(L))) < 5 * se
+    # ... so DespeckleLoss adds ln L - psi(L) to the noisy target, putting the minimiser at ln R.
+    loss = DespeckleLoss("mse_log", "noisy")
+    y_fixed = argmin(lambda y: loss(y.expand(1, 1, 1, n), batch))
+    assert abs(y_fixed - math.log(R)) < 5 * se
+
+
+def test_time_budget_stops_at_epoch_boundary(monkeypatch):
+    clock = {"t": 0.0}
+    monkeypatch.setattr("despeck.training.trainer.time.monotonic", lambda: clock["t"])
+
+    class Trainer:
+        should_stop = False
+
+    budget, trainer = EpochTimeBudget(100.0), Trainer()
+    budget.on_train_start(trainer, None)
+    for epoch in range(3):  # epochs of 30 s: after the third (90 s) a fourth would not fit
+        budget.on_train_epoch_start(trainer, None)
+        clock["t"] += 30.0
+        budget.on_train_batch_end(trainer, None, None, None, 0)
+        budget.on_train_epoch_end(trainer, None)
+        assert trainer.should_stop == (epoch == 2)
+    # The time used travels in the checkpoint: a resumed run continues the same budget.
+    resumed = EpochTimeBudget(100.0)
+    resumed.load_state_dict(budget.state_dict())
+    assert resumed.elapsed() == pytest.approx(90.0) and resumed.longest_epoch == pytest.approx(30.0)
+
+
+# ----------------------------------------------------------------------------- training runs
+
+def _epoch_rows(path):
+    with open(path, newline="") as f:
+        return [r for r in csv.DictReader(f) if r.get("val_loss")]
+
+
+def test_tiny_run_learns_and_writes_everything(tiny_run):
+    rows = _epoch_rows(tiny_run / "metrics.csv")
+    assert len(rows) == 4
+    val = [float(r["val_loss"]) for r in rows]
+    assert min(val[1:]) < val[0]  # validation loss goes down
+    best = rows[int(np.argmin(val))]
+    # Beats the noisy input's PSNR (dB domain, same fixed data range; skimage.metrics).
+    assert float(best["val_psnr_db"]) > float(best["val_psnr_noisy_db"]) + 1.0
+    assert {"val_ssim_db", "val_enl", "val_bias_db", "train_loss_epoch"} <= set(rows[0])
+    saved = yaml.safe_load((tiny_run / "config.yaml").read_text())
+    assert saved["budget"]["max_epochs"] == 4 and saved["model"]["name"] == "logcnn-xs"
+    model = load_model_file(tiny_run / "model.safetensors")
+    assert model.looks == 1.0 and model.metadata["training"]["steps"] == 48
+    assert model.metadata["normalisation"]["loss"] == "mse_log"
+    assert model.metadata["metrics"]["val_psnr_db"] == pytest.approx(float(best["val_psnr_db"]), rel=1e-5)
+    assert (tiny_run / "checkpoints" / "last.ckpt").is_file() and (tiny_run / "checkpoints" / "best.ckpt").is_file()
+
+
+def test_trained_model_keeps_mean_on_constant_scene(tiny_run):
+    # A constant 1-look scene at a calibration the model never saw (R = 3e-3).
+    # Theory (METHODS.md section 1, scipy digamma): the mean log of L-look speckle is
+    # psi(L) - ln L = -0.577 at L = 1, i.e. the log-average of the input is 2.5 dB low.
+    model = load_model_file(tiny_run / "model.safetensors")
+    R, L = 3e-3, 1.0
+    rng = np.random.default_rng(21)
+    noisy = (R * rng.gamma(L, 1 / L, (1, 1, 200, 200))).astype(np.float32)
+    log_bias = special.digamma(L) - math.log(L)
+    assert np.log(noisy).mean() - math.log(R) == pytest.approx(log_bias, abs=0.02)
+    with torch.no_grad():
+        out = model(torch.from_numpy(noisy))[0, 0].double().numpy()
+    h = model.receptive_field // 2
+    core = out[h:-h, h:-h]
+    # Tolerance: outputs closer than a receptive field are correlated, so count one
+    # independent sample per receptive-field square; 4 standard errors of the mean.
+    m_eff = core.size / model.receptive_field ** 2
+    tol = 4 * core.std() / core.mean() / math.sqrt(m_eff)
+    assert tol < abs(log_bias) / 4  # the check can tell a corrected from an uncorrected mean
+    assert abs(math.log(core.mean() / R)) < tol
+
+
+class _Kill(Exception):
+    pass
+
+
+class _KillAtStep(pl.Callback):
+    """Stands in for a kill: the process dies mid-epoch, after the last checkpoint."""
+
+    def __init__(self, step):
+        self.step = step
+
+    def on_train_batch_end(self, trainer, *args):
+        if trainer.global_step == self.step:
+            raise _Kill()
+
+
+def test_killed_run_resumes_to_the_same_result(tiny_run, references, tmp_path):
+    out = tmp_path / "killed"
+    config = load_config(TINY, _overrides(references, out))
+    with pytest.raises(_Kill):
+        train(config, progress=False, callbacks=[_KillAtStep(30)])  # mid third epoch (12 steps each)
+    assert not (out / "model.safetensors").exists()
+    killed_at = torch.load(out / "checkpoints" / "last.ckpt", weights_only=True)["global_step"]
+    assert killed_at == 24  # the last end-of-epoch checkpoint before the kill
+    result = train(config, resume=True, progress=False)
+    assert result.steps == 48
+    full = load_model_file(tiny_run / "model.safetensors").network.state_dict()
+    resumed = load_model_file(result.model_path).network.state_dict()
+    for key in full:
+        torch.testing.assert_close(resumed[key], full[key], rtol=1e-5, atol=1e-6)
+    a, b = _epoch_rows(tiny_run / "metrics.csv"), _epoch_rows(out / "metrics.csv")
+    assert [r["step"] for r in a] == [r["step"] for r in b]  # rows after the kill were not kept twice
+    assert [float(r["val_loss"]) for r in b] == pytest.approx([float(r["val_loss"]) for r in a], rel=1e-5)
+    # Starting again without --resume would mix two runs: refused.
+    with pytest.raises(ConfigError, match="already holds a training run"):
+        train(config, progress=False)
+    shutil.rmtree(out)
