@@ -54,11 +54,6 @@ _BATCH_PIXELS = 1 << 20
 # Upper bound of the scene sample used for the log offset (same as the file reader's).
 _SAMPLE_PIXELS = 1_000_000
 
-# GDAL's block cache defaults to 5 % of RAM and keeps written blocks until it is full,
-# which would make peak memory grow with the output's size; streaming needs only a
-# few rows of blocks at a time.
-_GDAL_CACHE_BYTES = 64 * 1024 * 1024
-
 
 class InferenceWarning(UserWarning):
     """The model may not suit the input (units, looks), or a speed option was unavailable."""
@@ -105,7 +100,7 @@ def _positive_int(name, value, minimum=1):
     return int(value)
 
 
-def resolve_tiling(shape, model, *, tile=None, overlap=None) -> TileGrid:
+def resolve_tiling(shape, model, *, tile=None, overlap=None, row_stride=None) -> TileGrid:
     """The tile grid used for a scene of ``shape`` with ``model``.
 
     Parameters
@@ -125,6 +120,9 @@ def resolve_tiling(shape, model, *, tile=None, overlap=None) -> TileGrid:
         allowed (with a warning): a quarter of it is discarded at each edge and the middle
         half blended. For networks that downsample (U-Nets) it is rounded up to their
         size multiple so every tile sees the same pooling grid as the whole scene.
+    row_stride : int, optional
+        Fix the rows advanced per row of tiles (see :meth:`TileGrid.fitted`); used when
+        it fits in ``tile``, which then bounds the tile's area.
 
     Raises
     ------
@@ -159,7 +157,9 @@ def resolve_tiling(shape, model, *, tile=None, overlap=None) -> TileGrid:
         tile = max(d_tile, overlap + 8 * multiple)
     if overlap >= tile:
         raise InputError(f"overlap ({overlap}) must be smaller than the tile size ({tile})")
-    return TileGrid.fitted(shape, tile, overlap, margin, multiple=multiple)
+    if row_stride is not None and (row_stride % multiple or row_stride + overlap > tile):
+        row_stride = None
+    return TileGrid.fitted(shape, tile, overlap, margin, multiple=multiple, row_stride=row_stride)
 
 
 def _round_up(value, multiple):
@@ -301,7 +301,7 @@ def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_b
 
     ``read_rows(r0, r1) -> (intensity, valid)`` returns scene rows ``[r0, r1)``, full width;
     ``emit_rows(r0, r1, estimate, valid)`` receives finished rows (``estimate`` is only
-    meaningful where ``valid``). Input rows are kept in a buffer that never holds more
+    meaningful where ``valid``; both are views into buffers that are reused afterwards). Input rows are kept in a buffer that never holds more
     than one tile height plus one read chunk; the blend accumulator holds one tile
     height. Neither depends on the number of scene rows.
     """
@@ -319,6 +319,7 @@ def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_b
     batch_in = np.empty((batch_size, tr, tc), dtype=np.float32)
     batch_ok = np.empty((batch_size, tr, tc), dtype=bool)
     col_index = [cols.source_index(j) for j in range(cols.count)]
+    col_weight = cols.accumulated_weight.astype(np.float32)[None, :]
     for i in range(rows.count):
         # Slide the input buffer: forget rows no later tile needs, then read on.
         drop = keep[i] - b0
@@ -345,7 +346,10 @@ def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_b
                 grid.blend_into(acc, out[n], i, j, row_offset=a0)
         finished = rows.finished(i)
         if finished > done:
-            estimate = acc[done - a0 : finished - a0] / grid.accumulated_weight(done, finished)
+            # Normalise in place, one axis at a time: no full-width temporaries.
+            estimate = acc[done - a0 : finished - a0]
+            estimate /= rows.accumulated_weight[done:finished, None].astype(np.float32)
+            estimate /= col_weight
             emit_rows(done, finished, estimate, buf_valid[done - b0 : finished - b0])
             if progress_bar is not None:
                 progress_bar.update((finished - done) * width / 1e6)
@@ -520,23 +524,49 @@ def model_mismatch_notes(model, reader) -> list[str]:
 
 
 class _BlockWriter:
-    """Collects finished rows and writes them in whole rows of the output's blocks."""
+    """Writes finished rows in whole rows of the output's blocks, a few blocks wide at a time.
 
-    def __init__(self, writer, band, block_rows, capacity_rows):
+    When the tile grid's row stride equals the block height (the default), every
+    emission is exactly one row of blocks and goes straight to the file; otherwise rows
+    are staged until a row of blocks is complete, so GDAL never has to rewrite a
+    compressed block. Writing a few blocks' width per call keeps the writer's own
+    conversion temporaries small whatever the scene's width.
+    """
+
+    def __init__(self, writer, band, block_shape):
         self.writer = writer
         self.band = band
-        self.block_rows = block_rows
+        self.block_rows, block_cols = block_shape
         self.width = writer.width
         self.height = writer.height
-        self.values = np.empty((capacity_rows + block_rows, self.width), dtype=np.float32)
-        self.valid = np.empty((capacity_rows + block_rows, self.width), dtype=bool)
-        self.start = 0  # scene row of values[0]
+        self.cols_per_write = block_cols * max(1, 2048 // block_cols)
+        self.values = self.valid = None  # staging, allocated only if rows arrive unaligned
+        self.start = 0  # first scene row not yet written
         self.held = 0
 
-    def __call__(self, r0, r1, estimate, valid):
+    def _write(self, r0, values, valid):
         from rasterio.windows import Window
 
+        n = values.shape[0]
+        for c0 in range(0, self.width, self.cols_per_write):
+            c1 = min(self.width, c0 + self.cols_per_write)
+            self.writer.write(values[:, c0:c1], Window(c0, r0, c1 - c0, n), band=self.band, valid=valid[:, c0:c1])
+
+    def __call__(self, r0, r1, estimate, valid):
         n = r1 - r0
+        aligned = self.held == 0 and r0 % self.block_rows == 0
+        if aligned and (r1 % self.block_rows == 0 or r1 == self.height):
+            self._write(r0, estimate, valid)
+            self.start = r1
+            return
+        if self.values is None:
+            rows = n + self.block_rows
+            self.values = np.empty((rows, self.width), dtype=np.float32)
+            self.valid = np.empty((rows, self.width), dtype=bool)
+        if self.held + n > self.values.shape[0]:
+            grow = self.held + n
+            self.values = np.concatenate([self.values[: self.held], np.empty((grow - self.held, self.width), np.float32)])
+            self.valid = np.concatenate([self.valid[: self.held], np.empty((grow - self.held, self.width), bool)])
         self.values[self.held : self.held + n] = estimate
         self.valid[self.held : self.held + n] = valid
         self.held += n
@@ -544,8 +574,7 @@ class _BlockWriter:
         ready = end if end == self.height else (end // self.block_rows) * self.block_rows
         if ready > self.start:
             k = ready - self.start
-            self.writer.write(self.values[:k], Window(0, self.start, self.width, k), band=self.band,
-                              valid=self.valid[:k])
+            self._write(self.start, self.values[:k], self.valid[:k])
             rest = self.held - k
             self.values[:rest] = self.values[k : self.held].copy()
             self.valid[:rest] = self.valid[k : self.held].copy()
@@ -592,41 +621,47 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
     InferenceWarning
         The model was trained for other units or looks than the file's.
     """
-    import rasterio
+    from rasterio.windows import Window
 
-    from .raster import check_output_path, open_scene, open_output
+    from .raster import check_output_path, open_output, open_scene
 
     _check_model(model)
     check_output_path(out_path, [in_path], overwrite=overwrite)
-    with rasterio.Env(GDAL_CACHEMAX=_GDAL_CACHE_BYTES), open_scene(in_path, units=units) as reader:
+    # despeck.raster caps GDAL's block cache, so written blocks do not pile up in memory.
+    with open_scene(in_path, units=units) as reader:
         for note in model_mismatch_notes(model, reader):
             warnings.warn(note, InferenceWarning, stacklevel=2)
-        grid = resolve_tiling((reader.height, reader.width), model, tile=tile, overlap=overlap)
-        threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
-        chunk = max(1, reader.block_shape[0])
-        chunk *= max(1, 128 // chunk)  # read at least ~128 rows per call on striped files
+        shape = (reader.height, reader.width)
+        resolve_tiling(shape, model, tile=tile, overlap=overlap)  # bad options fail before any file exists
         bar = _make_bar(reader.width * reader.height * reader.band_count, pathlib.Path(in_path).name, progress)
         was_training = model.training
         model.eval()
         try:
-            with open_output(out_path, reader, units=out_units, overwrite=overwrite) as writer, \
-                    _torch_settings(threads):
-                block_rows = writer.block_windows()[0].height
-                for band in range(1, reader.band_count + 1):
-                    offset = _scene_offset(model, reader.sample_intensity(_SAMPLE_PIXELS, band=band))
-                    runner = _TileRunner(model, log_offset=offset, bf16=use_bf16, channels_last=channels_last)
+            with open_output(out_path, reader, units=out_units, overwrite=overwrite) as writer:
+                block = writer.block_windows()[0]
+                block_shape = (int(block.height), int(block.width))
+                with warnings.catch_warnings():
+                    warnings.simplefilter("ignore", InferenceWarning)  # already shown above
+                    grid = resolve_tiling(shape, model, tile=tile, overlap=overlap, row_stride=block_shape[0])
+                threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
+                # Read in chunks of about 128 rows: GDAL's cache keeps the rest of a taller
+                # block row, and the input buffer stays one tile plus one chunk high.
+                in_rows = max(1, reader.block_shape[0])
+                chunk = 128 if in_rows >= 128 else in_rows * -(-128 // in_rows)
+                with _torch_settings(threads):
+                    for band in range(1, reader.band_count + 1):
+                        offset = _scene_offset(model, reader.sample_intensity(_SAMPLE_PIXELS, band=band))
+                        runner = _TileRunner(model, log_offset=offset, bf16=use_bf16, channels_last=channels_last)
 
-                    def read_rows(r0, r1, band=band):
-                        from rasterio.windows import Window
+                        def read_rows(r0, r1, band=band):
+                            return reader.read(Window(0, r0, reader.width, r1 - r0), band=band)
 
-                        return reader.read(Window(0, r0, reader.width, r1 - r0), band=band)
-
-                    out = _BlockWriter(writer, band, block_rows, grid.rows.stride + grid.rows.tile)
-                    try:
-                        _stream(grid, read_rows, out, runner, batch_size, bar, chunk_rows=chunk)
-                    finally:
-                        runner.restore()
-                    channels_last = runner.channels_last
+                        try:
+                            _stream(grid, read_rows, _BlockWriter(writer, band, block_shape), runner, batch_size,
+                                    bar, chunk_rows=chunk)
+                        finally:
+                            runner.restore()
+                        channels_last = runner.channels_last
         finally:
             model.train(was_training)
             if bar is not None:

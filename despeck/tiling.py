@@ -244,7 +244,8 @@ class TileGrid:
         self.cols  # noqa: B018
 
     @classmethod
-    def fitted(cls, shape, tile: int, overlap: int, margin: int = 0, multiple: int = 1) -> "TileGrid":
+    def fitted(cls, shape, tile: int, overlap: int, margin: int = 0, multiple: int = 1,
+               row_stride: int | None = None) -> "TileGrid":
         """A grid whose tiles are no larger than ``tile`` but waste little past the border.
 
         Along each axis, the number of tiles needed with side ``tile`` is kept and the
@@ -254,19 +255,44 @@ class TileGrid:
         the pixels computed by 15 %. With ``multiple > 1`` the cap is first rounded
         down to a multiple of it, so tile sides and strides (for an overlap that is a
         multiple too) keep every tile on the same pooling grid.
+
+        Parameters
+        ----------
+        shape : tuple of int
+            Scene ``(rows, cols)``.
+        tile : int
+            Largest tile side. With ``row_stride`` it bounds the tile's area instead
+            (``tile ** 2`` pixels).
+        overlap, margin : int
+            As for :class:`TileGrid`.
+        multiple : int
+            Side multiple of networks that downsample.
+        row_stride : int, optional
+            Fix the row stride (tile rows are ``row_stride + overlap``), e.g. to the
+            output file's block height so every row of tiles finishes whole rows of
+            blocks and memory holds short, wide strips; columns are then fitted with
+            sides up to ``tile ** 2 // (row_stride + overlap)``.
         """
         multiple = max(1, int(multiple))
         step = math.lcm(8, multiple)
-        if multiple > 1 and tile - tile % multiple > overlap:
-            tile -= tile % multiple
-        sides = []
-        for length in shape:
-            axis = AxisTiling(int(length), int(tile), int(overlap), int(margin))
+
+        def fit(length, cap):
+            if multiple > 1 and cap - cap % multiple > overlap:
+                cap -= cap % multiple
+            axis = AxisTiling(int(length), int(cap), int(overlap), int(margin))
             c = axis.count
             needed = -(-(int(length) + 2 * margin + (c - 1) * overlap) // c)
             side = max(_round_up(needed, step), _round_up(overlap + 1, step))
-            sides.append(int(min(side, tile)))
-        return cls(tuple(shape), tuple(sides), overlap, margin)
+            return int(min(side, cap))
+
+        if row_stride is None:
+            sides = (fit(shape[0], tile), fit(shape[1], tile))
+        else:
+            tile_rows = int(row_stride) + int(overlap)
+            if int(shape[0]) + 2 * margin <= tile_rows:
+                tile_rows = fit(shape[0], tile_rows)  # one row of tiles: just cover the scene
+            sides = (tile_rows, fit(shape[1], max(overlap + step, tile * tile // tile_rows)))
+        return cls(tuple(shape), sides, overlap, margin)
 
     @cached_property
     def rows(self) -> AxisTiling:
@@ -346,11 +372,11 @@ def default_tiling(receptive_field: int, multiple: int = 1) -> tuple[int, int]:
     """Default ``(tile, overlap)`` for a network with the given receptive field.
 
     The overlap is the receptive field minus one (the two discarded margins) plus a blend
-    zone of ``max(8, receptive_field // 4)`` pixels, rounded up to a multiple of 8. The
-    tile is 16 overlaps, between 256 and 1024 pixels, rounded up to a multiple of 64, so
-    the recomputed overlap costs at most about 12 % of the work and a tile's activations
-    stay within a few hundred MB for 64-channel networks. Both are rounded to
-    ``multiple``. These values were chosen from ``benchmarks/bench_inference.py``.
+    zone of ``max(8, receptive_field // 4)`` pixels, rounded up to ``multiple``. The tile
+    is 1024 pixels (four overlaps if that is more), rounded up to ``lcm(64, multiple)``:
+    one megapixel per tile keeps the recomputed overlap to a few per cent for the
+    registry's networks while a 64-channel network's activations stay within a few
+    hundred MB (measured with ``benchmarks/bench_inference.py``).
 
     Parameters
     ----------
@@ -363,10 +389,9 @@ def default_tiling(receptive_field: int, multiple: int = 1) -> tuple[int, int]:
     -------
     tile, overlap : int
     """
-    if not isinstance(receptive_field, (int, np.integer)) or receptive_field < 1:
+    if isinstance(receptive_field, bool) or not isinstance(receptive_field, (int, np.integer)) or receptive_field < 1:
         raise InputError(f"receptive field must be a positive integer, got {receptive_field!r}")
     multiple = max(1, int(multiple))
-    step = math.lcm(8, multiple)
-    overlap = _round_up(receptive_field - 1 + max(8, receptive_field // 4), step)
-    tile = _round_up(min(1024, max(256, 16 * overlap)), math.lcm(64, multiple))
+    overlap = _round_up(receptive_field - 1 + max(8, receptive_field // 4), multiple)
+    tile = _round_up(max(1024, 4 * overlap), math.lcm(64, multiple))
     return int(tile), int(overlap)

@@ -303,6 +303,19 @@ def test_file_keeps_georeferencing_nodata_and_matches_array(rng, tmp_path):
     assert not list(dst.parent.glob(".*tmp"))  # no temporary file left
 
 
+def test_file_streams_in_whole_rows_of_output_blocks(rng, tmp_path):
+    # A tall scene with default tiling: every row of tiles finishes one 512-row block row.
+    model = _conv_model()
+    x = _scene(rng, (1100, 40))
+    src = _write_tif(tmp_path / "tall.tif", x, block=256)
+    dst = despeckle_file(src, tmp_path / "tall_out.tif", model, progress=False)
+    with rasterio.open(dst) as ds:
+        got = ds.read(1)
+    grid = resolve_tiling(x.shape, model, row_stride=512)
+    assert grid.rows.stride == 512 and grid.rows.count == 3
+    np.testing.assert_allclose(got, _whole_scene(model, x), rtol=2e-5)
+
+
 def test_file_units_amplitude_in_db_out(rng, tmp_path):
     model = _conv_model()
     model.metadata = {"units": "intensity"}
