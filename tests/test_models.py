@@ -64,6 +64,9 @@ def test_receptive_field_bounds_influence(name):
     assert cols.max() - cols.min() + 1 <= rf
     if name.startswith("logcnn"):  # a plain conv stack reaches exactly its receptive field
         assert rows.max() - rows.min() + 1 == rf
+        assert net.size_multiple == 1
+    else:
+        assert net.size_multiple == 2 ** net.levels
 
 
 def test_default_logcnn_is_small():

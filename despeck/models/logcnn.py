@@ -68,6 +68,7 @@ class LogCNN(nn.Module):
         self.depth = depth
         self.width = width
         self.receptive_field = 1 + 2 * (2 + sum(dilations))
+        self.size_multiple = 1  # no pooling: every pixel is processed alike
         self._init_weights()
 
     def _init_weights(self):

@@ -48,6 +48,9 @@ class UNet(nn.Module):
 
     Attributes
     ----------
+    size_multiple : int
+        ``2 ** levels``: inputs are padded to a multiple of it; tiled inference aligns tile
+        origins to it so every tile sees the scene's pooling grid.
     receptive_field : int
         An odd upper bound of the side of the square of input pixels that can influence
         one output pixel (computed layer by layer; the tests check it empirically).
@@ -73,6 +76,8 @@ class UNet(nn.Module):
             self.decoders.append(_block(2 * widths[level], widths[level]))
         self.head = nn.Conv2d(widths[0], 1, 1)
         self.receptive_field = self._receptive_field()
+        # Tiles whose origin is a multiple of this see the same pooling grid as the scene.
+        self.size_multiple = 2 ** self.levels
         self._init_weights()
 
     def _receptive_field(self) -> int:

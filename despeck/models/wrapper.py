@@ -94,6 +94,8 @@ class Despeckler(nn.Module):
     ----------
     receptive_field : int
         Odd side, in pixels, of the input square that can influence one output pixel.
+    size_multiple : int
+        Pooling-grid multiple of the network (1 for plain CNNs, ``2 ** levels`` for U-Nets).
     """
 
     def __init__(self, network: nn.Module, *, looks, log_bias: float = 0.0,
@@ -117,6 +119,11 @@ class Despeckler(nn.Module):
     @property
     def receptive_field(self) -> int:
         return int(self.network.receptive_field)
+
+    @property
+    def size_multiple(self) -> int:
+        """Side multiple of the network's pooling grid (1 for plain CNNs)."""
+        return int(getattr(self.network, "size_multiple", 1))
 
     # ------------------------------------------------------------------ normalisation
 
