@@ -51,6 +51,9 @@ __all__ = [
 # cores busy, small enough that a 64-channel network's activations stay a few hundred MB.
 _BATCH_PIXELS = 1 << 20
 
+# Below this many pixels a timing of the two memory formats costs more than it can save.
+_TRIAL_MIN_PIXELS = 4_000_000
+
 # Upper bound of the scene sample used for the log offset (same as the file reader's).
 _SAMPLE_PIXELS = 1_000_000
 
@@ -231,17 +234,19 @@ def _torch_settings(threads):
 class _TileRunner:
     """Runs batches of tiles through the model with the chosen speed settings.
 
-    When ``channels_last`` is None the first four batches decide it: one warm-up and
-    one timed batch in each memory format (their results are used, nothing is wasted),
-    then the faster format is kept.
+    When ``channels_last`` is None and the scene is large enough for it to matter, the
+    first call times both memory formats on a crop of at most 256 x 256 pixels of its
+    first tile (a warm-up and a timed run each) and keeps the faster one; small scenes
+    keep the default (contiguous) format.
     """
 
-    def __init__(self, model, *, log_offset, bf16, channels_last):
+    def __init__(self, model, *, log_offset, bf16, channels_last, total_pixels=None):
         self.model = model
         self.log_offset = log_offset
         self.bf16 = bf16
+        if channels_last is None and total_pixels is not None and total_pixels < _TRIAL_MIN_PIXELS:
+            channels_last = False
         self.channels_last = channels_last
-        self._trial = [] if channels_last is None else None
         self._converted = False
 
     def _set_format(self, cl):
@@ -253,19 +258,23 @@ class _TileRunner:
         if self._converted:
             self.model.to(memory_format=torch.contiguous_format)
 
-    def __call__(self, tiles: np.ndarray, valid: np.ndarray) -> np.ndarray:
-        if self._trial is not None:
-            cl = len(self._trial) % 2 == 1
+    def _choose_format(self, tiles, valid):
+        h, w = min(256, tiles.shape[1]), min(256, tiles.shape[2])
+        crop, crop_ok = np.ascontiguousarray(tiles[:1, :h, :w]), np.ascontiguousarray(valid[:1, :h, :w])
+        seconds = {}
+        for cl in (False, True, False, True):  # the second round, warm, is the one kept
             self._set_format(cl)
             start = time.perf_counter()
-            out = self._forward(tiles, valid, cl)
-            self._trial.append((cl, time.perf_counter() - start, tiles.shape[0]))
-            if len(self._trial) == 4:
-                timed = {cl: t / n for cl, t, n in self._trial[2:]}
-                self.channels_last = timed[True] < timed[False]
-                self._set_format(self.channels_last)
-                self._trial = None
-            return out
+            self._forward(crop, crop_ok, cl)
+            seconds[cl] = time.perf_counter() - start
+        self.channels_last = seconds[True] < seconds[False]
+        self._set_format(self.channels_last)
+
+    def __call__(self, tiles: np.ndarray, valid: np.ndarray) -> np.ndarray:
+        if self.channels_last is None:
+            self._choose_format(tiles, valid)
+        elif self.channels_last and not self._converted:
+            self._set_format(True)
         return self._forward(tiles, valid, self.channels_last)
 
     def _forward(self, tiles, valid, cl):
@@ -416,7 +425,8 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         Scene normalisation constant; default ``model.scene_log_offset`` of a decimated
         sample (at most one million) of the valid pixels.
     channels_last : bool, optional
-        Force the memory format; default: time both on the first tiles, keep the faster.
+        Force the memory format; default: on scenes of 4 megapixels or more, time both
+        on a crop of the first tile and keep the faster, else contiguous.
     progress : bool
         Show a progress bar (MP/s, time left).
 
@@ -462,7 +472,8 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         result[r0:r1] = np.where(est_valid, estimate, x[r0:r1])
 
     bar = _make_bar(x.size, "despeckle", progress)
-    runner = _TileRunner(model, log_offset=log_offset, bf16=use_bf16, channels_last=channels_last)
+    runner = _TileRunner(model, log_offset=log_offset, bf16=use_bf16, channels_last=channels_last,
+                         total_pixels=x.size)
     was_training = model.training
     model.eval()
     try:
@@ -651,7 +662,8 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                 with _torch_settings(threads):
                     for band in range(1, reader.band_count + 1):
                         offset = _scene_offset(model, reader.sample_intensity(_SAMPLE_PIXELS, band=band))
-                        runner = _TileRunner(model, log_offset=offset, bf16=use_bf16, channels_last=channels_last)
+                        runner = _TileRunner(model, log_offset=offset, bf16=use_bf16, channels_last=channels_last,
+                                             total_pixels=reader.width * reader.height)
 
                         def read_rows(r0, r1, band=band):
                             return reader.read(Window(0, r0, reader.width, r1 - r0), band=band)
