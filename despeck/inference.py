@@ -305,14 +305,26 @@ def _read_plan(rows_axis, chunk_rows):
     return keep, upto
 
 
+def _shift_rows_up(array, by, count):
+    """Move rows ``by:by + count`` to ``0:count`` in place, without a full-size temporary.
+
+    Copies go in blocks of at most ``by`` rows, so source and destination of each copy
+    never overlap (numpy would otherwise make a temporary copy of the whole range).
+    """
+    for start in range(0, count, by):
+        n = min(by, count - start)
+        array[start : start + n] = array[start + by : start + by + n]
+
+
 def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_bar, chunk_rows=1):
     """Run every tile of ``grid`` through ``runner`` and emit finished rows in order.
 
     ``read_rows(r0, r1) -> (intensity, valid)`` returns scene rows ``[r0, r1)``, full width;
     ``emit_rows(r0, r1, estimate, valid)`` receives finished rows (``estimate`` is only
-    meaningful where ``valid``; both are views into buffers that are reused afterwards). Input rows are kept in a buffer that never holds more
-    than one tile height plus one read chunk; the blend accumulator holds one tile
-    height. Neither depends on the number of scene rows.
+    meaningful where ``valid``; both are views into buffers reused afterwards). Input
+    rows are kept in a buffer that never holds more than one tile height plus one read
+    chunk; the blend accumulator holds one tile height. Neither depends on the number
+    of scene rows.
     """
     rows, cols = grid.rows, grid.cols
     width = grid.shape[1]
@@ -334,8 +346,8 @@ def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_b
         drop = keep[i] - b0
         if drop > 0:
             held = b1 - keep[i]
-            buf[:held] = buf[drop : drop + held]
-            buf_valid[:held] = buf_valid[drop : drop + held]
+            _shift_rows_up(buf, drop, held)
+            _shift_rows_up(buf_valid, drop, held)
             b0 = keep[i]
         while b1 < upto[i]:
             r1 = min(upto[i], b1 + chunk_rows)
@@ -363,7 +375,7 @@ def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_b
             if progress_bar is not None:
                 progress_bar.update((finished - done) * width / 1e6)
             shift = finished - a0
-            acc[: rows.tile - shift] = acc[shift:].copy()
+            _shift_rows_up(acc, shift, rows.tile - shift)
             acc[rows.tile - shift :] = 0
             a0, done = finished, finished
 
