@@ -624,7 +624,12 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
         Units of the output; default the input's (intensity for complex input).
     overwrite : bool
         Replace an existing output (an input is never overwritten).
-    tile, overlap, batch_size, threads, bf16, channels_last, progress
+    tile : int, optional
+        Tiles hold at most ``tile * tile`` pixels. When ``tile`` allows, a row of tiles
+        advances by exactly one row of the output's blocks (512 rows), so each row of
+        tiles completes whole blocks and the buffers stay short and wide; the tiles are
+        then wider than tall.
+    overlap, batch_size, threads, bf16, channels_last, progress
         As for :func:`despeckle_array`.
 
     Returns

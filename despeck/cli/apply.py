@@ -41,7 +41,7 @@ def add_arguments(parser):
     parser.add_argument("--out-units", choices=("intensity", "amplitude", "db"),
                         help="units of the outputs (default: the input's)")
     parser.add_argument("--tile", type=int, metavar="N",
-                        help="largest tile side in pixels (default: from the model's receptive field)")
+                        help="tile size: at most N x N pixels per tile (default: from the model's receptive field)")
     parser.add_argument("--overlap", type=int, metavar="N",
                         help="pixels shared by neighbouring tiles (at least the receptive field minus one)")
     parser.add_argument("--threads", type=int, metavar="N", help="CPU threads (default: all cores)")
@@ -142,10 +142,6 @@ def run(args) -> int:
     if args.threads is not None and args.threads < 1:
         raise InputError(f"--threads must be at least 1, got {args.threads}")
     model = load_model(args.model)
-    # Check the tile options once, before any file is touched.
-    side = 2 * max(model.receptive_field, args.tile or 1)
-    resolve_tiling((side, side), model, tile=args.tile, overlap=args.overlap)
-
     shown = set()
 
     def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
@@ -161,6 +157,9 @@ def run(args) -> int:
         with warnings.catch_warnings():
             warnings.simplefilter("always")
             warnings.showwarning = show
+            # Check the tile options once, before any file is touched.
+            side = 2 * max(model.receptive_field, args.tile or 1)
+            resolve_tiling((side, side), model, tile=args.tile, overlap=args.overlap)
             done, skipped, failed = _run_all(args, inputs, outputs, model)
     finally:
         signal.signal(signal.SIGTERM, previous)
