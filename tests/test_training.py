@@ -323,7 +323,11 @@ def test_killed_run_resumes_to_the_same_result(tiny_run, references, tmp_path):
     a, b = _epoch_rows(tiny_run / "metrics.csv"), _epoch_rows(out / "metrics.csv")
     assert [r["step"] for r in a] == [r["step"] for r in b]  # rows after the kill were not kept twice
     assert [float(r["val_loss"]) for r in b] == pytest.approx([float(r["val_loss"]) for r in a], rel=1e-5)
-    # Starting again without --resume would mix two runs: refused.
+    # Starting again without --resume would mix two runs, resuming with other settings
+    # would not reproduce one: both refused.
     with pytest.raises(ConfigError, match="already holds a training run"):
         train(config, progress=False)
+    changed = load_config(TINY, _overrides(references, out) + ["loss.name=gamma_nll"])
+    with pytest.raises(ConfigError, match="loss.name: 'gamma_nll' differs from 'mse_log'"):
+        train(changed, resume=True, progress=False)
     shutil.rmtree(out)

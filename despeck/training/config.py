@@ -297,6 +297,8 @@ def check_config(config: TrainConfig) -> None:
     for key in ("band", "patch_size", "batch_size", "patches_per_epoch", "val_patches", "synthetic_size", "max_pixels"):
         if getattr(d, key) < 1:
             _fail(f"data.{key}", f"must be a positive integer, got {getattr(d, key)}")
+    if d.patches_per_epoch < d.batch_size:
+        _fail("data.patches_per_epoch", f"must be at least data.batch_size ({d.batch_size}), got {d.patches_per_epoch}")
     if d.patch_size < 8:
         _fail("data.patch_size", f"must be at least 8 pixels, got {d.patch_size}")
     if d.synthetic_scenes < 0:

@@ -157,15 +157,15 @@ def psnr_db(clean, estimate, valid, data_range_db) -> float:
 def ssim_db(clean, estimate, valid, data_range_db) -> float:
     """SSIM between ``10 log10`` images (:func:`skimage.metrics.structural_similarity`).
 
-    Invalid pixels take the clean value in both images so they add no error.
+    Invalid pixels take the same value (the clean valid mean) in both images so they add no error.
     """
     from skimage.metrics import structural_similarity
 
     valid = np.asarray(valid, dtype=bool)
     a = _db(clean)
-    b = np.where(valid, _db(estimate), a)
-    a = np.where(valid, a, a[valid].mean() if valid.any() else 0.0)
-    b = np.where(valid, b, a)
+    fill = a[valid].mean() if valid.any() else 0.0
+    a = np.where(valid, a, fill)
+    b = np.where(valid, _db(estimate), fill)
     side = min(a.shape)
     win = min(7, side if side % 2 else side - 1)
     if win < 3:

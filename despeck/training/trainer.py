@@ -200,6 +200,45 @@ def read_checkpoint(path) -> dict:
     return ckpt
 
 
+# Settings a resumed run may change: they do not alter what is computed.
+_RESUMABLE_CHANGES = {"budget", "trainer.progress", "trainer.threads", "trainer.log_every_n_steps",
+                      "data.num_workers", "output"}
+
+
+def _flatten(d, prefix=""):
+    flat = {}
+    for k, v in d.items():
+        key = f"{prefix}{k}"
+        if isinstance(v, dict) and k not in ("kwargs",):
+            flat.update(_flatten(v, key + "."))
+        else:
+            flat[key] = v
+    return flat
+
+
+def _check_same_run(config: TrainConfig, saved_path: Path) -> None:
+    """Refuse to resume with settings that would make the result differ from an uninterrupted run."""
+    import yaml
+
+    from .config import config_from_dict
+
+    if not saved_path.is_file():
+        return
+    try:
+        saved = config_to_dict(config_from_dict(yaml.safe_load(saved_path.read_text(encoding="utf-8"))))
+    except (ConfigError, yaml.YAMLError, OSError):
+        raise ConfigError(f"cannot resume: the saved run configuration {saved_path} is unreadable") from None
+    old, new = _flatten(saved), _flatten(config_to_dict(config))
+    for key in sorted(set(old) | set(new)):
+        if key in _RESUMABLE_CHANGES or key.split(".")[0] in _RESUMABLE_CHANGES:
+            continue
+        if old.get(key) != new.get(key):
+            raise ConfigError(
+                f"config key {key}: {new.get(key)!r} differs from {old.get(key)!r} in the run being resumed "
+                f"({saved_path}); resume with the same settings or start a new output.dir"
+            )
+
+
 def _metrics_rows_until(path: Path, step: int):
     """Header and rows of a metrics CSV logged at or before ``step`` (None if there is no file).
 
@@ -267,6 +306,8 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     ckpt_dir = out / "checkpoints"
     last = ckpt_dir / "last.ckpt"
     resume_ckpt = read_checkpoint(last) if resume else None
+    if resume:
+        _check_same_run(config, out / "config.yaml")
 
     if config.trainer.precision == "bf16" and not bf16_supported():
         raise ConfigError("config key trainer.precision: bf16 needs a CPU with native bfloat16 "
@@ -319,6 +360,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
 
     lightning_log = logging.getLogger("lightning.pytorch")
     previous_level = lightning_log.level
+    previous_deterministic = torch.are_deterministic_algorithms_enabled()
     if not progress:
         lightning_log.setLevel(logging.WARNING)  # quiet: no device notes or "fit stopped"
     try:
@@ -338,13 +380,17 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
                 default_root_dir=str(out),
                 enable_progress_bar=progress, enable_model_summary=progress,
                 num_sanity_val_steps=0, deterministic=True, benchmark=False,
-                log_every_n_steps=config.trainer.log_every_n_steps,
+                log_every_n_steps=min(config.trainer.log_every_n_steps,
+                                      config.data.patches_per_epoch // config.data.batch_size),
                 gradient_clip_val=config.optim.grad_clip or None,
             )
             trainer.fit(module, train_dataloaders=data.train_dataloader(), val_dataloaders=data.val_dataloader(),
                         ckpt_path=str(last) if resume else None)
     finally:
         lightning_log.setLevel(previous_level)
+        # Lightning switched on deterministic algorithms for the whole process; give the
+        # caller back its own setting.
+        torch.use_deterministic_algorithms(previous_deterministic)
 
     if trainer.interrupted:  # pragma: no cover - Lightning turns Ctrl-C into an exit
         raise KeyboardInterrupt
