@@ -20,7 +20,6 @@ from __future__ import annotations
 import math
 import os
 import pathlib
-import tempfile
 import warnings
 from dataclasses import dataclass, field
 
@@ -30,6 +29,7 @@ from rasterio.enums import MaskFlags
 from rasterio.errors import RasterioError, RasterioIOError
 from rasterio.windows import Window
 
+from .atomic import publish, sibling_temp
 from .errors import InputError, RasterError
 
 __all__ = [
@@ -772,9 +772,7 @@ class SceneWriter:
         if transform is not None:
             profile["transform"] = transform
         self._profile = profile
-        fd, tmp = tempfile.mkstemp(prefix=f".{self.path.name}.", suffix=".tmp", dir=self.path.parent)
-        os.close(fd)
-        self._tmp = pathlib.Path(tmp)
+        self._tmp = sibling_temp(self.path)
         try:
             with warnings.catch_warnings():
                 # an ungeoreferenced source gives an ungeoreferenced output; that is not news
@@ -846,7 +844,7 @@ class SceneWriter:
         try:
             self._ds.close()
             if commit:
-                os.replace(self._tmp, self.path)
+                publish(self._tmp, self.path)
         except (RasterioError, OSError) as exc:
             self._tmp.unlink(missing_ok=True)
             raise RasterError(f"{self.path}: cannot finish output: {exc}") from None

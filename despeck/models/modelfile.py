@@ -22,11 +22,11 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 from pathlib import Path
 
 import torch
 
+from ..atomic import publish, sibling_temp
 from ..errors import DespeckError, InputError, ModelFileError
 from .registry import create_model, list_models
 from .wrapper import Despeckler
@@ -108,13 +108,12 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
     if not folder.is_dir():
         raise ModelFileError(f"cannot write model file {path}: folder {folder} does not exist")
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
+        tmp = sibling_temp(path)
     except OSError as exc:
         raise ModelFileError(f"cannot write model file {path}: {exc.strerror or exc}") from None
-    os.close(fd)
     try:
-        save_file(tensors, tmp, metadata={_HEADER_KEY: json.dumps(header, sort_keys=True)})
-        os.replace(tmp, path)
+        save_file(tensors, str(tmp), metadata={_HEADER_KEY: json.dumps(header, sort_keys=True)})
+        publish(tmp, path)
     except OSError as exc:
         raise ModelFileError(f"cannot write model file {path}: {exc.strerror or exc}") from None
     finally:
