@@ -19,6 +19,10 @@ Example
     loss: {name: mse_log, target: clean}
     budget: {max_time: 8h}
     output: {dir: runs/first}
+
+Without clean references, train on pairs of real independent looks instead: two dates
+of the same area (``data.pairs``) or sub-looks of single-look complex scenes
+(``data.slc``); see :mod:`despeck.training.pairs` and ``configs/pairs.yaml``.
 """
 
 from __future__ import annotations
@@ -59,6 +63,7 @@ TARGETS = ("clean", "noisy")
 SCHEDULES = ("plateau", "cosine", "constant")
 PRECISIONS = ("32", "bf16")
 TAPERS = ("hamming", "hann", "none")
+SPLIT_AXES = ("azimuth", "range")
 
 
 @dataclass
@@ -72,6 +77,20 @@ class DataConfig:
     so a run needs no files at all. Validation uses ``validation`` files if given, else
     the bottom ``val_fraction`` of the rows of every training raster (training patches
     never overlap that strip).
+
+    **Pairs of real looks** (no clean reference; :mod:`despeck.training.pairs`):
+    ``pairs`` lists ``[date1, date2]`` file pairs, co-registered on the same grid; one
+    date is the input and the other the target (swapped at random per patch). Pixels
+    whose two dates' ``change_window`` x ``change_window`` local means differ more than
+    speckle explains (a two-sided F test at false-alarm rate ``change_false_alarm``) are
+    left out of the loss. ``slc`` lists single-look complex files (files, folders, globs);
+    each is split once at load time into ``sublooks`` sub-looks along ``split_axis``
+    (``azimuth``: rows, ``range``: columns), after dividing out the processor's spectral
+    ``slc_taper`` (``hamming``, ``hann``, ``none`` or null) over the occupied band
+    (``1 / slc_oversampling`` of the sampling rate around ``slc_centre`` cycles per
+    pixel). Two different sub-looks make each input/target pair. Pairs and sub-looks
+    can be combined, not mixed with clean references. Validation uses the bottom
+    ``val_fraction`` of every pair's rows.
 
     ``num_workers`` is 0 by default: patches are made in the training process. On a
     2-core machine the convolutions already occupy both cores through torch's threads,
@@ -96,6 +115,20 @@ class DataConfig:
     offset_jitter: float = 0.3
     num_workers: int = 0
     max_pixels: int = 200_000_000
+    pairs: list[list[str]] = field(default_factory=list)
+    change_window: int = 7
+    change_false_alarm: float = 0.01
+    slc: list[str] = field(default_factory=list)
+    sublooks: int = 2
+    split_axis: str = "azimuth"
+    slc_oversampling: float = 1.0
+    slc_taper: Optional[str] = None
+    slc_centre: float = 0.0
+
+    @property
+    def self_supervised(self) -> bool:
+        """True when training on pairs of real looks (``pairs`` or ``slc``) instead of clean references."""
+        return bool(self.pairs or self.slc)
 
 
 @dataclass
@@ -111,13 +144,18 @@ class ModelConfig:
 class SpeckleConfig:
     """Simulated speckle: ``looks`` is a number or a ``[min, max]`` range (uniform per patch).
 
+    With ``data.pairs`` or ``data.slc`` nothing is simulated: ``looks`` is then the
+    number of looks of each real date or sub-look (the target's looks set the
+    ``ln L - psi(L)`` correction of ``mse_log``), or ``auto`` to estimate it per file
+    with :func:`despeck.speckle.estimate_looks`; the estimates are recorded either way.
+
     ``correlated_fraction`` of the patches get spatially correlated speckle
     (:func:`despeck.speckle.simulate_correlated_intensity`, whole looks only) with the
     given ``oversampling`` and spectral ``taper``. ``val_looks`` is the number of looks
     of the validation speckle (default: the smallest training value).
     """
 
-    looks: Union[float, list[float]] = 1.0
+    looks: Union[float, list[float], str] = 1.0
     val_looks: Optional[float] = None
     correlated_fraction: float = 0.0
     oversampling: float = 1.25
@@ -132,7 +170,7 @@ class LossConfig:
     network is still close to the identity, so it converges more slowly on short budgets.
 
     ``target`` is ``clean`` (the reference) or ``noisy`` (an independent speckled view of
-    it, Noise2Noise-style). ``tv_weight`` adds a total-variation penalty on the log estimate.
+    it, Noise2Noise-style; the only choice with ``data.pairs`` / ``data.slc``). ``tv_weight`` adds a total-variation penalty on the log estimate.
     """
 
     name: str = "mse_log"
@@ -302,6 +340,53 @@ def _fail(key, message):
     raise ConfigError(f"config key {key}: {message}")
 
 
+def _check_pairs(config: TrainConfig) -> None:
+    """Checks of the self-supervised keys (data.pairs, data.slc) and what they exclude."""
+    d = config.data
+    for i, pair in enumerate(d.pairs, 1):
+        if len(pair) != 2:
+            _fail("data.pairs", f"pair {i} must be two files [date1, date2], got {pair!r}; "
+                                "write pairs: [[date1.tif, date2.tif], ...]")
+        if Path(pair[0]).expanduser() == Path(pair[1]).expanduser():
+            _fail("data.pairs", f"pair {i} lists {pair[0]} twice; the two dates must be different acquisitions")
+    if d.change_window < 3 or d.change_window % 2 == 0:
+        _fail("data.change_window", f"must be an odd number of pixels >= 3, got {d.change_window}")
+    if not 0 < d.change_false_alarm < 0.5:
+        _fail("data.change_false_alarm", f"must be between 0 and 0.5, got {d.change_false_alarm}")
+    if d.sublooks < 2:
+        _fail("data.sublooks", f"must be at least 2 (one sub-look as input, another as target), got {d.sublooks}")
+    if d.split_axis not in SPLIT_AXES:
+        _fail("data.split_axis", f"must be one of {', '.join(SPLIT_AXES)}, got {d.split_axis!r}")
+    if d.slc_oversampling < 1:
+        _fail("data.slc_oversampling", f"must be >= 1 (sampling rate over bandwidth), got {d.slc_oversampling}")
+    if d.slc_taper is not None and d.slc_taper not in TAPERS:
+        _fail("data.slc_taper", f"must be one of {', '.join(TAPERS)} or null, got {d.slc_taper!r}")
+    if not -0.5 <= d.slc_centre <= 0.5:
+        _fail("data.slc_centre", f"must be in [-0.5, 0.5] cycles per pixel, got {d.slc_centre}")
+    if not d.self_supervised:
+        return
+    which = "data.pairs" if d.pairs else "data.slc"
+    if d.train or d.synthetic_scenes:
+        key = "data.train" if d.train else "data.synthetic_scenes"
+        _fail(key, f"clean references cannot be mixed with {which} in one run; train on one or the other")
+    if d.validation:
+        _fail("data.validation", f"with {which} validation uses the bottom data.val_fraction of every pair; "
+                                 "remove data.validation")
+    if d.units is not None and d.slc and d.units != "complex":
+        _fail("data.units", f"data.slc needs complex samples; units {d.units!r} would apply to every file")
+    s = config.speckle
+    if isinstance(s.looks, list):
+        _fail("speckle.looks", f"with {which} the looks are those of the real data: a number or auto, "
+                               f"not a range {s.looks!r}")
+    if s.val_looks is not None:
+        _fail("speckle.val_looks", f"is not used with {which} (validation uses held-out real data); remove it")
+    if s.correlated_fraction:
+        _fail("speckle.correlated_fraction", f"nothing is simulated with {which}; remove it")
+    if config.loss.target != "noisy":
+        _fail("loss.target", f"{which} give no clean reference; set loss.target: noisy "
+                             "(the other date or sub-look is the target)")
+
+
 def check_config(config: TrainConfig) -> None:
     """Check values and combinations the types alone do not; raise ConfigError naming the key."""
     d = config.data
@@ -316,8 +401,10 @@ def check_config(config: TrainConfig) -> None:
         _fail("data.synthetic_scenes", f"must be >= 0, got {d.synthetic_scenes}")
     if d.synthetic_scenes and d.synthetic_size < max(64, d.patch_size):
         _fail("data.synthetic_size", f"must be at least max(64, data.patch_size) = {max(64, d.patch_size)}")
-    if not d.train and not d.synthetic_scenes:
-        _fail("data.train", "no training data: list clean rasters (files, folders, globs) or set data.synthetic_scenes")
+    if not d.train and not d.synthetic_scenes and not d.self_supervised:
+        _fail("data.train", "no training data: list clean rasters (files, folders, globs), set data.synthetic_scenes, "
+                            "or list data.pairs / data.slc")
+    _check_pairs(config)
     if not 0 < d.val_fraction < 1:
         _fail("data.val_fraction", f"must be between 0 and 1 (exclusive), got {d.val_fraction}")
     if not 0 < d.min_valid_fraction <= 1:
@@ -337,8 +424,14 @@ def check_config(config: TrainConfig) -> None:
         _fail("model.name", f"unknown model {config.model.name!r}; choose one of: {', '.join(list_models())}")
 
     s = config.speckle
-    looks = s.looks if isinstance(s.looks, list) else [s.looks]
-    if len(looks) not in (1, 2):
+    if isinstance(s.looks, str):
+        if s.looks != "auto":
+            _fail("speckle.looks", f"must be a number, a [min, max] range or auto, got {s.looks!r}")
+        if not d.self_supervised:
+            _fail("speckle.looks", "auto (estimate from the data) needs data.pairs or data.slc; "
+                                   "simulated speckle needs a number or a [min, max] range")
+    looks = [] if isinstance(s.looks, str) else s.looks if isinstance(s.looks, list) else [s.looks]
+    if len(looks) not in (1, 2) and not isinstance(s.looks, str):
         _fail("speckle.looks", f"must be a number or a [min, max] range, got {s.looks!r}")
     if any(v <= 0 for v in looks):
         _fail("speckle.looks", f"must be positive (> 0), got {s.looks!r}")
@@ -463,8 +556,8 @@ def apply_overrides(values: dict, overrides) -> dict:
 def load_config(path, overrides=()) -> TrainConfig:
     """Read a YAML training config, apply ``--set`` overrides and check everything.
 
-    Relative paths in ``data.train`` and ``data.validation`` are taken relative to the
-    config file's folder; ``output.dir`` relative to the current directory.
+    Relative paths in ``data.train``, ``data.validation``, ``data.pairs`` and
+    ``data.slc`` are taken relative to the config file's folder; ``output.dir`` relative to the current directory.
     """
     path = Path(path)
     if not path.is_file():
@@ -479,12 +572,17 @@ def load_config(path, overrides=()) -> TrainConfig:
     base = path.resolve().parent
     data = dict((values or {}).get("data") or {}) if isinstance((values or {}).get("data"), dict) else None
     if data is not None:
-        for key in ("train", "validation"):
+        def resolve(p):
+            return str(base / p) if isinstance(p, str) and not Path(p).expanduser().is_absolute() else p
+
+        for key in ("train", "validation", "slc"):
             if isinstance(data.get(key), str):
                 data[key] = [data[key]]
             if isinstance(data.get(key), list):
-                data[key] = [str(base / p) if isinstance(p, str) and not Path(p).expanduser().is_absolute() else p
-                             for p in data[key]]
+                data[key] = [resolve(p) for p in data[key]]
+        if isinstance(data.get("pairs"), list):
+            data["pairs"] = [[resolve(p) for p in pair] if isinstance(pair, list) else resolve(pair)
+                             for pair in data["pairs"]]
         values = {**values, "data": data}
     values = apply_overrides(values, overrides)
     return config_from_dict(values)

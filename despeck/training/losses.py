@@ -15,6 +15,11 @@ exported model needs; see :mod:`despeck.models.wrapper`):
   target gets ``ln L - psi(L)`` added per sample (exact also when L varies per sample).
 * optional ``tv_weight`` times the mean absolute log difference between neighbours.
 
+Every loss averages over a per-pixel ``mask``: booleans (nodata left out) or float
+weights (0 leaves a pixel out, e.g. a pixel that changed between the two dates of a
+pair; see :mod:`despeck.training.pairs`). A batch with a ``weight`` entry uses it,
+otherwise its ``valid`` mask.
+
 Validation PSNR and SSIM are computed on ``10 log10`` intensities (the dB domain) with
 scikit-image and a fixed ``data_range`` in dB.
 
@@ -54,29 +59,32 @@ _MAX_LOG_GAP = 30.0
 
 
 def _masked_mean(values, mask):
+    """Mean of ``values`` weighted by ``mask`` (bool or non-negative float weights)."""
     if mask is None:
         return values.mean()
     m = mask.to(values.dtype)
-    return (values * m).sum() / m.sum().clamp(min=1.0)
+    # where() rather than a product: a left-out pixel may hold a huge value (a zero target).
+    return torch.where(m > 0, values * m, torch.zeros_like(values)).sum() / m.sum().clamp(min=1.0)
 
 
 def gamma_nll(pred_log, target_log, mask=None):
-    """Gamma deviance ``exp(d) - d - 1``, ``d = target_log - pred_log``, averaged over ``mask``."""
+    """Gamma deviance ``exp(d) - d - 1``, ``d = target_log - pred_log``, averaged over ``mask`` (bool or weights)."""
     d = (target_log - pred_log).clamp(max=_MAX_LOG_GAP)
     return _masked_mean(torch.expm1(d) - d, mask)
 
 
 def log_mse(pred_log, target_log, mask=None):
-    """Mean squared log difference (nepers squared) over ``mask``."""
+    """Mean squared log difference (nepers squared) over ``mask`` (bool or weights)."""
     return _masked_mean((pred_log - target_log) ** 2, mask)
 
 
 def total_variation(pred_log, mask=None):
-    """Mean absolute difference between horizontal and vertical neighbours (both valid)."""
+    """Mean absolute difference between horizontal and vertical neighbours (both in ``mask``)."""
     dx = (pred_log[..., :, 1:] - pred_log[..., :, :-1]).abs()
     dy = (pred_log[..., 1:, :] - pred_log[..., :-1, :]).abs()
     if mask is None:
         return dx.mean() + dy.mean()
+    mask = mask > 0
     mx = mask[..., :, 1:] & mask[..., :, :-1]
     my = mask[..., 1:, :] & mask[..., :-1, :]
     return _masked_mean(dx, mx) + _masked_mean(dy, my)
@@ -113,7 +121,8 @@ class DespeckleLoss(nn.Module):
         self._fn = gamma_nll if name == "gamma_nll" else log_mse
 
     def forward(self, pred_log, batch):
-        mask = batch["valid"]
+        # Per-pixel weights where the data give them (pairs: 0 on changed pixels).
+        mask = batch["weight"] if "weight" in batch else batch["valid"]
         t = log_target(batch, self.name, self.target)
         loss = self._fn(pred_log, t, mask)
         if self.tv_weight:
@@ -127,7 +136,8 @@ class DespeckleLoss(nn.Module):
             "tv_weight": self.tv_weight,
             "bias_correction": (
                 "none needed (the estimate is the conditional mean intensity)" if self.name == "gamma_nll"
-                else "ln L - psi(L) added to the noisy log target per sample" if self.target == "noisy"
+                else "ln L - psi(L) added to the noisy log target per sample (L: the target's looks)"
+                if self.target == "noisy"
                 else "learned by the network (geometric mean unbiased)"
             ) + ("; exported log_bias = -ln(mean output / R) on constant validation patches, so the "
                  "arithmetic mean is kept too" if self.name == "mse_log" else ""),

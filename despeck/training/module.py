@@ -5,7 +5,10 @@ normalisation and bias correction in :class:`despeck.models.Despeckler`, the los
 :mod:`despeck.training.losses`, the data in :mod:`despeck.training.data`. This module
 only wires them into Lightning's steps and logs the validation measures: loss, PSNR and
 SSIM in the dB domain, and the ENL and radiometric bias of the output on a homogeneous
-validation patch.
+validation patch. Training on pairs of real looks has no clean reference: then only the
+loss, the ENL of the output on homogeneous blocks of the held-out strips and the mean
+ratio input / output are logged (no PSNR or SSIM), as the validation set measures them
+(:class:`despeck.training.pairs.PairValidationSet`).
 """
 
 from __future__ import annotations
@@ -41,8 +44,9 @@ class DespeckleModule(pl.LightningModule):
     loss, optim : LossConfig, OptimConfig
     max_epochs : int, optional
         Length of a cosine schedule.
-    validation : ValidationSet, optional
-        Supplies the dB data range, the homogeneous patch and the noisy input's PSNR.
+    validation : ValidationSet or PairValidationSet, optional
+        Supplies the dB data range, the homogeneous patch and the noisy input's PSNR;
+        a set whose ``has_reference`` is False measures the output itself (``measure``).
     """
 
     def __init__(self, network, *, looks, log_scale, loss: LossConfig, optim: OptimConfig,
@@ -81,12 +85,19 @@ class DespeckleModule(pl.LightningModule):
         pred = self.predict_log(batch)
         loss = self.loss_fn(pred, batch)
         self.log("val_loss", loss, on_epoch=True, prog_bar=True, batch_size=batch["noisy"].shape[0])
-        self._val_batches.append((batch["clean"].cpu(), torch.exp(pred).cpu(), batch["valid"].cpu()))
+        if "clean" in batch:
+            self._val_batches.append((batch["clean"].cpu(), torch.exp(pred).cpu(), batch["valid"].cpu()))
 
     def on_validation_epoch_start(self):
         self._val_batches = []
 
     def on_validation_epoch_end(self):
+        if self.validation is not None and not getattr(self.validation, "has_reference", True):
+            metrics = self.validation.measure(self.despeckler, self.loss_fn.name)
+            for k, v in metrics.items():
+                self.log(k, v, prog_bar=k == "val_enl")
+            self.val_metrics = {**metrics, "epoch": int(self.current_epoch), "step": int(self.global_step)}
+            return
         if self.validation is None or not self._val_batches:
             return
         rng_db = self.validation.data_range_db

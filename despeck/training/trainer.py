@@ -13,7 +13,9 @@ rasters, checkpoint to resume from) before any training starts, sets up the CPU
   checkpoint, so a resumed run honours the original budget;
 * optional early stopping, a tqdm progress bar, and a CSV log ``metrics.csv``.
 
-At the end the best weights are exported with :func:`despeck.models.save_model_file`.
+At the end the best weights are exported with :func:`despeck.models.save_model_file`;
+its ``training`` metadata says how the model was trained (``mode``: simulated speckle on
+clean references, or ``pairs`` / ``sublooks`` of real data with their files and looks).
 """
 
 from __future__ import annotations
@@ -328,10 +330,17 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
                 f"but the config asks for {network.architecture} with {network.architecture_kwargs}"
             )
 
-    data = TrainingData(config)
+    if config.data.self_supervised:
+        from .pairs import PairTrainingData
+
+        data = PairTrainingData(config)
+        looks, mode = data.model_looks, data.mode
+    else:
+        data = TrainingData(config)
+        looks, mode = config.speckle.looks, "simulated speckle on clean references"
 
     module = DespeckleModule(
-        network, looks=config.speckle.looks, log_scale=config.model.log_scale, loss=config.loss,
+        network, looks=looks, log_scale=config.model.log_scale, loss=config.loss,
         optim=config.optim, max_epochs=config.budget.max_epochs, validation=data.val_set,
     )
     checkpoint = ModelCheckpoint(
@@ -401,7 +410,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     prefix = "despeckler.network."
     network.load_state_dict({k[len(prefix):]: v for k, v in best["state_dict"].items() if k.startswith(prefix)})
     best_metrics = dict(best["despeck"].get("metrics") or {})
-    model = Despeckler(network, looks=config.speckle.looks, log_bias=float(best_metrics.get("val_log_bias", 0.0)),
+    model = Despeckler(network, looks=looks, log_bias=float(best_metrics.get("val_log_bias", 0.0)),
                        log_scale=config.model.log_scale)
     stopped_by = ("time budget" if budget is not None and budget.stopped
                   else "early stopping" if early is not None and early.stopped_epoch
@@ -412,6 +421,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         out / config.output.model_file, model,
         normalisation={**module.loss_fn.describe()},
         training={
+            "mode": mode,
             "data": data.describe(),
             "config": {k: cfg[k] for k in ("model", "speckle", "loss", "optim", "budget")},
             "epochs": int(trainer.current_epoch), "steps": int(trainer.global_step),

@@ -1,0 +1,685 @@
+"""Self-supervised training data: pairs of real, independent looks of the same scene.
+
+Without clean references a network can still learn to despeckle from two looks of
+the same reflectivity whose speckle is independent (Noise2Noise): one look is the
+input, the other the target, and a loss whose minimiser is the target's conditional
+mean (``gamma_nll``, or ``mse_log`` with the ``ln L - psi(L)`` correction for the
+target's looks) learns the reflectivity. Two sources of such pairs are read here:
+
+* **Dates** (``data.pairs``): two co-registered acquisitions on the same grid. Where
+  the ground changed between them the target is not another look of the input, so
+  those pixels are left out of the loss: a two-sided test on the ratio of the dates'
+  local means (:func:`change_mask`).
+* **Sub-looks** (``data.slc``): a single-look complex scene split once at load time
+  into ``K`` sub-looks along azimuth or range (:func:`despeck.speckle.split_sublooks`);
+  two different sub-looks make a pair. The sub-looks have ``K`` times coarser
+  resolution along the split axis than the full scene, so a model trained on them
+  sees a slightly different image than it will be applied to.
+
+Samples are pure functions of ``(seed, epoch, index)`` as in
+:mod:`despeck.training.data`, so resuming reproduces an uninterrupted run. Validation
+uses the bottom ``val_fraction`` of every pair's rows, never drawn for training, and
+reports what can be measured without a reference: the loss on fixed held-out patches,
+the ENL of the output on homogeneous areas found automatically in the strip, and the
+mean of the ratio input / output there (1 for a filter that keeps the mean).
+
+References
+----------
+Lehtinen, J. et al. (2018). Noise2Noise: learning image restoration without clean
+data. ICML 2018, arXiv:1803.04189.
+Touzi, R., Lopes, A., Bousquet, P. (1988). A statistical and geometrical edge detector
+for SAR images. IEEE TGRS 26(6), 764-773 (the ratio of local means; from memory).
+Oliver, C., Quegan, S. (1998). Understanding Synthetic Aperture Radar Images. Artech
+House (ratio change detection between multilook images; sub-look processing; from memory).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+import torch
+from scipy import ndimage, stats
+from torch.utils.data import DataLoader, Dataset
+
+from ..errors import ConfigError, DespeckError, InputError, RasterError
+from ..speckle import enl_intensity, estimate_looks, homogeneous_blocks, split_sublooks
+from .config import TrainConfig
+from .data import EpochSampler, _allowed_positions, _augment, _PositionTable, _worker_init, resolve_raster_paths
+
+__all__ = [
+    "change_mask",
+    "change_thresholds",
+    "PairSource",
+    "PairPatchDataset",
+    "PairValidationSet",
+    "PairTrainingData",
+    "read_date_pair",
+    "read_slc_sublooks",
+]
+
+# A training or validation patch must have at least this fraction of its pixels in the
+# loss (valid on every view and unchanged), so steps are not wasted on changed areas.
+_MIN_KEPT_FRACTION = 0.5
+
+# Homogeneous blocks used per pair for the validation ENL and mean-ratio measures (the
+# most homogeneous first; half calibrate the exported mean, half are measured).
+_MAX_BLOCKS_PER_PAIR = 64
+
+
+# --------------------------------------------------------------------------- change test
+
+def change_thresholds(count, looks_first, looks_second, false_alarm):
+    """Lower and upper bounds of ``mean1 / mean2`` under pure speckle, two-sided at ``false_alarm``.
+
+    Over ``N`` pixels of one reflectivity ``R`` an ``L``-look mean is
+    ``R * Gamma(N L, 1 / (N L))``, i.e. ``R * chi2(2 N L) / (2 N L)``, so the ratio of the
+    two dates' means is ``F(2 N L1, 2 N L2)``-distributed whatever ``R``; the bounds are
+    its ``false_alarm / 2`` and ``1 - false_alarm / 2`` quantiles (``scipy.stats.f``).
+    Exact for spatially uncorrelated speckle.
+
+    Parameters
+    ----------
+    count : int or array_like of int
+        Pixels ``N`` in each local mean.
+    looks_first, looks_second : float
+        Looks of the two dates.
+    false_alarm : float
+        Probability that a pixel of an unchanged pair is flagged, in (0, 1).
+
+    Returns
+    -------
+    low, high : ndarray of float64
+        Same shape as ``count``.
+    """
+    n = np.asarray(count, dtype=np.float64)
+    d1, d2 = 2.0 * n * float(looks_first), 2.0 * n * float(looks_second)
+    half = 0.5 * float(false_alarm)
+    return stats.f.ppf(half, d1, d2), stats.f.isf(half, d1, d2)
+
+
+def change_mask(first, second, valid=None, *, looks_first=1.0, looks_second=None, window=7,
+                false_alarm=0.01, effective_pixels=True, grow=None) -> np.ndarray:
+    """Pixels whose two dates differ more than speckle explains: the ratio-of-means test.
+
+    For every pixel, the means of the two intensity images over the valid pixels of the
+    ``window`` x ``window`` square around it are compared: the pixel is flagged when
+    ``mean1 / mean2`` falls outside the two-sided ``false_alarm`` bounds of its
+    ``F(2 N L1, 2 N L2)`` distribution under pure speckle (:func:`change_thresholds`).
+    The test is the ratio detector of Touzi et al. (1988) applied between dates rather
+    than between half-windows.
+
+    ``N`` is the number of valid pixels in the square when ``effective_pixels`` is
+    False: exact on homogeneous ground with uncorrelated speckle, where a fraction
+    ``false_alarm`` of an unchanged pair is flagged. Over heterogeneous ground (edges,
+    texture, bright points) a mean is dominated by its brightest pixels and varies
+    more, so that law flags such pixels far more often (measured on the bundled sample
+    pair: 15 % of the most heterogeneous unchanged pixels at a stated 1 %) and would
+    keep exactly the structure a network must learn out of its loss. With
+    ``effective_pixels`` (default) ``N`` is replaced by the effective number of
+    pixels of a weighted sum, ``(sum R)^2 / sum R^2`` (the usual moment-matching of a
+    sum of Gamma variables by one Gamma variable; common practice), estimated without
+    bias in its parts from the two dates themselves: ``R`` by their mean and ``R^2``
+    by their product (independent speckle of mean 1), clipped to ``[1, N]``. On
+    homogeneous ground it stays close to ``N`` and the test is then slightly
+    conservative (measured: 0.86 % flagged at a stated 1 %, 4.6 % at 5 %, 1-look);
+    changed ground keeps ``N`` (the estimate exceeds it and is clipped).
+
+    Spatially correlated speckle has fewer independent samples than pixels and is
+    flagged more often, which only leaves more pixels out of a loss. A square
+    straddling a change boundary mixes changed and unchanged pixels, so flagged regions
+    of at least ``window**2`` connected pixels -- larger than the clusters chance
+    produces on an unchanged pair -- are grown by ``grow`` pixels (default
+    ``window // 2``) to cover the changed pixels along their border.
+
+    Parameters
+    ----------
+    first, second : array_like, shape (h, w)
+        Linear intensities of the two dates, co-registered.
+    valid : array_like of bool, optional
+        Pixels valid on both dates; non-positive and non-finite pixels are always invalid.
+    looks_first, looks_second : float
+        Looks of the two dates (``looks_second`` defaults to ``looks_first``).
+    window : int
+        Odd side of the local-mean square.
+    false_alarm : float
+        Two-sided false-alarm probability per pixel, in (0, 1).
+    effective_pixels : bool
+        Use the effective number of pixels (see above) instead of the pixel count.
+    grow : int, optional
+        Pixels by which large flagged regions are grown; 0 gives the bare test.
+
+    Returns
+    -------
+    ndarray of bool, shape (h, w)
+        True where a change is detected (always False on invalid pixels).
+
+    References
+    ----------
+    Touzi, R., Lopes, A., Bousquet, P. (1988). A statistical and geometrical edge
+    detector for SAR images. IEEE TGRS 26(6), 764-773 (ratio of local means and its
+    distribution; from memory).
+    Oliver, C., Quegan, S. (1998). Understanding Synthetic Aperture Radar Images. Artech
+    House (ratio change detection between multilook images; from memory).
+    """
+    a = np.asarray(first, dtype=np.float64)
+    b = np.asarray(second, dtype=np.float64)
+    if a.ndim != 2 or a.shape != b.shape:
+        raise InputError(f"the two dates must be 2-D images of one shape, got {a.shape} and {b.shape}")
+    window = int(window)
+    if window < 1 or window % 2 == 0:
+        raise InputError(f"window must be an odd number of pixels, got {window}")
+    if not 0 < float(false_alarm) < 1:
+        raise InputError(f"false_alarm must lie in (0, 1), got {false_alarm!r}")
+    looks_second = looks_first if looks_second is None else looks_second
+    if not (float(looks_first) > 0 and float(looks_second) > 0):
+        raise InputError(f"looks must be positive, got {looks_first!r} and {looks_second!r}")
+    ok = np.isfinite(a) & np.isfinite(b) & (a > 0) & (b > 0)
+    if valid is not None:
+        valid = np.asarray(valid, dtype=bool)
+        if valid.shape != a.shape:
+            raise InputError(f"valid mask of shape {valid.shape} does not match the images {a.shape}")
+        ok &= valid
+    a, b = np.where(ok, a, 0.0), np.where(ok, b, 0.0)
+    area = window * window
+
+    def box_sum(x):
+        # Constant (zero) padding: border squares just hold fewer pixels, each counted once.
+        return ndimage.uniform_filter(x, window, mode="constant") * area
+
+    count = np.rint(box_sum(ok.astype(np.float64)))
+    s1, s2 = box_sum(a), box_sum(b)
+    n = count
+    if effective_pixels:
+        product = box_sum(a * b)
+        mean = 0.5 * (s1 + s2)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            n = np.clip(mean * mean / product, 1.0, count)
+        n = np.where(np.isfinite(n), n, count)
+        # Thresholds on a grid of 1/8 pixel, rounded down (slightly wider bounds): a
+        # few thousand distinct F quantiles instead of one per pixel.
+        n = np.floor(n * 8.0) / 8.0
+    flagged = np.zeros(a.shape, dtype=bool)
+    test = ok & (count >= 1) & (s2 > 0)
+    if test.any():
+        ratio = s1[test] / s2[test]
+        levels, inverse = np.unique(n[test], return_inverse=True)
+        low, high = change_thresholds(levels, looks_first, looks_second, false_alarm)
+        flagged[test] = (ratio < low[inverse]) | (ratio > high[inverse])
+    grow = window // 2 if grow is None else int(grow)
+    if grow > 0 and flagged.any():
+        labels, count_regions = ndimage.label(flagged)
+        sizes = np.bincount(labels.ravel())
+        large = (sizes >= area) & (np.arange(sizes.size) > 0)
+        if large.any():
+            flagged |= ndimage.maximum_filter(large[labels], size=2 * grow + 1, mode="constant")
+    return flagged & ok
+
+
+# --------------------------------------------------------------------------- reading
+
+def _read(path, units, band):
+    """Intensity, validity and grid of one date (one-line errors)."""
+    from ..raster import open_scene
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            with open_scene(path, units=units) as reader:
+                intensity, valid = reader.read(band=band)
+                grid = (reader.width, reader.height, reader.crs, reader.transform)
+    except DespeckError:
+        raise
+    except (OSError, ValueError) as exc:
+        raise RasterError(f"{path}: cannot read ({exc})") from None
+    valid = np.asarray(valid, dtype=bool) & np.isfinite(intensity) & (intensity > 0)
+    return np.where(valid, intensity, 0).astype(np.float32), valid, grid
+
+
+def read_date_pair(first, second, *, units=None, band=1):
+    """Read two co-registered dates as intensities on one grid.
+
+    Returns
+    -------
+    views : ndarray of float32, shape (2, h, w)
+        The two dates' intensities (0 where invalid).
+    valid : ndarray of bool, shape (h, w)
+        Valid on both dates.
+
+    Raises
+    ------
+    RasterError
+        Unreadable files, or the second date on another grid (size, pixel geometry or CRS).
+    """
+    a, va, (wa, ha, crs_a, tf_a) = _read(first, units, band)
+    b, vb, (wb, hb, crs_b, tf_b) = _read(second, units, band)
+    what = None
+    if (wa, ha) != (wb, hb):
+        what = f"{wb}x{hb} pixels against {wa}x{ha}"
+    elif not tf_a.almost_equals(tf_b):
+        what = f"transform {tuple(round(v, 6) for v in tf_b[:6])} against {tuple(round(v, 6) for v in tf_a[:6])}"
+    elif crs_a != crs_b:
+        what = f"CRS {crs_b} against {crs_a}"
+    if what:
+        raise RasterError(f"data.pairs: {second} is not on the grid of {first} ({what}); co-register the two dates first")
+    return np.stack([a, b]), va & vb
+
+
+def read_slc_sublooks(path, count, *, axis="azimuth", oversampling=1.0, taper=None, centre=0.0, units=None, band=1):
+    """Read a single-look complex file and split it into ``count`` sub-look intensities.
+
+    Returns
+    -------
+    views : ndarray of float32, shape (count, h, w)
+        Sub-look intensities ``|z_k|^2`` (0 where invalid), each scaled by
+        :func:`despeck.speckle.split_sublooks` to the full scene's mean.
+    valid : ndarray of bool, shape (h, w)
+
+    Raises
+    ------
+    ConfigError
+        The file holds real (not complex) samples, or is too short along ``axis``.
+    RasterError
+        Unreadable file.
+    """
+    from rasterio.windows import Window
+
+    from ..raster import open_scene
+
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            with open_scene(path, units=units) as reader:
+                if reader.units != "complex":
+                    raise ConfigError(
+                        f"config key data.slc: {path} holds real data ({reader.units}), not complex samples; "
+                        "sub-looks need a single-look complex file (complex data type or I/Q bands)"
+                    )
+                # raster.py converts to intensity on read; the phase is needed here, so the
+                # raw samples and their nodata mask are taken from the reader directly.
+                raw, bad = reader._raw(Window(0, 0, reader.width, reader.height), reader._check_band(band))
+    except DespeckError:
+        raise
+    except (OSError, ValueError) as exc:
+        raise RasterError(f"{path}: cannot read ({exc})") from None
+    z = raw.astype(np.complex64) if np.iscomplexobj(raw) else (raw[0] + 1j * raw[1]).astype(np.complex64)
+    valid = ~bad & np.isfinite(z.real) & np.isfinite(z.imag) & (np.abs(z) > 0)
+    z = np.where(valid, z, np.complex64(0))
+    try:
+        looks = split_sublooks(z, count, axis=axis, oversampling=oversampling, taper=taper, centre=centre)
+    except InputError as exc:
+        raise ConfigError(f"config key data.sublooks: {path}: {exc}") from None
+    views = (looks.real ** 2 + looks.imag ** 2).astype(np.float32)
+    valid = valid & np.all(views > 0, axis=0)
+    return np.where(valid, views, np.float32(0)), valid
+
+
+# --------------------------------------------------------------------------- sources
+
+@dataclass
+class PairSource:
+    """Co-registered views of one scene with independent speckle, in memory.
+
+    ``views[k]`` is a linear intensity; ``looks[k]`` its looks as used by the loss
+    (configured or estimated) and ``looks_estimated[k]`` the estimate (None if the
+    scene had too few homogeneous blocks). ``keep`` marks the pixels that enter the
+    loss: valid on every view and not flagged as changed.
+    """
+
+    name: str
+    kind: str
+    files: list
+    views: np.ndarray
+    valid: np.ndarray
+    keep: np.ndarray
+    looks: np.ndarray
+    looks_estimated: list
+    log_means: np.ndarray
+    val_start: int
+    train: _PositionTable
+    val: _PositionTable
+    changed_fraction: float = 0.0
+    blocks: list = field(default_factory=list)
+
+    def describe(self) -> dict:
+        d = {
+            "files": [str(f) for f in self.files],
+            "looks": [round(float(v), 4) for v in self.looks],
+            "looks_estimated": [None if v is None else round(float(v), 4) for v in self.looks_estimated],
+        }
+        if self.kind == "pair":
+            d["changed_fraction"] = round(self.changed_fraction, 5)
+        else:
+            d["sublooks"] = int(self.views.shape[0])
+        return d
+
+
+def _estimate(views, valid):
+    out = []
+    for v in views:
+        try:
+            out.append(float(estimate_looks(v, valid)))
+        except InputError:
+            out.append(None)
+    return out
+
+
+def _make_source(name, kind, files, views, valid, config: TrainConfig) -> PairSource:
+    d = config.data
+    p = d.patch_size
+    h, w = valid.shape
+    if h < p or w < p:
+        raise ConfigError(f"config key data.patch_size: {p} is larger than {name} ({w}x{h} pixels)")
+    if not valid.any():
+        raise RasterError(f"{name}: no pixel is valid on every view; nothing to train on")
+    if h < 2 * p:
+        raise ConfigError(
+            f"config key data.val_fraction: {name} has {h} rows; pair training needs at least {2 * p} "
+            f"(twice data.patch_size) to hold a validation strip below the training rows"
+        )
+    estimated = _estimate(views, valid)
+    configured = config.speckle.looks
+    if configured == "auto":
+        missing = [f for f, e in zip(files if kind == "pair" else [f"sub-look {k + 1}" for k in range(len(views))],
+                                     estimated) if e is None or not math.isfinite(e)]
+        if missing:
+            raise ConfigError(f"config key speckle.looks: auto cannot estimate the looks of {name} ({missing[0]}: "
+                              "too few homogeneous 16x16 blocks); set speckle.looks to a number")
+        looks = np.array(estimated, dtype=np.float64)
+    else:
+        looks = np.full(len(views), float(configured))
+        for e in estimated:
+            if e is not None and math.isfinite(e) and not 1 / 1.5 <= e / float(configured) <= 1.5:
+                warnings.warn(f"{name}: speckle.looks is {float(configured):g} but the looks estimated on the data "
+                              f"are {e:.2f}; set speckle.looks: auto to use the estimates", UserWarning, stacklevel=3)
+                break
+    changed = np.zeros_like(valid)
+    if kind == "pair":
+        changed = change_mask(views[0], views[1], valid, looks_first=looks[0], looks_second=looks[1],
+                              window=d.change_window, false_alarm=d.change_false_alarm)
+    keep = valid & ~changed
+    log_means = np.array([float(np.mean(np.log(v[valid].astype(np.float64)))) for v in views])
+    val_rows = min(max(p, math.ceil(d.val_fraction * h)), h - p)
+    val_start = h - val_rows
+
+    def table(lo, hi):
+        return _PositionTable(_allowed_positions(valid, p, d.min_valid_fraction, lo, hi)
+                              & _allowed_positions(keep, p, _MIN_KEPT_FRACTION, lo, hi))
+
+    changed_fraction = float(changed.sum() / max(valid.sum(), 1))
+    return PairSource(name, kind, list(files), views, valid, keep, looks, estimated, log_means, val_start,
+                      table(0, val_start), table(val_start, h), changed_fraction)
+
+
+def _item(noisy, target, valid, keep, looks, offset):
+    return {
+        "noisy": torch.from_numpy(np.ascontiguousarray(noisy, dtype=np.float32))[None],
+        "target": torch.from_numpy(np.ascontiguousarray(target, dtype=np.float32))[None],
+        "valid": torch.from_numpy(np.ascontiguousarray(valid, dtype=bool))[None],
+        "weight": torch.from_numpy(np.ascontiguousarray(keep, dtype=np.float32))[None],
+        "looks": torch.tensor(looks, dtype=torch.float32),
+        "log_offset": torch.tensor(offset, dtype=torch.float32),
+    }
+
+
+def _crop(src: PairSource, r0, c0, p, i, j):
+    sl = (slice(r0, r0 + p), slice(c0, c0 + p))
+    return src.views[i][sl], src.views[j][sl], src.valid[sl], src.keep[sl]
+
+
+class PairPatchDataset(Dataset):
+    """Random training patches of pairs; item ``(epoch, index)`` is deterministic.
+
+    Each item is a dict of tensors: ``noisy`` (one view), ``target`` (another view of
+    the same pair, the order drawn at random), ``valid`` (valid on every view, for the
+    network's nodata handling), ``weight`` (1 where the pixel enters the loss: valid and
+    unchanged), ``looks`` (the target's looks, for the log-target correction) and
+    ``log_offset`` (the input view's mean log-intensity, as inference computes per scene,
+    plus a random jitter of ``offset_jitter`` nepers).
+    """
+
+    def __init__(self, sources, config: TrainConfig):
+        self.sources = [s for s in sources if s.train.total > 0]
+        self.cum = np.cumsum([s.train.total for s in self.sources])
+        self.config = config
+        self.length = config.data.patches_per_epoch
+
+    def __len__(self):
+        return self.length
+
+    def __getitem__(self, key):
+        epoch, index = key if isinstance(key, tuple) else (0, int(key))
+        c = self.config
+        rng = np.random.default_rng([c.trainer.seed, 1, int(epoch), int(index)])
+        k = int(rng.integers(int(self.cum[-1])))
+        f = int(np.searchsorted(self.cum, k, side="right"))
+        src = self.sources[f]
+        r0, c0 = src.train.position(k - (int(self.cum[f - 1]) if f else 0))
+        i, j = (int(v) for v in rng.choice(src.views.shape[0], size=2, replace=False))
+        noisy, target, valid, keep = _crop(src, r0, c0, c.data.patch_size, i, j)
+        if c.data.augment:
+            t = int(rng.integers(8))
+            noisy, target, valid, keep = (_augment(a, t) for a in (noisy, target, valid, keep))
+        offset = src.log_means[i] + c.data.offset_jitter * float(rng.standard_normal())
+        return _item(noisy, target, valid, keep, src.looks[j], offset)
+
+
+class PairValidationSet(Dataset):
+    """Validation without a clean reference: held-out patches and homogeneous blocks of the strips.
+
+    ``items`` are ``val_patches`` fixed patches from the bottom strips (input and target
+    views drawn once) for the validation loss. For the output measures, homogeneous
+    blocks are found in each strip with :func:`despeck.speckle.homogeneous_blocks` on the
+    *second* view, while the network despeckles the *first*: the two views' speckle is
+    independent, so choosing the blocks does not favour blocks where the input happens
+    to look smooth. Blocks alternate, most homogeneous first, between a calibration set
+    (for ``mse_log``, the exported ``log_bias`` makes the output's mean equal the
+    input's there, as the simulated constant patches do in supervised training) and a
+    measurement set on which :meth:`measure` reports the output's ENL and the mean
+    ratio input / output.
+    """
+
+    has_reference = False
+
+    def __init__(self, sources, config: TrainConfig):
+        c = config
+        p = c.data.patch_size
+        refs = [s for s in sources if s.val.total > 0]
+        if not refs:
+            raise ConfigError(
+                "config key data.val_fraction: no pair has a validation strip with a "
+                f"{p}x{p} patch that is valid and at least {_MIN_KEPT_FRACTION:.0%} unchanged; "
+                "raise data.val_fraction or lower data.patch_size"
+            )
+        rng = np.random.default_rng([c.trainer.seed, 2])
+        cum = np.cumsum([s.val.total for s in refs])
+        items = []
+        for _ in range(c.data.val_patches):
+            k = int(rng.integers(int(cum[-1])))
+            f = int(np.searchsorted(cum, k, side="right"))
+            src = refs[f]
+            r0, c0 = src.val.position(k - (int(cum[f - 1]) if f else 0))
+            i, j = (int(v) for v in rng.choice(src.views.shape[0], size=2, replace=False))
+            noisy, target, valid, keep = _crop(src, r0, c0, p, i, j)
+            items.append(_item(noisy, target, valid, keep, src.looks[j], src.log_means[i]))
+        self.items = items
+        self.blocks = []  # (source, row, col, window)
+        for src in sources:
+            strip = slice(src.val_start, None)
+            rows = src.views.shape[1] - src.val_start
+            window = 16 if rows >= 16 else 8
+            found = None
+            for minimum in (8, 2):
+                try:
+                    found, _ = homogeneous_blocks(src.views[1][strip], src.keep[strip], window=window,
+                                                  fraction=0.2, min_blocks=minimum)
+                    break
+                except InputError:
+                    continue
+            if found is not None:
+                self.blocks += [(src, int(r) + src.val_start, int(col), window)
+                                for r, col in found[:_MAX_BLOCKS_PER_PAIR]]
+        if len(self.blocks) < 2:
+            raise ConfigError(
+                "config key data.val_fraction: the validation strips hold fewer than two blocks free of nodata "
+                "and change for the ENL and mean-ratio measures; raise data.val_fraction"
+            )
+
+    def __len__(self):
+        return len(self.items)
+
+    def __getitem__(self, i):
+        return self.items[i]
+
+    @torch.no_grad()
+    def measure(self, despeckler, loss_name: str) -> dict:
+        """Despeckle the blocks (with their context) and measure the output.
+
+        Returns
+        -------
+        dict
+            ``val_enl`` (median ENL of the output over the measurement blocks),
+            ``val_ratio_mean`` (mean of input / output there; 1 keeps the mean),
+            ``val_bias_db`` (10 log10 of mean output over mean input there) and
+            ``val_log_bias`` (the correction exported with the model).
+        """
+        m = despeckler.receptive_field // 2
+        padded = {}
+        inputs, crops, valids, offsets = [], [], [], []
+        for src, r, col, window in self.blocks:
+            if id(src) not in padded:
+                padded[id(src)] = (np.pad(src.views[0], m, mode="reflect"), np.pad(src.valid, m, mode="reflect"))
+            view, valid = padded[id(src)]
+            # In padded coordinates the block starts at (r + m, col + m), its context m before.
+            crops.append(view[r:r + window + 2 * m, col:col + window + 2 * m])
+            valids.append(valid[r:r + window + 2 * m, col:col + window + 2 * m])
+            offsets.append(src.log_means[0])
+            inputs.append(src.views[0][r:r + window, col:col + window].astype(np.float64))
+        outputs = [None] * len(crops)
+        by_shape = {}
+        for k, crop in enumerate(crops):
+            by_shape.setdefault(crop.shape, []).append(k)
+        for ks in by_shape.values():
+            for start in range(0, len(ks), 64):
+                chunk = ks[start:start + 64]
+                x = torch.from_numpy(np.stack([crops[k] for k in chunk])[:, None])
+                v = torch.from_numpy(np.stack([valids[k] for k in chunk])[:, None])
+                off = torch.tensor([offsets[k] for k in chunk], dtype=torch.float32)
+                y = despeckler(x, v, off)[:, 0].double().cpu().numpy()
+                for k, out in zip(chunk, y):
+                    outputs[k] = out[m:out.shape[0] - m, m:out.shape[1] - m]
+        calibrate, measure = list(range(0, len(outputs), 2)), list(range(1, len(outputs), 2))
+        if loss_name == "mse_log":
+            log_bias = math.log(sum(inputs[k].sum() for k in calibrate) / sum(outputs[k].sum() for k in calibrate))
+        else:
+            log_bias = 0.0
+        gain = math.exp(log_bias)
+        out = [outputs[k] * gain for k in measure]
+        inp = [inputs[k] for k in measure]
+        enl = float(np.median([min(enl_intensity(o), 1e6) for o in out]))
+        ratio = float(np.mean(np.concatenate([(i / o).ravel() for i, o in zip(inp, out)])))
+        bias = 10 * math.log10(sum(o.sum() for o in out) / sum(i.sum() for i in inp))
+        return {"val_enl": enl, "val_ratio_mean": ratio, "val_bias_db": float(bias), "val_log_bias": float(log_bias)}
+
+
+class PairTrainingData:
+    """Sources, training dataset and validation set for a pair-training config.
+
+    Reading and checking happen here, before any training starts: missing or unreadable
+    files, dates on different grids, real files listed as SLC, rasters too small for a
+    patch and a validation strip all raise one-line errors.
+    """
+
+    def __init__(self, config: TrainConfig, progress: bool = False):
+        self.config = config
+        d = config.data
+        sources = []
+        total_pixels = 0
+
+        def count(name, pixels):
+            nonlocal total_pixels
+            total_pixels += pixels
+            if total_pixels > d.max_pixels:
+                raise ConfigError(
+                    f"config key data.max_pixels: the pairs exceed {d.max_pixels} pixels at {name}; "
+                    "crop them, list fewer files or raise data.max_pixels"
+                )
+
+        for first, second in d.pairs:
+            a = resolve_raster_paths([first], "data.pairs")
+            b = resolve_raster_paths([second], "data.pairs")
+            if len(a) != 1 or len(b) != 1:
+                raise ConfigError(f"config key data.pairs: [{first}, {second}] must name two files, not folders or globs")
+            if a[0] == b[0]:
+                raise ConfigError(f"config key data.pairs: {a[0]} is paired with itself; the dates must differ")
+            views, valid = read_date_pair(a[0], b[0], units=d.units, band=d.band)
+            name = f"{a[0].name} + {b[0].name}"
+            count(name, views.size)
+            sources.append(_make_source(name, "pair", [a[0], b[0]], views, valid, config))
+        for path in resolve_raster_paths(d.slc, "data.slc") if d.slc else []:
+            views, valid = read_slc_sublooks(path, d.sublooks, axis=d.split_axis, oversampling=d.slc_oversampling,
+                                             taper=d.slc_taper, centre=d.slc_centre, units=d.units, band=d.band)
+            name = f"{path.name} ({d.sublooks} sub-looks along {d.split_axis})"
+            count(name, views.size)
+            sources.append(_make_source(name, "sublooks", [path], views, valid, config))
+        if not any(s.train.total for s in sources):
+            p = d.patch_size
+            raise RasterError(
+                f"no {p}x{p} training patch with at least {d.min_valid_fraction:.0%} valid and "
+                f"{_MIN_KEPT_FRACTION:.0%} unchanged pixels in {sources[0].name}"
+                f"{' ...' if len(sources) > 1 else ''}; lower data.min_valid_fraction or data.patch_size"
+            )
+        self.sources = sources
+        self.references = sources
+        self.train_set = PairPatchDataset(sources, config)
+        self.val_set = PairValidationSet(sources, config)
+
+    @property
+    def mode(self) -> str:
+        kinds = {s.kind for s in self.sources}
+        return "pairs+sublooks" if len(kinds) == 2 else "pairs" if "pair" in kinds else "sublooks"
+
+    @property
+    def model_looks(self):
+        """Looks of the training inputs, recorded in the model: one number, or [min, max] if they vary."""
+        looks = np.concatenate([s.looks for s in self.sources])
+        lo, hi = float(looks.min()), float(looks.max())
+        return round(lo, 4) if hi <= lo * 1.1 else [round(lo, 4), round(hi, 4)]
+
+    def train_dataloader(self) -> DataLoader:
+        d = self.config.data
+        return DataLoader(
+            self.train_set, batch_size=d.batch_size, sampler=EpochSampler(len(self.train_set)),
+            num_workers=d.num_workers, worker_init_fn=_worker_init if d.num_workers else None,
+            persistent_workers=d.num_workers > 0, drop_last=True,
+        )
+
+    def val_dataloader(self) -> DataLoader:
+        return DataLoader(self.val_set, batch_size=self.config.data.batch_size, shuffle=False)
+
+    def describe(self) -> dict:
+        """JSON-ready description of the training data, for the model file."""
+        c = self.config
+        d = c.data
+        out = {
+            "mode": self.mode,
+            "units": d.units or "detected",
+            "patch_size": d.patch_size,
+            "looks_source": "estimated (despeck.speckle.estimate_looks)" if c.speckle.looks == "auto" else "configured",
+            "validation": f"bottom {d.val_fraction:g} of every pair's rows; {len(self.val_set.blocks)} homogeneous blocks",
+        }
+        pairs = [s.describe() for s in self.sources if s.kind == "pair"]
+        slcs = [s.describe() for s in self.sources if s.kind == "sublooks"]
+        if pairs:
+            out["pairs"] = pairs
+            out["change_test"] = {
+                "test": "two-sided F test on the ratio of the dates' local means",
+                "window": d.change_window, "false_alarm": d.change_false_alarm,
+            }
+        if slcs:
+            out["slc"] = slcs
+            out["sublooks"] = {"count": d.sublooks, "split_axis": d.split_axis, "oversampling": d.slc_oversampling,
+                               "taper": d.slc_taper, "centre": d.slc_centre}
+        return out
