@@ -67,6 +67,7 @@ _MIN_KEPT_FRACTION = 0.5
 # Homogeneous blocks used per pair for the validation ENL and mean-ratio measures (the
 # most homogeneous first; half calibrate the exported mean, half are measured).
 _MAX_BLOCKS_PER_PAIR = 64
+_MIN_BLOCK_UNCHANGED = 0.9
 
 
 # --------------------------------------------------------------------------- change test
@@ -513,12 +514,18 @@ class PairValidationSet(Dataset):
             found = None
             for minimum in (8, 2):
                 try:
-                    found, _ = homogeneous_blocks(src.views[1][strip], src.keep[strip], window=window,
+                    found, _ = homogeneous_blocks(src.views[1][strip], src.valid[strip], window=window,
                                                   fraction=0.2, min_blocks=minimum)
                     break
                 except InputError:
                     continue
             if found is not None:
+                # Blocks on changed ground are not homogeneous on the input date. Scattered
+                # false alarms of the change test are left in: dropping every block with
+                # one flagged pixel would drop most blocks.
+                keep = src.keep[strip]
+                found = [(r, col) for r, col in found
+                         if keep[r:r + window, col:col + window].mean() >= _MIN_BLOCK_UNCHANGED]
                 self.blocks += [(src, int(r) + src.val_start, int(col), window)
                                 for r, col in found[:_MAX_BLOCKS_PER_PAIR]]
         if len(self.blocks) < 2:
