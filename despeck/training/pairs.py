@@ -37,7 +37,7 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 import torch
@@ -342,7 +342,6 @@ class PairSource:
     train: _PositionTable
     val: _PositionTable
     changed_fraction: float = 0.0
-    blocks: list = field(default_factory=list)
 
     def describe(self) -> dict:
         d = {
