@@ -31,7 +31,7 @@ def _umask() -> int:
 
 
 def publish(tmp, path) -> pathlib.Path:
-    """Give ``tmp`` ordinary new-file permissions and rename it to ``path`` (atomically)."""
-    os.chmod(tmp, 0o666 & ~_umask())
+    """Give ``tmp`` ordinary new-file (or folder) permissions and rename it to ``path`` (atomically)."""
+    os.chmod(tmp, (0o777 if os.path.isdir(tmp) else 0o666) & ~_umask())
     os.replace(tmp, path)
     return pathlib.Path(path)

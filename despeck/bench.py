@@ -42,6 +42,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from . import filters, metrics
+from .atomic import publish
 from .errors import ConfigError, InputError, RasterError
 from .speckle import check_looks, estimate_looks
 
@@ -534,10 +535,10 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
         if out_dir.exists():
             old = pathlib.Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.old.", dir=out_dir.parent))
             os.replace(out_dir, old / "previous")
-            os.replace(tmp, out_dir)
+            publish(tmp, out_dir)
             shutil.rmtree(old, ignore_errors=True)
         else:
-            os.replace(tmp, out_dir)
+            publish(tmp, out_dir)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

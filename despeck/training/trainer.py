@@ -32,6 +32,7 @@ from pathlib import Path
 import lightning.pytorch as pl
 import torch
 
+from ..atomic import publish, sibling_temp
 from ..errors import ConfigError, InputError, ModelFileError
 from .config import TrainConfig, config_to_dict, dump_config, parse_duration
 
@@ -139,14 +140,12 @@ class EpochTimeBudget(pl.Callback):
 
 
 def _atomic_write_text(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    tmp = sibling_temp(path)
     try:
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-        os.replace(tmp, path)
+        tmp.write_text(text, encoding="utf-8")
+        publish(tmp, path)
     finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
+        tmp.unlink(missing_ok=True)
 
 
 def _prepare_output(config: TrainConfig, resume: bool) -> Path:
