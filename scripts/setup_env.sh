@@ -18,7 +18,9 @@ if ! "$vpy" -c "import torch" >/dev/null 2>&1; then
     echo "despeck set-up: installing the CPU build of torch" >&2
     # A CPU wheel of this version lies on local disk here; elsewhere pip finds it on
     # the registry. TORCH_SPEC lets another machine pick its own CPU build.
-    "$vpy" -m pip install -q "${TORCH_SPEC:-torch==2.13.0}"
+    "$vpy" -m pip install -q "${TORCH_SPEC:-torch==2.13.0}" 2>&1 \
+        | grep -v "is ignored: it is neither a file nor a directory" >&2 || true
+    "$vpy" -c "import torch" || { echo "despeck set-up: could not install torch" >&2; exit 1; }
 fi
 target="$here"
 [ -n "$extra" ] && target="$here[$extra]"
