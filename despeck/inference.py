@@ -48,8 +48,9 @@ __all__ = [
 ]
 
 # Pixels per batch the default batch size aims for: enough work per call to keep both
-# cores busy, small enough that a 64-channel network's activations stay a few hundred MB.
-_BATCH_PIXELS = 1 << 20
+# cores busy, small enough that a 64-channel network's activations stay a few hundred MB
+# (a 40-channel network in channels-last needs about 330 MB per megapixel).
+_BATCH_PIXELS = 1 << 19
 
 # Below this many pixels a timing of the two memory formats costs more than it can save.
 _TRIAL_MIN_PIXELS = 4_000_000
@@ -258,33 +259,33 @@ class _TileRunner:
         if self._converted:
             self.model.to(memory_format=torch.contiguous_format)
 
-    def _choose_format(self, tiles, valid):
+    def _choose_format(self, tiles):
         h, w = min(256, tiles.shape[1]), min(256, tiles.shape[2])
-        crop, crop_ok = np.ascontiguousarray(tiles[:1, :h, :w]), np.ascontiguousarray(valid[:1, :h, :w])
+        crop = np.ascontiguousarray(tiles[:1, :h, :w])
         seconds = {}
         for cl in (False, True, False, True):  # the second round, warm, is the one kept
             self._set_format(cl)
             start = time.perf_counter()
-            self._forward(crop, crop_ok, cl)
+            self._forward(crop, cl)
             seconds[cl] = time.perf_counter() - start
         self.channels_last = seconds[True] < seconds[False]
         self._set_format(self.channels_last)
 
-    def __call__(self, tiles: np.ndarray, valid: np.ndarray) -> np.ndarray:
+    def __call__(self, tiles: np.ndarray) -> np.ndarray:
         if self.channels_last is None:
-            self._choose_format(tiles, valid)
+            self._choose_format(tiles)
         elif self.channels_last and not self._converted:
             self._set_format(True)
-        return self._forward(tiles, valid, self.channels_last)
+        return self._forward(tiles, self.channels_last)
 
-    def _forward(self, tiles, valid, cl):
+    def _forward(self, tiles, cl):
+        # Invalid pixels arrive as 0 intensity, which the Despeckler always treats as
+        # invalid (non-positive), so no separate mask is needed.
         x = torch.from_numpy(tiles).unsqueeze(1)
-        v = torch.from_numpy(valid).unsqueeze(1)
         if cl:
             x = x.contiguous(memory_format=torch.channels_last)
-            v = v.contiguous(memory_format=torch.channels_last)
         with torch.autocast("cpu", dtype=torch.bfloat16, enabled=self.bf16):
-            y = self.model(x, valid=v, log_offset=self.log_offset)
+            y = self.model(x, log_offset=self.log_offset)
         return y.to(torch.float32).squeeze(1).contiguous().numpy()
 
 
@@ -319,26 +320,24 @@ def _shift_rows_up(array, by, count):
 def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_bar, chunk_rows=1):
     """Run every tile of ``grid`` through ``runner`` and emit finished rows in order.
 
-    ``read_rows(r0, r1) -> (intensity, valid)`` returns scene rows ``[r0, r1)``, full width;
-    ``emit_rows(r0, r1, estimate, valid)`` receives finished rows (``estimate`` is only
-    meaningful where ``valid``; both are views into buffers reused afterwards). Input
-    rows are kept in a buffer that never holds more than one tile height plus one read
-    chunk; the blend accumulator holds one tile height. Neither depends on the number
-    of scene rows.
+    ``read_rows(r0, r1)`` returns the intensity of scene rows ``[r0, r1)``, full width,
+    with 0 at invalid pixels; ``emit_rows(r0, r1, estimate, source)`` receives finished
+    rows and their input (``estimate`` is only meaningful where ``source > 0``; both are
+    views into buffers reused afterwards). Input rows are kept in a buffer that never
+    holds more than one tile height plus one read chunk; the blend accumulator holds
+    one tile height. Neither depends on the number of scene rows.
     """
     rows, cols = grid.rows, grid.cols
     width = grid.shape[1]
     keep, upto = _read_plan(rows, chunk_rows)
     capacity = max(u - k for k, u in zip(keep, upto))
     buf = np.empty((capacity, width), dtype=np.float32)
-    buf_valid = np.empty((capacity, width), dtype=bool)
     b0 = b1 = 0  # scene rows held in buf[: b1 - b0]
     acc = np.zeros((rows.tile, width), dtype=np.float32)
     a0 = 0  # scene row of acc[0]
     done = 0
     tr, tc = grid.tile_shape
     batch_in = np.empty((batch_size, tr, tc), dtype=np.float32)
-    batch_ok = np.empty((batch_size, tr, tc), dtype=bool)
     col_index = [cols.source_index(j) for j in range(cols.count)]
     col_weight = cols.accumulated_weight.astype(np.float32)[None, :]
     for i in range(rows.count):
@@ -347,22 +346,17 @@ def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_b
         if drop > 0:
             held = b1 - keep[i]
             _shift_rows_up(buf, drop, held)
-            _shift_rows_up(buf_valid, drop, held)
             b0 = keep[i]
         while b1 < upto[i]:
             r1 = min(upto[i], b1 + chunk_rows)
-            x, ok = read_rows(b1, r1)
-            buf[b1 - b0 : r1 - b0] = x
-            buf_valid[b1 - b0 : r1 - b0] = ok
+            buf[b1 - b0 : r1 - b0] = read_rows(b1, r1)
             b1 = r1
         row_index = rows.source_index(i) - b0
         for j0 in range(0, cols.count, batch_size):
             js = range(j0, min(cols.count, j0 + batch_size))
             for n, j in enumerate(js):
-                ix = np.ix_(row_index, col_index[j])
-                batch_in[n] = buf[ix]
-                batch_ok[n] = buf_valid[ix]
-            out = runner(batch_in[: len(js)], batch_ok[: len(js)])
+                batch_in[n] = buf[np.ix_(row_index, col_index[j])]
+            out = runner(batch_in[: len(js)])
             for n, j in enumerate(js):
                 grid.blend_into(acc, out[n], i, j, row_offset=a0)
         finished = rows.finished(i)
@@ -371,7 +365,7 @@ def _stream(grid: TileGrid, read_rows, emit_rows, runner, batch_size, progress_b
             estimate = acc[done - a0 : finished - a0]
             estimate /= rows.accumulated_weight[done:finished, None].astype(np.float32)
             estimate /= col_weight
-            emit_rows(done, finished, estimate, buf_valid[done - b0 : finished - b0])
+            emit_rows(done, finished, estimate, buf[done - b0 : finished - b0])
             if progress_bar is not None:
                 progress_bar.update((finished - done) * width / 1e6)
             shift = finished - a0
@@ -478,10 +472,10 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
     clean = np.where(ok, x, np.float32(0))
 
     def read_rows(r0, r1):
-        return clean[r0:r1], ok[r0:r1]
+        return clean[r0:r1]
 
-    def emit_rows(r0, r1, estimate, est_valid):
-        result[r0:r1] = np.where(est_valid, estimate, x[r0:r1])
+    def emit_rows(r0, r1, estimate, source):
+        result[r0:r1] = np.where(source > 0, estimate, x[r0:r1])
 
     bar = _make_bar(x.size, "despeckle", progress)
     runner = _TileRunner(model, log_offset=log_offset, bf16=use_bf16, channels_last=channels_last,
@@ -563,45 +557,41 @@ class _BlockWriter:
         self.width = writer.width
         self.height = writer.height
         self.cols_per_write = block_cols * max(1, 2048 // block_cols)
-        self.values = self.valid = None  # staging, allocated only if rows arrive unaligned
+        self.values = None  # staging, allocated only if rows arrive unaligned
         self.start = 0  # first scene row not yet written
         self.held = 0
 
-    def _write(self, r0, values, valid):
+    def _write(self, r0, values, source=None):
         from rasterio.windows import Window
 
         n = values.shape[0]
         for c0 in range(0, self.width, self.cols_per_write):
             c1 = min(self.width, c0 + self.cols_per_write)
-            self.writer.write(values[:, c0:c1], Window(c0, r0, c1 - c0, n), band=self.band, valid=valid[:, c0:c1])
+            valid = None if source is None else source[:, c0:c1] > 0
+            self.writer.write(values[:, c0:c1], Window(c0, r0, c1 - c0, n), band=self.band, valid=valid)
 
-    def __call__(self, r0, r1, estimate, valid):
+    def __call__(self, r0, r1, estimate, source):
         n = r1 - r0
         aligned = self.held == 0 and r0 % self.block_rows == 0
         if aligned and (r1 % self.block_rows == 0 or r1 == self.height):
-            self._write(r0, estimate, valid)
+            self._write(r0, estimate, source)
             self.start = r1
             return
-        if self.values is None:
-            rows = n + self.block_rows
-            self.values = np.empty((rows, self.width), dtype=np.float32)
-            self.valid = np.empty((rows, self.width), dtype=bool)
-        if self.held + n > self.values.shape[0]:
-            grow = self.held + n
-            self.values = np.concatenate([self.values[: self.held], np.empty((grow - self.held, self.width), np.float32)])
-            self.valid = np.concatenate([self.valid[: self.held], np.empty((grow - self.held, self.width), bool)])
-        self.values[self.held : self.held + n] = estimate
-        self.valid[self.held : self.held + n] = valid
+        if self.values is None or self.held + n > self.values.shape[0]:
+            grown = np.empty((self.held + n + self.block_rows, self.width), dtype=np.float32)
+            if self.held:
+                grown[: self.held] = self.values[: self.held]
+            self.values = grown
+        # Staged rows carry invalid pixels as NaN, which the writer turns into nodata.
+        np.copyto(self.values[self.held : self.held + n], np.where(source > 0, estimate, np.float32(np.nan)))
         self.held += n
         end = self.start + self.held
         ready = end if end == self.height else (end // self.block_rows) * self.block_rows
         if ready > self.start:
             k = ready - self.start
-            self._write(self.start, self.values[:k], self.valid[:k])
-            rest = self.held - k
-            self.values[:rest] = self.values[k : self.held].copy()
-            self.valid[:rest] = self.valid[k : self.held].copy()
-            self.start, self.held = ready, rest
+            self._write(self.start, self.values[:k])
+            _shift_rows_up(self.values, k, self.held - k)
+            self.start, self.held = ready, self.held - k
 
 
 def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, overwrite=False, tile=None,
@@ -672,10 +662,10 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                     warnings.simplefilter("ignore", InferenceWarning)  # already shown above
                     grid = resolve_tiling(shape, model, tile=tile, overlap=overlap, row_stride=block_shape[0])
                 threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
-                # Read in chunks of about 128 rows: GDAL's cache keeps the rest of a taller
+                # Read in chunks of about 64 rows: GDAL's cache keeps the rest of a taller
                 # block row, and the input buffer stays one tile plus one chunk high.
                 in_rows = max(1, reader.block_shape[0])
-                chunk = 128 if in_rows >= 128 else in_rows * -(-128 // in_rows)
+                chunk = 64 if in_rows >= 64 else in_rows * -(-64 // in_rows)
                 with _torch_settings(threads):
                     for band in range(1, reader.band_count + 1):
                         offset = _scene_offset(model, reader.sample_intensity(_SAMPLE_PIXELS, band=band))
@@ -683,7 +673,9 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                                              total_pixels=reader.width * reader.height)
 
                         def read_rows(r0, r1, band=band):
-                            return reader.read(Window(0, r0, reader.width, r1 - r0), band=band)
+                            intensity, valid = reader.read(Window(0, r0, reader.width, r1 - r0), band=band)
+                            intensity[~valid] = 0.0  # the stream marks invalid pixels by 0 intensity
+                            return intensity
 
                         try:
                             _stream(grid, read_rows, _BlockWriter(writer, band, block_shape), runner, batch_size,

@@ -373,10 +373,12 @@ def default_tiling(receptive_field: int, multiple: int = 1) -> tuple[int, int]:
 
     The overlap is the receptive field minus one (the two discarded margins) plus a blend
     zone of ``max(8, receptive_field // 4)`` pixels, rounded up to ``multiple``. The tile
-    is 1024 pixels (four overlaps if that is more), rounded up to ``lcm(64, multiple)``:
-    one megapixel per tile keeps the recomputed overlap to a few per cent for the
-    registry's networks while a 64-channel network's activations stay within a few
-    hundred MB (measured with ``benchmarks/bench_inference.py``).
+    is 720 pixels (up to 1024 for overlaps over 90 pixels, at least two overlaps),
+    rounded up to ``lcm(8, multiple)``:
+    about half a megapixel per tile keeps the recomputed overlap to a few per cent for
+    the registry's networks, while activations stay small (a 40-channel network in
+    channels-last needs about 330 MB per megapixel) and peak memory hardly depends on
+    the scene's size (measured with ``benchmarks/bench_inference.py``).
 
     Parameters
     ----------
@@ -393,5 +395,5 @@ def default_tiling(receptive_field: int, multiple: int = 1) -> tuple[int, int]:
         raise InputError(f"receptive field must be a positive integer, got {receptive_field!r}")
     multiple = max(1, int(multiple))
     overlap = _round_up(receptive_field - 1 + max(8, receptive_field // 4), multiple)
-    tile = _round_up(max(1024, 4 * overlap), math.lcm(64, multiple))
+    tile = _round_up(max(720, min(1024, 8 * overlap), 2 * overlap), math.lcm(8, multiple))
     return int(tile), int(overlap)

@@ -249,14 +249,15 @@ def test_stream_memory_does_not_grow_with_height():
 
     def read_rows(r0, r1):
         reads.append((r0, r1))
-        return np.ones((r1 - r0, 50), np.float32), np.ones((r1 - r0, 50), bool)
+        return np.ones((r1 - r0, 50), np.float32)
 
-    def emit_rows(r0, r1, est, ok):
+    def emit_rows(r0, r1, est, source):
         emits.append((r0, r1))
         np.testing.assert_allclose(est, 1.0, rtol=1e-6)
+        assert source.shape == est.shape
 
     grid = TileGrid.fitted((rows, 50), 64, 16, 4)
-    _stream(grid, read_rows, emit_rows, lambda t, v: t.copy(), 2, None, chunk_rows=16)
+    _stream(grid, read_rows, emit_rows, lambda t: t.copy(), 2, None, chunk_rows=16)
     assert [r for r, _ in reads] == [0] + [r for _, r in reads[:-1]] and reads[-1][1] == rows
     assert [r for r, _ in emits] == [0] + [r for _, r in emits[:-1]] and emits[-1][1] == rows
 
