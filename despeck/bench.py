@@ -15,6 +15,7 @@ Scene list files (YAML or JSON, paths relative to the file)::
       - name: north-polder            # optional, default the image's file name
         image: polder_1look.tif
         reference: polder_clean.tif   # optional clean reflectivity, same grid
+        reference_units: intensity    # optional, default detected (independent of units)
         looks: 1                      # optional, default estimated from the scene
         units: intensity              # optional, default detected
         areas: [[10, 10, 60, 60]]     # optional: boxes (row0, col0, row1, col1) or a .geojson file
@@ -194,7 +195,10 @@ class BenchScene:
     points : list of (row, col), or None
         Point targets; found automatically if None.
     units : str, optional
-        Units of the image file (detected if not given); the reference is read likewise.
+        Units of the image file (detected if not given).
+    reference_units : str, optional
+        Units of the reference file (detected if not given): a clean reference is often
+        kept in linear intensity while the image is in dB or amplitude.
     valid : ndarray of bool, optional
         Validity of an array image.
     """
@@ -207,6 +211,7 @@ class BenchScene:
     points: object = None
     units: str | None = None
     valid: object = None
+    reference_units: str | None = None
 
 
 def load_scene_list(path):
@@ -234,7 +239,7 @@ def load_scene_list(path):
         raise ConfigError(f"{path}: unknown key {sorted(unknown)[0]!r}; allowed: scenes, methods, crop")
     base = path.parent
     scenes = []
-    keys = {"name", "image", "reference", "looks", "areas", "points", "units"}
+    keys = {"name", "image", "reference", "looks", "areas", "points", "units", "reference_units"}
     for i, item in enumerate(data["scenes"]):
         if isinstance(item, str):
             item = {"image": item}
@@ -250,6 +255,7 @@ def load_scene_list(path):
         scenes.append(BenchScene(
             image=resolve(item["image"]), name=item.get("name"), reference=resolve(item.get("reference")),
             looks=item.get("looks"), areas=areas, points=item.get("points"), units=item.get("units"),
+            reference_units=item.get("reference_units"),
         ))
     methods = [parse_method(m, base) for m in (data.get("methods") or [])]
     crop = data.get("crop")
@@ -303,7 +309,7 @@ def _load_scene(scene: BenchScene, index: int) -> _Loaded:
     reference = None
     if scene.reference is not None:
         if isinstance(scene.reference, (str, os.PathLike)):
-            r = _read(scene.reference, scene.units, "reference")
+            r = _read(scene.reference, scene.reference_units, "reference")
             if r.intensity.shape != intensity.shape:
                 raise InputError(
                     f"{scene.reference}: reference is {r.width} x {r.height} pixels, the image {source} is "

@@ -146,10 +146,10 @@ def main(argv=None):
     bench = {
         "scenes": [
             {"name": "oskarvel-1look", "image": "oskarvel_1look.tif", "reference": "oskarvel_reference.tif",
-             "looks": 1, "units": "intensity", "areas": "oskarvel_areas.geojson",
+             "looks": 1, "units": "intensity", "reference_units": "intensity", "areas": "oskarvel_areas.geojson",
              "points": [list(p) for p in points]},
             {"name": "oskarvel-4look-db", "image": "oskarvel_4look_db.tif", "reference": "oskarvel_reference.tif",
-             "looks": 4, "units": "db", "areas": [list(b) for b in boxes], "points": [list(p) for p in points]},
+             "looks": 4, "units": "db", "reference_units": "intensity", "areas": [list(b) for b in boxes], "points": [list(p) for p in points]},
         ],
         "crop": [128, 128, 256],
     }

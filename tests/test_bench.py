@@ -149,3 +149,26 @@ def test_cli_bench_single_scene(scene, tmp_path, capsys):
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 3 and all(line.startswith("despeck: error:") for line in err)
     assert not (tmp_path / "rep2").exists()
+
+
+def test_reference_units_are_independent_of_the_image_units(scene, tmp_path):
+    # A scene stored in dB against a clean reference kept in linear intensity (common
+    # practice for simulated data) must score exactly as the same scene stored linearly.
+    clean, noisy, layout = scene
+    _tif(tmp_path / "noisy.tif", noisy)
+    _tif(tmp_path / "noisy_db.tif", 10 * np.log10(noisy))
+    _tif(tmp_path / "clean.tif", clean)
+    (tmp_path / "scenes.yaml").write_text(
+        "scenes:\n"
+        "  - {name: linear, image: noisy.tif, reference: clean.tif, looks: 1, units: intensity}\n"
+        "  - {name: db, image: noisy_db.tif, reference: clean.tif, looks: 1, units: db}\n"
+        "methods: [lee]\n"
+    )
+    areas = [list(b) for b in layout.homogeneous_boxes]
+    scenes, methods, _ = bench.load_scene_list(tmp_path / "scenes.yaml")
+    for s in scenes:
+        s.areas = areas
+    result = bench.run_benchmark(scenes, methods, tmp_path / "rep", progress=False)
+    by = {(r["scene"], r["method"]): r for r in result["results"]}
+    assert by[("db", "lee")]["psnr_db"] == pytest.approx(by[("linear", "lee")]["psnr_db"], abs=1e-3)
+    assert by[("db", "lee")]["psnr_db"] > by[("db", "input (unfiltered)")]["psnr_db"]

@@ -21,7 +21,9 @@ def add_arguments(parser):
                         help="single scene: a point target, repeatable (default: found automatically)")
     parser.add_argument("--looks", type=float, metavar="L", help="single scene: number of looks (default: estimated)")
     parser.add_argument("--units", choices=("intensity", "amplitude", "db", "complex"),
-                        help="single scene: units of the image and reference (default: detected)")
+                        help="single scene: units of the image (default: detected)")
+    parser.add_argument("--reference-units", choices=("intensity", "amplitude", "db"),
+                        help="single scene: units of the reference (default: detected)")
     parser.add_argument("--method", action="append", default=[], metavar="SPEC",
                         help="method, repeatable: a filter name, NAME:key=value,..., or model:PATH "
                              "(default: the list's methods, else every classical filter)")
@@ -43,7 +45,8 @@ def _ints(text, count, option):
 def run(args) -> int:
     from ..bench import BenchScene, run_benchmark
 
-    single = [args.image, args.reference, args.areas, args.looks, args.units] + args.area + args.point
+    single = [args.image, args.reference, args.areas, args.looks, args.units,
+              args.reference_units] + args.area + args.point
     if args.scenes and any(v not in (None, []) for v in single):
         raise InputError("give either --scenes or --image (with its options), not both")
     if not args.scenes and not args.image:
@@ -56,7 +59,8 @@ def run(args) -> int:
     else:
         areas = args.areas or ([_ints(a, 4, "--area") for a in args.area] or None)
         points = [_ints(p, 2, "--point") for p in args.point] or None
-        scenes = [BenchScene(image=args.image, reference=args.reference, looks=args.looks, areas=areas,
+        scenes = [BenchScene(image=args.image, reference=args.reference, reference_units=args.reference_units,
+                             looks=args.looks, areas=areas,
                              points=points, units=args.units)]
     result = run_benchmark(scenes, args.method or None, args.out_dir, crop=crop, overwrite=args.overwrite,
                            progress=not args.quiet)
