@@ -75,9 +75,12 @@ print(json.dumps({"peak_rss_mib": round(hwm / 1024, 1),
 
 
 def load_default_model(path=None, seed=0):
-    """The benchmark's model: a file, the bundled starter model, or seeded ``logcnn-s``."""
-    from despeck.models import Despeckler, create_model, load_model_file
+    """The benchmark's model: a file, a registry name (seeded weights), the starter model, or ``logcnn-s``."""
+    from despeck.models import Despeckler, create_model, list_models, load_model_file
 
+    if path in list_models():
+        torch.manual_seed(seed)
+        return Despeckler(create_model(path), looks=1).eval()
     if path:
         return load_model_file(path)
     starter = ROOT / "despeck" / "weights" / "starter.safetensors"
@@ -88,10 +91,18 @@ def load_default_model(path=None, seed=0):
 
 
 def model_name(path):
-    if path:
-        return str(path)
+    from despeck.models import list_models
+
+    from despeck.models import read_model_metadata
+
+    if path in list_models():
+        return f"{path} (registry, seeded random weights)"
     starter = ROOT / "despeck" / "weights" / "starter.safetensors"
-    return str(starter) if starter.exists() else "logcnn-s (registry default, seeded random weights)"
+    if not path and not starter.exists():
+        return "logcnn-s (registry default, seeded random weights)"
+    path = pathlib.Path(path) if path else starter
+    arch = read_model_metadata(path).get("architecture", {})
+    return f"{path} ({arch.get('name')} {arch.get('kwargs')}, {path.stat().st_size} bytes)"
 
 
 def load_average():
@@ -279,7 +290,7 @@ def trained_model(model_path, seconds, threads):
 
     if model_path or (ROOT / "despeck" / "weights" / "starter.safetensors").exists():
         return load_default_model(model_path), model_name(model_path)
-    cached = OUT_DIR / "bench_inference_logcnn-s.safetensors"
+    cached = OUT_DIR / f"bench_inference_logcnn-s_{int(seconds)}s.safetensors"
     if cached.exists():
         return load_model_file(cached), f"{cached} (trained by this benchmark earlier)"
     from despeck.training import config_from_dict, train
@@ -352,7 +363,7 @@ def main(argv=None):
                         help="run only these parts (repeatable)")
     parser.add_argument("--repeats", type=int, default=2, help="timing repeats; the best is kept")
     parser.add_argument("--threads", type=int, default=2, help="torch threads (default 2)")
-    parser.add_argument("--model", help="model file (default: starter model, else logcnn-s)")
+    parser.add_argument("--model", help="model file or registry name (default: starter model, else logcnn-s)")
     parser.add_argument("--train-seconds", type=float, default=240, help="training time for the bf16 model")
     args = parser.parse_args(argv)
     parts = args.only or ["speed", "memory", "bf16"]
