@@ -427,6 +427,19 @@ def test_cli_folder_input_and_default_output_name(rng, tmp_path, capsys):
     assert err.count("despeck: warning:") == 1 and "assumed it matches the model's (1)" in err
 
 
+def test_cli_default_model_is_the_starter_model(rng, tmp_path, capsys, monkeypatch):
+    src = _write_tif(tmp_path / "s.tif", _scene(rng, (30, 30)), tags={"LOOKS": "1"})
+    missing = tmp_path / "weights" / "starter.safetensors"
+    monkeypatch.setattr("despeck.cli.apply.starter_model_path", lambda: missing)
+    assert main(["apply", str(src), "--quiet"]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "bundled starter model is not installed" in err[0] and "--model" in err[0]
+    missing.parent.mkdir()
+    _model_file(missing)
+    assert main(["apply", str(src), "--quiet"]) == 0
+    assert (tmp_path / "s_despeckled.tif").exists()
+
+
 def _bad_cases(tmp_path, rng):
     src = _write_tif(tmp_path / "s.tif", _scene(rng, (30, 30)))
     model = _model_file(tmp_path / "m.safetensors")
