@@ -166,7 +166,36 @@ class EpochSampler(Sampler):
         return self.length
 
 
-class PatchDataset(Dataset):
+class EpochPatches(Dataset):
+    """Patch positions drawn so every epoch has the same size, whatever the number of sources.
+
+    Each source has a ``train`` position table (``total`` positions, ``position(k)``).
+    Sample ``(epoch, index)`` picks one position uniformly over all sources' positions
+    from a generator seeded by ``(seed, 1, epoch, index)``, so a sample depends only on
+    those numbers and a resumed run draws exactly what an uninterrupted one would.
+    """
+
+    def __init__(self, sources, config: TrainConfig):
+        self.sources = [s for s in sources if s.train.total > 0]
+        self.cum = np.cumsum([s.train.total for s in self.sources])
+        self.config = config
+        self.length = config.data.patches_per_epoch
+
+    def __len__(self):
+        return self.length
+
+    def draw(self, key):
+        """``(rng, source, row, col)`` for sample ``key`` (an ``(epoch, index)`` pair or an index)."""
+        epoch, index = key if isinstance(key, tuple) else (0, int(key))
+        rng = np.random.default_rng([self.config.trainer.seed, 1, int(epoch), int(index)])
+        k = int(rng.integers(int(self.cum[-1])))
+        f = int(np.searchsorted(self.cum, k, side="right"))
+        source = self.sources[f]
+        r0, c0 = source.train.position(k - (int(self.cum[f - 1]) if f else 0))
+        return rng, source, r0, c0
+
+
+class PatchDataset(EpochPatches):
     """Random speckled training patches; item ``(epoch, index)`` is deterministic.
 
     Each item is a dict of tensors: ``noisy``, ``clean``, ``target`` (clean, or an
@@ -178,22 +207,12 @@ class PatchDataset(Dataset):
     """
 
     def __init__(self, references, config: TrainConfig):
-        self.refs = [r for r in references if r.train.total > 0]
-        self.cum = np.cumsum([r.train.total for r in self.refs])
-        self.config = config
-        self.length = config.data.patches_per_epoch
-
-    def __len__(self):
-        return self.length
+        super().__init__(references, config)
+        self.refs = self.sources
 
     def __getitem__(self, key):
-        epoch, index = key if isinstance(key, tuple) else (0, int(key))
         c = self.config
-        rng = np.random.default_rng([c.trainer.seed, 1, int(epoch), int(index)])
-        k = int(rng.integers(int(self.cum[-1])))
-        f = int(np.searchsorted(self.cum, k, side="right"))
-        ref = self.refs[f]
-        r0, c0 = ref.train.position(k - (int(self.cum[f - 1]) if f else 0))
+        rng, ref, r0, c0 = self.draw(key)
         p = c.data.patch_size
         clean = ref.intensity[r0:r0 + p, c0:c0 + p]
         valid = ref.valid[r0:r0 + p, c0:c0 + p]

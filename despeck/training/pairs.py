@@ -47,7 +47,7 @@ from torch.utils.data import DataLoader, Dataset
 from ..errors import ConfigError, DespeckError, InputError, RasterError
 from ..speckle import enl_intensity, estimate_looks, homogeneous_blocks, split_sublooks
 from .config import TrainConfig
-from .data import EpochSampler, _allowed_positions, _augment, _PositionTable, _worker_init, resolve_raster_paths
+from .data import EpochPatches, EpochSampler, _allowed_positions, _augment, _PositionTable, _worker_init, resolve_raster_paths
 
 __all__ = [
     "change_mask",
@@ -429,7 +429,7 @@ def _crop(src: PairSource, r0, c0, p, i, j):
     return src.views[i][sl], src.views[j][sl], src.valid[sl], src.keep[sl]
 
 
-class PairPatchDataset(Dataset):
+class PairPatchDataset(EpochPatches):
     """Random training patches of pairs; item ``(epoch, index)`` is deterministic.
 
     Each item is a dict of tensors: ``noisy`` (one view), ``target`` (another view of
@@ -440,23 +440,9 @@ class PairPatchDataset(Dataset):
     plus a random jitter of ``offset_jitter`` nepers).
     """
 
-    def __init__(self, sources, config: TrainConfig):
-        self.sources = [s for s in sources if s.train.total > 0]
-        self.cum = np.cumsum([s.train.total for s in self.sources])
-        self.config = config
-        self.length = config.data.patches_per_epoch
-
-    def __len__(self):
-        return self.length
-
     def __getitem__(self, key):
-        epoch, index = key if isinstance(key, tuple) else (0, int(key))
         c = self.config
-        rng = np.random.default_rng([c.trainer.seed, 1, int(epoch), int(index)])
-        k = int(rng.integers(int(self.cum[-1])))
-        f = int(np.searchsorted(self.cum, k, side="right"))
-        src = self.sources[f]
-        r0, c0 = src.train.position(k - (int(self.cum[f - 1]) if f else 0))
+        rng, src, r0, c0 = self.draw(key)
         i, j = (int(v) for v in rng.choice(src.views.shape[0], size=2, replace=False))
         noisy, target, valid, keep = _crop(src, r0, c0, c.data.patch_size, i, j)
         if c.data.augment:
