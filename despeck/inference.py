@@ -543,6 +543,20 @@ def model_mismatch_notes(model, reader) -> list[str]:
     return notes
 
 
+def _gdal_threads(threads):
+    """Let GDAL (de)compress blocks on ``threads`` worker threads, unless the user chose.
+
+    DEFLATE compression of the output otherwise runs on the main thread while the
+    network waits; with worker threads it overlaps the next tiles' computation.
+    """
+    import rasterio
+    from rasterio.env import getenv, hasenv
+
+    if os.environ.get("GDAL_NUM_THREADS") or (hasenv() and "GDAL_NUM_THREADS" in getenv()):
+        return contextlib.nullcontext()
+    return rasterio.Env(GDAL_NUM_THREADS=str(threads))
+
+
 class _BlockWriter:
     """Writes finished rows in whole rows of the output's blocks, a few blocks wide at a time.
 
@@ -649,7 +663,8 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
     _check_model(model)
     check_output_path(out_path, [in_path], overwrite=overwrite)
     # despeck.raster caps GDAL's block cache, so written blocks do not pile up in memory.
-    with open_scene(in_path, units=units) as reader:
+    with _gdal_threads(_positive_int("threads", threads) or _default_threads()), \
+            open_scene(in_path, units=units) as reader:
         for note in model_mismatch_notes(model, reader):
             warnings.warn(note, InferenceWarning, stacklevel=2)
         shape = (reader.height, reader.width)
