@@ -89,6 +89,7 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
     }
     normalisation.update(extra.pop("normalisation", {}) or {})
     normalisation["log_scale"], normalisation["log_bias"] = despeckler.log_scale, despeckler.log_bias
+    normalisation["point_false_alarm"] = despeckler.point_false_alarm
     header = {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
@@ -187,6 +188,7 @@ def load_model_file(path) -> Despeckler:
             looks=header["looks"],
             log_bias=norm.get("log_bias", 0.0),
             log_scale=norm.get("log_scale"),
+            point_false_alarm=norm.get("point_false_alarm"),
         )
     except DespeckError as exc:
         raise ModelFileError(f"{path} describes a model this despeck cannot build: {exc}") from None

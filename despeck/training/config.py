@@ -138,6 +138,9 @@ class ModelConfig:
     name: str = "logcnn-s"
     kwargs: dict = field(default_factory=dict)
     log_scale: float = 2.0
+    #: keep strong isolated scatterers unfiltered in the exported model (false-alarm rate
+    #: of the point test, e.g. 1e-4; null: off); see despeck.models.Despeckler
+    point_false_alarm: Optional[float] = 1e-4
 
 
 @dataclass
@@ -418,6 +421,9 @@ def check_config(config: TrainConfig) -> None:
 
     if config.model.log_scale <= 0:
         _fail("model.log_scale", f"must be positive, got {config.model.log_scale}")
+    pfa = config.model.point_false_alarm
+    if pfa is not None and not 0 < pfa < 1:
+        _fail("model.point_false_alarm", f"must lie in (0, 1) or be null, got {pfa}")
     from ..models import list_models  # torch import deferred until a config is checked
 
     if config.model.name not in list_models():

@@ -410,7 +410,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     network.load_state_dict({k[len(prefix):]: v for k, v in best["state_dict"].items() if k.startswith(prefix)})
     best_metrics = dict(best["despeck"].get("metrics") or {})
     model = Despeckler(network, looks=looks, log_bias=float(best_metrics.get("val_log_bias", 0.0)),
-                       log_scale=config.model.log_scale)
+                       log_scale=config.model.log_scale, point_false_alarm=config.model.point_false_alarm)
     stopped_by = ("time budget" if budget is not None and budget.stopped
                   else "early stopping" if early is not None and early.stopped_epoch
                   else "max_steps" if config.budget.max_steps and trainer.global_step >= config.budget.max_steps

@@ -1,0 +1,101 @@
+"""The bundled starter model: loads safely, keeps mean backscatter, is calibration-independent.
+
+These check the shipped file itself (``despeck/weights/starter.safetensors``), so a
+retrained model that breaks radiometry cannot be shipped unnoticed.
+"""
+
+import math
+import pathlib
+
+import numpy as np
+import pytest
+import rasterio
+import torch
+from rasterio.transform import from_origin
+from scipy import special
+
+from despeck.cli import main
+from despeck.inference import despeckle_array
+from despeck.models import load_model_file
+from despeck.models.modelfile import read_model_metadata
+from despeck.speckle import simulate_intensity
+
+STARTER = pathlib.Path(__file__).resolve().parents[1] / "despeck" / "weights" / "starter.safetensors"
+
+
+@pytest.fixture(scope="module")
+def starter():
+    torch.set_num_threads(2)
+    return load_model_file(STARTER)
+
+
+def test_starter_is_small_and_describes_itself():
+    assert STARTER.stat().st_size < 5 * 1024 * 1024
+    meta = read_model_metadata(STARTER)
+    text = repr(meta)
+    assert "unet-s" in text and "intensity" in text
+    model = load_model_file(STARTER)
+    assert float(model.looks) == 1.0
+
+
+def test_starter_keeps_mean_backscatter_on_a_homogeneous_area(starter):
+    # A constant area of -13 dB under 1-look speckle. Without correction, averaging in the
+    # log domain would be low by psi(1) - ln 1 = -0.5772 nepers = -2.51 dB (scipy's digamma;
+    # Oliver & Quegan 1998); the model must stay within 0.1 dB of the truth. The
+    # sampling error of the mean of 65,536 unit-mean exponential values is 1/256, i.e.
+    # 0.017 dB (1 sigma), so the tolerance is dominated by the model.
+    assert 10 * math.log10(math.exp(special.digamma(1.0))) == pytest.approx(-2.507, abs=1e-3)
+    truth = 10 ** (-1.3)
+    noisy = simulate_intensity(np.full((256, 256), truth, np.float32), 1, rng=np.random.default_rng(3))
+    out = despeckle_array(noisy, starter, progress=False)
+    bias_db = 10 * math.log10(out.astype(np.float64).mean() / truth)
+    assert abs(bias_db) < 0.1
+    # and it does smooth: ENL well above the input's single look
+    inner = out[32:-32, 32:-32].astype(np.float64)
+    assert inner.mean() ** 2 / inner.var() > 20
+
+
+def test_starter_is_calibration_independent(starter):
+    # Scaling the input by 1000 (30 dB) must scale the output by exactly that factor:
+    # the log-domain normalisation subtracts the scene's mean log-intensity.
+    from despeck.synthetic import make_scene
+
+    clean = make_scene((96, 96), rng=4)
+    noisy = simulate_intensity(clean, 1, rng=np.random.default_rng(5))
+    a = despeckle_array(noisy, starter, progress=False)
+    b = despeckle_array(noisy * np.float32(1000), starter, progress=False)
+    np.testing.assert_allclose(b / a, 1000, rtol=2e-4)
+
+
+def test_apply_uses_the_starter_by_default(tmp_path):
+    src = tmp_path / "scene.tif"
+    data = simulate_intensity(np.full((64, 64), 0.05, np.float32), 1, rng=np.random.default_rng(1))
+    with rasterio.open(src, "w", driver="GTiff", width=64, height=64, count=1, dtype="float32",
+                       crs="EPSG:32631", transform=from_origin(500000, 5800000, 10, 10), nodata=0.0) as d:
+        d.write(data, 1)
+    assert main(["apply", str(src), "--out", str(tmp_path / "out.tif"), "--quiet", "--threads", "1"]) == 0
+    with rasterio.open(tmp_path / "out.tif") as d:
+        out = d.read(1)
+        assert d.crs.to_epsg() == 32631
+    assert out.std() < 0.5 * data.std()
+
+
+def test_starter_keeps_an_isolated_point_target(starter):
+    # A point 20 dB above a -15 dB field. The guard passes through pixels above the level
+    # 1-look speckle exceeds with probability 1e-4: gammaincinv(1, 1 - 1e-4) = ln(1e4) = 9.21
+    # (scipy.special; exponential quantile, Goodman 1976). The peak must stay within 3 dB
+    # of the input peak (issue target), while without the guard it is smoothed away.
+    assert starter.point_threshold == pytest.approx(math.log(1e4), rel=1e-9)
+    clean = np.full((128, 128), 10 ** (-1.5), np.float32)
+    clean[64, 64] *= 100.0
+    noisy = simulate_intensity(clean, 1, rng=np.random.default_rng(11))
+    noisy[64, 64] = clean[64, 64]  # the point's own speckle draw set to its mean, for a stable check
+    out = despeckle_array(noisy, starter, progress=False)
+    assert 10 * math.log10(out[64, 64] / noisy[64, 64]) > -3.0
+    guard = starter.point_false_alarm
+    try:
+        starter.point_false_alarm = None
+        smoothed = despeckle_array(noisy, starter, progress=False)
+    finally:
+        starter.point_false_alarm = guard
+    assert 10 * math.log10(smoothed[63:66, 63:66].max() / noisy[64, 64]) < -3.0
