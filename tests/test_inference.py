@@ -33,7 +33,7 @@ from despeck.inference import (
 from despeck.models import Despeckler, create_model, save_model_file
 from despeck.tiling import TileGrid
 
-torch.set_num_threads(2)
+torch.set_num_threads(1)  # one thread: no OpenMP barriers to wait at on a busy machine
 
 
 class IdentityNet(nn.Module):
@@ -88,7 +88,7 @@ def test_conv_model_tiled_equals_whole_scene(rng, tile, overlap, batch_size):
     model = _conv_model()
     x = _scene(rng, (150, 133))
     ref = _whole_scene(model, x)
-    got = despeckle_array(x, model, tile=tile, overlap=overlap, batch_size=batch_size, threads=2, progress=False)
+    got = despeckle_array(x, model, tile=tile, overlap=overlap, batch_size=batch_size, threads=1, progress=False)
     assert got.dtype == np.float32 and got.shape == x.shape
     np.testing.assert_allclose(got, ref, rtol=2e-5, atol=0)
     # The network does something: the check above is not identity against identity.
@@ -102,7 +102,7 @@ def test_conv_model_with_nodata_holes(rng):
     valid[30:50, 10:70] = False
     x[30:40, 10:70] = np.nan
     ref = _whole_scene(model, np.where(valid, x, 0).astype(np.float32), valid)
-    got = despeckle_array(x, model, valid=valid, tile=48, overlap=16, threads=2, progress=False)
+    got = despeckle_array(x, model, valid=valid, tile=48, overlap=16, threads=1, progress=False)
     np.testing.assert_allclose(got[valid], ref[valid], rtol=2e-5)
     # Invalid pixels keep their input value (NaN stays NaN, masked values unchanged).
     np.testing.assert_array_equal(got[~valid], x[~valid])
@@ -145,7 +145,7 @@ def test_unet_tiled_close_to_whole_scene_without_seams(rng):
     # An odd tile and overlap are rounded so every tile keeps the U-Net's pooling grid.
     grid = resolve_tiling(x.shape, model, tile=49, overlap=27)
     assert grid.tile_shape == (48, 48) and grid.overlap == 28 and len(grid) > 25
-    got = despeckle_array(x, model, tile=49, overlap=27, threads=2, progress=False)
+    got = despeckle_array(x, model, tile=49, overlap=27, threads=1, progress=False)
     diff = np.abs(np.log(got.astype(np.float64)) - np.log(ref))
     assert diff.max() < 10 * _FLOAT_NOISE < 1e-3 * effect  # float rounding only
     assert not _boundary_pattern(diff, grid)
@@ -156,7 +156,7 @@ def test_unet_tiled_close_to_whole_scene_without_seams(rng):
         short = resolve_tiling(x.shape, model, tile=64, overlap=16)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", InferenceWarning)
-        seamy = despeckle_array(x, model, tile=64, overlap=16, threads=2, progress=False)
+        seamy = despeckle_array(x, model, tile=64, overlap=16, threads=1, progress=False)
     seam_diff = np.abs(np.log(seamy.astype(np.float64)) - np.log(ref))
     assert seam_diff.mean() < 0.1 * effect  # still close overall
     assert _boundary_pattern(seam_diff, short)
@@ -190,7 +190,7 @@ def test_identity_model_reproduces_scene(rf, rows, cols, tile, overlap_frac, hol
 def test_speed_options_give_the_same_result(rng, monkeypatch):
     model = _conv_model(2)
     x = _scene(rng, (160, 160))
-    base = despeckle_array(x, model, tile=48, overlap=16, threads=2, channels_last=False, progress=False)
+    base = despeckle_array(x, model, tile=48, overlap=16, threads=1, channels_last=False, progress=False)
     monkeypatch.setattr("despeck.inference._TRIAL_MIN_PIXELS", 0)
     for cl in (True, None):  # None: both formats timed on a crop of the first tile, the faster kept
         got = despeckle_array(x, model, tile=48, overlap=16, batch_size=2, threads=1, channels_last=cl,
@@ -295,7 +295,7 @@ def test_file_keeps_georeferencing_nodata_and_matches_array(rng, tmp_path):
     dst = tmp_path / "out" / "scene_clean.tif"
     with warnings.catch_warnings():
         warnings.simplefilter("error", InferenceWarning)  # looks recorded and matching: no warning
-        out = despeckle_file(src, dst, model, tile=40, overlap=16, threads=2, progress=False)
+        out = despeckle_file(src, dst, model, tile=40, overlap=16, threads=1, progress=False)
     assert out == dst and dst.exists()
     with rasterio.open(src) as a, rasterio.open(dst) as b:
         assert (b.crs, b.transform, b.width, b.height, b.count) == (a.crs, a.transform, a.width, a.height, a.count)
