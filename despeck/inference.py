@@ -18,8 +18,12 @@ Despeckler's documented fill -- the scene's log offset, i.e. a normalised value 
 
 Speed settings: torch threads (default all cores available to the process),
 ``torch.inference_mode``, denormals flushed to zero, channels-last memory format only
-when a timing on the first tiles shows it is faster, and optional bfloat16 autocast
-on CPUs with native bf16 instructions.
+when a timing on a crop of the first tile shows it is faster, optional bfloat16
+autocast on CPUs with native bf16 instructions, and GDAL worker threads that
+compress output blocks while the network runs. Files are tiled in short, wide tiles
+whose rows advance by exactly one row of output blocks, so each row of tiles
+completes whole blocks and the buffers hold about one tile height of the scene's
+width.
 """
 
 from __future__ import annotations
