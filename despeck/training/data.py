@@ -320,7 +320,25 @@ def _worker_init(_):
     torch.set_num_threads(1)
 
 
-class TrainingData:
+class PatchLoaders:
+    """Data loaders shared by every kind of training data: one epoch-sized sampler, fixed validation.
+
+    Subclasses set ``config``, ``train_set`` and ``val_set``.
+    """
+
+    def train_dataloader(self) -> DataLoader:
+        d = self.config.data
+        return DataLoader(
+            self.train_set, batch_size=d.batch_size, sampler=EpochSampler(len(self.train_set)),
+            num_workers=d.num_workers, worker_init_fn=_worker_init if d.num_workers else None,
+            persistent_workers=d.num_workers > 0, drop_last=True,
+        )
+
+    def val_dataloader(self) -> DataLoader:
+        return DataLoader(self.val_set, batch_size=self.config.data.batch_size, shuffle=False)
+
+
+class TrainingData(PatchLoaders):
     """All references, the training dataset and the validation set for one config.
 
     Reading and checking happen here, before any training starts: missing files,
@@ -377,17 +395,6 @@ class TrainingData:
             )
         self.train_set = PatchDataset(references, config)
         self.val_set = ValidationSet(references, config)
-
-    def train_dataloader(self) -> DataLoader:
-        d = self.config.data
-        return DataLoader(
-            self.train_set, batch_size=d.batch_size, sampler=EpochSampler(len(self.train_set)),
-            num_workers=d.num_workers, worker_init_fn=_worker_init if d.num_workers else None,
-            persistent_workers=d.num_workers > 0, drop_last=True,
-        )
-
-    def val_dataloader(self) -> DataLoader:
-        return DataLoader(self.val_set, batch_size=self.config.data.batch_size, shuffle=False)
 
     def describe(self) -> dict:
         """JSON-ready description of the training data, for the model file."""

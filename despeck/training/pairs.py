@@ -42,12 +42,12 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 from scipy import ndimage, stats
-from torch.utils.data import DataLoader, Dataset
+from torch.utils.data import Dataset
 
 from ..errors import ConfigError, DespeckError, InputError, RasterError
 from ..speckle import enl_intensity, estimate_looks, homogeneous_blocks, split_sublooks
 from .config import TrainConfig
-from .data import EpochPatches, EpochSampler, _allowed_positions, _augment, _PositionTable, _worker_init, resolve_raster_paths
+from .data import EpochPatches, PatchLoaders, _allowed_positions, _augment, _PositionTable, resolve_raster_paths
 
 __all__ = [
     "change_mask",
@@ -576,7 +576,7 @@ class PairValidationSet(Dataset):
         return {"val_enl": enl, "val_ratio_mean": ratio, "val_bias_db": float(bias), "val_log_bias": float(log_bias)}
 
 
-class PairTrainingData:
+class PairTrainingData(PatchLoaders):
     """Sources, training dataset and validation set for a pair-training config.
 
     Reading and checking happen here, before any training starts: missing or unreadable
@@ -639,17 +639,6 @@ class PairTrainingData:
         looks = np.concatenate([s.looks for s in self.sources])
         lo, hi = float(looks.min()), float(looks.max())
         return round(lo, 4) if hi <= lo * 1.1 else [round(lo, 4), round(hi, 4)]
-
-    def train_dataloader(self) -> DataLoader:
-        d = self.config.data
-        return DataLoader(
-            self.train_set, batch_size=d.batch_size, sampler=EpochSampler(len(self.train_set)),
-            num_workers=d.num_workers, worker_init_fn=_worker_init if d.num_workers else None,
-            persistent_workers=d.num_workers > 0, drop_last=True,
-        )
-
-    def val_dataloader(self) -> DataLoader:
-        return DataLoader(self.val_set, batch_size=self.config.data.batch_size, shuffle=False)
 
     def describe(self) -> dict:
         """JSON-ready description of the training data, for the model file."""
