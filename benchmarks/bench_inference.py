@@ -423,6 +423,8 @@ def main(argv=None):
     name = "bench_inference_quick.json" if args.quick else "bench_inference.json"
     if args.only:
         name = name.replace(".json", "_" + "_".join(parts) + ".json")
+    if args.model:
+        name = name.replace("bench_inference", "bench_inference_" + pathlib.Path(args.model).stem)
     path = OUT_DIR / name
     path.write_text(json.dumps(report, indent=2))
     print(f"wrote {path}")
