@@ -99,3 +99,31 @@ def test_starter_keeps_an_isolated_point_target(starter):
     finally:
         starter.point_false_alarm = guard
     assert 10 * math.log10(smoothed[63:66, 63:66].max() / noisy[64, 64]) < -3.0
+
+
+def _training_references_script():
+    import importlib.util
+
+    path = pathlib.Path(__file__).resolve().parents[1] / "scripts" / "make_training_references.py"
+    spec = importlib.util.spec_from_file_location("make_training_references", path)
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
+def test_held_out_pictures_are_never_trained_on_under_any_name(monkeypatch):
+    # scikit-image (outside the project) ships one photograph as both data.cat() and
+    # data.chelsea(): the held-out evaluation image must not be trained on under its other name.
+    from skimage import data
+
+    np.testing.assert_array_equal(data.cat(), data.chelsea())
+    script = _training_references_script()
+    assert {"camera", "cat", "chelsea"} <= script.held_out_names()
+    assert not script.held_out_names() & set(script.TRAIN_IMAGES)
+    script.check_split()  # the shipped lists pass, including the picture-content comparison
+    with pytest.raises(SystemExit, match="chelsea"):
+        script.check_split(script.TRAIN_IMAGES + ("chelsea",))
+    # the content comparison alone also catches it (no alias listed)
+    monkeypatch.setattr(script, "SAME_PICTURE", {})
+    with pytest.raises(SystemExit, match="same picture"):
+        script.check_split(("astronaut", "chelsea"))
