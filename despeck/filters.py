@@ -393,7 +393,7 @@ def lee(intensity, *, looks, window=None, mask=None, workers=None):
     vanishes when the gain is uncorrelated with ``I - m``; on homogeneous areas the
     gain is small and the mean is preserved to within a few hundredths of a dB (tested).
     No further bias correction is applied. Gain formula restated from memory
-    (METHODS.md section 3).
+    (docs/methods.md, section Classical filters).
 
     References
     ----------
@@ -470,7 +470,7 @@ def enhanced_lee(intensity, *, looks, window=None, mask=None, workers=None, damp
 
     Notes
     -----
-    The class limits and weight are from memory (METHODS.md section 3). On homogeneous
+    The class limits and weight are from memory (docs/methods.md, section Classical filters). On homogeneous
     areas most windows fall in the first class (plain mean, unbiased); no further bias
     correction is applied (mean preservation is tested).
 
@@ -542,7 +542,7 @@ def frost(intensity, *, looks, window=None, mask=None, workers=None, damping=1.0
     -----
     A normalised weighted mean whose weights depend on the window only through
     ``Ci^2``, so it preserves the mean on homogeneous areas without correction
-    (tested). Weight form from memory (METHODS.md section 3).
+    (tested). Weight form from memory (docs/methods.md, section Classical filters).
 
     References
     ----------
@@ -749,8 +749,8 @@ def refined_lee(intensity, *, looks, window=None, mask=None, workers=None, corre
 
     Notes
     -----
-    The mask details and the gradient templates are from memory (METHODS.md
-    section 3). Bias correction: under multiplicative speckle darker sub-means
+    The mask details and the gradient templates are from memory (docs/methods.md,
+    section Classical filters). Bias correction: under multiplicative speckle darker sub-means
     scatter less, so the side closer to the centre is more often the darker one
     and the result comes out low on homogeneous areas (-0.06 dB at L = 1, -0.02 dB
     at L = 4 in our simulations). Comparing ratios instead removes that bias but

@@ -115,7 +115,7 @@ class _LogBoxMean(torch.nn.Module):
 @pytest.mark.parametrize("looks", [1.0, 4.0])
 def test_log_bias_correction_on_constant_scene(looks):
     # Constant reflectivity R with L-look Gamma speckle, a k x k mean in the log domain.
-    # Theory (METHODS.md section 1, checked against scipy): E[ln n] = psi(L) - ln L, so the
+    # Theory (docs/methods.md, section Speckle statistics; scipy): E[ln n] = psi(L) - ln L, so the
     # geometric mean of the uncorrected output is R exp(psi(L) - ln L) and adding
     # log_bias = ln L - psi(L) makes it exactly R. The arithmetic mean of the corrected
     # output is R e^b (E[n^(1/N)])^N with N = k^2 independent pixels and

@@ -114,7 +114,8 @@ def test_patches_skip_nodata_fixed_epoch_and_deterministic(references):
     again = data.train_set[(1, 7)]
     assert torch.equal(again["noisy"], items[7]["noisy"])  # same (epoch, index), same sample
     assert not torch.equal(data.train_set[(2, 7)]["noisy"], items[7]["noisy"])
-    # Speckle is Gamma(L, 1/L): mean 1, variance 1/L (scipy.stats.gamma; METHODS.md section 1).
+    # Speckle is Gamma(L, 1/L): mean 1, variance 1/L (scipy.stats.gamma; Oliver & Quegan 1998,
+    # Understanding Synthetic Aperture Radar Images).
     ratio = torch.cat([(it["noisy"] / it["clean"]).flatten() for it in items]).double().numpy()
     theory = stats.gamma(a=4, scale=1 / 4)
     se = math.sqrt(theory.var() / ratio.size)
@@ -210,7 +211,8 @@ def test_loss_minimisers_and_bias_correction():
         return optimize.minimize_scalar(lambda y: float(f(torch.tensor(y, dtype=torch.float64))),
                                         bounds=(-10, 0), method="bounded", options={"xatol": 1e-8}).x
 
-    # Gamma NLL y + I exp(-y) is minimised at y = ln E[I] (METHODS.md section 5): no correction.
+    # Gamma NLL y + I exp(-y) is minimised at y = ln E[I] (derivative 1 - E[I] e^-y = 0;
+    # docs/methods.md, section Log-domain bias): no correction.
     y_nll = argmin(lambda y: gamma_nll(y, t_noisy))
     assert y_nll == pytest.approx(math.log(noisy.mean()), abs=1e-6)
     # Log-MSE on noisy targets: minimiser mean(ln I) = ln R + psi(L) - ln L (scipy digamma) ...
@@ -271,7 +273,7 @@ def test_tiny_run_learns_and_writes_everything(tiny_run):
 
 def test_trained_model_keeps_mean_on_constant_scene(tiny_run):
     # A constant 1-look scene at a calibration the model never saw (R = 3e-3).
-    # Theory (METHODS.md section 1, scipy digamma): the mean log of L-look speckle is
+    # Theory (docs/methods.md, section Speckle statistics; scipy digamma): the mean log of L-look speckle is
     # psi(L) - ln L = -0.577 at L = 1, i.e. the log-average of the input is 2.5 dB low.
     model = load_model_file(tiny_run / "model.safetensors")
     # The network's own bias correction is checked here; the point-target guard (which

@@ -155,7 +155,7 @@ def _rows(path):
 
 def test_log_target_correction_uses_the_pairs_looks(tmp_path):
     # The mse_log target is the other date's log plus ln L - psi(L) for the target's looks
-    # (METHODS.md section 5): its mean is then ln R, which the uncorrected log misses by
+    # (docs/methods.md, section Log-domain bias): its mean is then ln R, which the uncorrected log misses by
     # psi(L) - ln L (scipy.special). A constant 2-look pair, R = 0.05.
     from despeck.training.losses import log_target
 
@@ -206,8 +206,8 @@ def test_pair_run_lowers_validation_loss(pair_run):
     # No clean reference: no PSNR/SSIM columns; ENL and mean ratio instead.
     assert not any(k.startswith(("val_psnr", "val_ssim")) for k in rows[0])
     best = rows[int(np.argmin(val))]
-    assert float(best["val_enl"]) > 2.0  # 1-look input has ENL 1 (METHODS.md section 2)
-    assert abs(float(best["val_ratio_mean"]) - 1) < 0.15  # ratio image mean ~1 (METHODS.md section 4)
+    assert float(best["val_enl"]) > 2.0  # 1-look input has ENL 1 (Oliver & Quegan 1998); 2: project floor
+    assert abs(float(best["val_ratio_mean"]) - 1) < 0.15  # ratio mean ideally 1 (Gomez et al. 2017); 0.15: project tolerance
 
 
 def test_pair_model_records_training_and_keeps_mean(pair_run, date_pair):

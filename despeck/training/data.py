@@ -144,7 +144,7 @@ def _speckle(clean, looks, *, rng, correlated, oversampling, taper):
 
 
 def log_speckle_mean(looks) -> float:
-    """``psi(L) - ln L``, the mean log of unit-mean L-look speckle (METHODS.md section 1)."""
+    """``psi(L) - ln L``, the mean log of unit-mean L-look speckle (docs/methods.md, section Speckle statistics)."""
     return float(special.digamma(looks) - math.log(looks))
 
 

@@ -96,7 +96,7 @@ def log_target(batch, loss_name: str, target: str):
     t = torch.log(batch["target"].clamp(min=tiny))
     if target == "noisy" and loss_name == "mse_log":
         looks = batch["looks"].to(t.dtype).reshape(-1, 1, 1, 1)
-        # ln L - psi(L): METHODS.md section 5 (Chierchia et al. 2017), per sample.
+        # ln L - psi(L): Chierchia et al. (2017), SAR image despeckling through CNNs; per sample.
         t = t + torch.log(looks) - torch.special.digamma(looks)
     return t
 
