@@ -6,8 +6,15 @@ boxes or a GeoJSON file of polygons in map coordinates; found automatically
 otherwise) and point targets (``(row, col)``; found automatically otherwise). Each
 method is a classical filter with its options or a trained model file. The report
 folder holds ``report.md`` (tables, figures, conventions and cautions),
-``results.csv`` and ``results.json`` with the same numbers, and PNG figures. Runs
-are deterministic except for the timing columns.
+``results.csv`` and ``results.json`` with the same numbers, PNG figures, and the
+marker file :data:`REPORT_MARKER` naming every file despeck wrote there (with its
+size and SHA-256). Runs are deterministic except for the timing columns.
+
+The report is written to a hidden temporary folder beside the destination and
+renamed into place only when complete. An existing destination is replaced only
+when asked (``overwrite``) and only when it is a report despeck wrote: it must hold
+the marker and nothing but the unchanged files the marker names, no input of the run,
+and must not be (or contain) the current directory.
 
 Scene list files (YAML or JSON, paths relative to the file)::
 
@@ -31,6 +38,7 @@ options), ``model:PATH`` or a path ending in ``.safetensors`` for a model file.
 from __future__ import annotations
 
 import csv
+import hashlib
 import json
 import math
 import os
@@ -38,22 +46,30 @@ import pathlib
 import shutil
 import tempfile
 import time
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import filters, metrics
+from . import bm3d_log, filters, metrics
 from .atomic import publish
-from .errors import ConfigError, InputError, RasterError
+from .errors import ConfigError, DespeckError, InputError, RasterError
 from .speckle import check_looks, estimate_looks
 
-__all__ = ["BenchScene", "Method", "parse_method", "load_scene_list", "run_benchmark", "DEFAULT_METHODS", "CAUTIONS"]
+__all__ = ["BenchScene", "Method", "parse_method", "load_scene_list", "run_benchmark", "DEFAULT_METHODS", "CAUTIONS",
+           "REPORT_MARKER"]
 
-#: Methods run when none are given: every classical filter with its default window.
-DEFAULT_METHODS = tuple(filters.FILTERS)
+#: Methods run when none are given: every classical filter with its default window
+#: (bm3d-log only when its optional package is installed).
+DEFAULT_METHODS = tuple(n for n in filters.FILTERS if n != "bm3d-log" or bm3d_log.available())
 
 #: Side of the crops shown in the figures (pixels).
 CROP_SIZE = 256
+
+#: File written in every report folder: JSON naming the files despeck wrote there, so
+#: that ``overwrite`` replaces only a report despeck made and never anything else.
+REPORT_MARKER = ".despeck-report.json"
+_MARKER_FORMAT = "despeck bench report"
 
 CAUTIONS = (
     "Speckle filters and learned despecklers can suppress small or weak targets (ships, "
@@ -81,7 +97,8 @@ _COLUMNS = (
     ("psnr_amplitude", "PSNR amplitude", "{:.2f}"),
     ("ssim_amplitude", "SSIM amplitude", "{:.3f}"),
     ("mae_db", "MAE dB", "{:.2f}"),
-    ("point_retention_db", "points dB", "{:+.1f}"),
+    ("point_retention_db", "points median dB", "{:+.1f}"),
+    ("point_worst_db", "worst point dB", "{:+.1f}"),
     ("seconds", "seconds", "{:.2f}"),
     ("mp_per_s", "MP/s", "{:.2f}"),
 )
@@ -191,7 +208,7 @@ class BenchScene:
     looks : float, optional
         Number of looks; estimated from the scene if not given.
     areas : list of boxes, path to a GeoJSON file, or None
-        Homogeneous areas; found automatically if None.
+        Homogeneous areas; found automatically if None, none if an empty list.
     points : list of (row, col), or None
         Point targets; found automatically if None.
     units : str, optional
@@ -257,8 +274,20 @@ def load_scene_list(path):
             looks=item.get("looks"), areas=areas, points=item.get("points"), units=item.get("units"),
             reference_units=item.get("reference_units"),
         ))
-    methods = [parse_method(m, base) for m in (data.get("methods") or [])]
+    methods = []
+    for i, m in enumerate(data.get("methods") or []):
+        try:
+            methods.append(parse_method(m, base))
+        except InputError as exc:
+            raise ConfigError(f"{path}: method {i + 1}: {exc}") from None
     crop = data.get("crop")
+    if crop is not None:
+        try:
+            crop = [int(v) for v in crop]
+            if len(crop) != 3:
+                raise TypeError
+        except (TypeError, ValueError):
+            raise ConfigError(f"{path}: crop must be [row, col, size], got {data.get('crop')!r}") from None
     return scenes, methods, crop
 
 
@@ -276,6 +305,7 @@ class _Loaded:
     points: list
     points_source: str
     source: str
+    where: str = ""  # how errors name the scene: its image file, else "scene NAME"
 
 
 def _read(path, units, what):
@@ -293,8 +323,31 @@ def _same_grid(a, b) -> bool:
     return bool(np.allclose(tuple(a.transform)[:6], tuple(b.transform)[:6], rtol=0, atol=1e-9 * max(1.0, abs(a.transform.a))))
 
 
+def _scene_where(scene: BenchScene, index: int) -> str:
+    if isinstance(scene.image, (str, os.PathLike)):
+        return str(scene.image)
+    return f"scene {scene.name!r}" if scene.name else f"scene {index + 1}"
+
+
+def _named(exc: DespeckError, where: str, *also) -> DespeckError:
+    """``exc`` itself if its message names ``where`` (or one of ``also``), else the same error prefixed with it."""
+    msg = str(exc)
+    if any(str(w) in msg for w in (where, *also) if w):
+        return exc
+    return type(exc)(f"{where}: {msg}")
+
+
 def _load_scene(scene: BenchScene, index: int) -> _Loaded:
-    """Read and check one scene; every bad input is reported here, before any output."""
+    """Read and check one scene; every bad input is reported here, naming its file, before any output."""
+    where = _scene_where(scene, index)
+    files = [p for p in (scene.reference, scene.areas) if isinstance(p, (str, os.PathLike))]
+    try:
+        return _load_scene_checked(scene, index, where)
+    except DespeckError as exc:
+        raise _named(exc, where, *files) from None
+
+
+def _load_scene_checked(scene: BenchScene, index: int, where: str) -> _Loaded:
     transform = crs = None
     if isinstance(scene.image, (str, os.PathLike)):
         s = _read(scene.image, scene.units, "image")
@@ -322,38 +375,43 @@ def _load_scene(scene: BenchScene, index: int) -> _Loaded:
         else:
             reference = np.asarray(scene.reference, dtype=np.float32)
             if reference.shape != intensity.shape:
-                raise InputError(f"{name}: reference of shape {reference.shape} does not match the image {intensity.shape}")
+                raise InputError(f"{where}: reference of shape {reference.shape} does not match the image {intensity.shape}")
             valid = valid & np.isfinite(reference) & (reference > 0)
     if scene.looks is not None:
-        looks, looks_source = check_looks(scene.looks, f"{name}: looks"), "given"
+        looks, looks_source = check_looks(scene.looks, f"{where}: looks"), "given"
     else:
         try:
             looks = estimate_looks(intensity, valid)
         except InputError as exc:
-            raise InputError(f"{name}: cannot estimate the number of looks ({exc}); give looks") from None
+            raise InputError(f"{where}: cannot estimate the number of looks ({exc}); give looks") from None
         if not math.isfinite(looks):
-            raise InputError(f"{name}: cannot estimate the number of looks (constant scene); give looks")
+            raise InputError(f"{where}: cannot estimate the number of looks (constant scene); give looks")
         looks_source = "estimated"
     if scene.areas is None:
-        areas = metrics.find_homogeneous_areas(intensity, looks, valid=valid)
+        try:
+            areas = metrics.find_homogeneous_areas(intensity, looks, valid=valid)
+        except InputError as exc:
+            raise InputError(f"{where}: cannot look for homogeneous areas ({exc})") from None
         areas_source = "found automatically (15 x 15 boxes, 5 % false-alarm rate)"
         masks = metrics.check_areas(areas, intensity.shape, valid) if areas else []
     elif isinstance(scene.areas, (str, os.PathLike)):
         masks = metrics.areas_from_vector(scene.areas, transform, intensity.shape, crs=crs)
         masks = metrics.check_areas(masks, intensity.shape, valid, source=f"{scene.areas}: polygon")
         areas, areas_source = [], f"polygons from {pathlib.Path(scene.areas).name}"
+    elif _all_boxes(scene.areas, where) and len(scene.areas) == 0:
+        areas, masks, areas_source = [], [], "none given"
     else:
-        areas = [tuple(int(v) for v in a) for a in scene.areas] if _all_boxes(scene.areas, name) else []
-        masks = metrics.check_areas(areas, intensity.shape, valid, source=f"{name}: area")
+        areas = [tuple(int(v) for v in a) for a in scene.areas]
+        masks = metrics.check_areas(areas, intensity.shape, valid, source=f"{where}: area")
         areas_source = "given boxes"
     if scene.points is None:
         points = metrics.find_point_targets(intensity, looks, valid=valid)
         points_source = "found automatically (false-alarm rate 1e-6)"
     else:
-        points = _check_points(scene.points, intensity.shape, name)
+        points = _check_points(scene.points, intensity.shape, where)
         points_source = "given"
     return _Loaded(name, intensity, valid, reference, looks, looks_source, areas, masks, areas_source, points,
-                   points_source, source)
+                   points_source, source, where)
 
 
 def _all_boxes(areas, name) -> bool:
@@ -433,6 +491,7 @@ def _measure(scene: _Loaded, out, seconds, label, kind):
     if scene.points:
         ret = metrics.point_retention_db(I, out, scene.points)
         row["point_retention_db"] = float(np.median(ret))
+        row["point_worst_db"] = float(np.min(ret))
     if seconds is not None:
         row["seconds"] = float(seconds)
         row["mp_per_s"] = metrics.throughput_mps(I.size, seconds)
@@ -469,8 +528,9 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
     """
     from tqdm.auto import tqdm
 
-    list_methods, list_crop = [], None
+    list_methods, list_crop, inputs = [], None, []
     if isinstance(scenes, (str, os.PathLike)) and pathlib.Path(scenes).suffix.lower() in (".yaml", ".yml", ".json"):
+        inputs.append(pathlib.Path(scenes))
         scenes, list_methods, list_crop = load_scene_list(scenes)
     elif isinstance(scenes, (BenchScene, str, os.PathLike)):
         scenes = [scenes]
@@ -486,14 +546,9 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
         raise InputError(f"method {dup!r} is listed twice")
     crop = crop if crop is not None else list_crop
     out_dir = pathlib.Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
-        raise InputError(f"{out_dir}: exists and is not a folder")
-    if out_dir.exists() and not overwrite:
-        raise InputError(f"{out_dir}: report folder already exists; choose another or allow overwriting")
-    for s in scenes:
-        for p in (s.image, s.reference):
-            if isinstance(p, (str, os.PathLike)) and pathlib.Path(p).resolve() == out_dir.resolve():
-                raise InputError(f"{out_dir}: the report folder cannot be an input")
+    inputs += [pathlib.Path(p) for s in scenes for p in (s.image, s.reference, s.areas) if isinstance(p, (str, os.PathLike))]
+    inputs += [m.path for m in methods if m.kind == "model"]
+    _check_out_dir(out_dir, inputs, overwrite)
 
     # Check everything that can be wrong before computing or writing anything.
     models = {}
@@ -505,11 +560,16 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
     loaded = [_load_scene(s, i) for i, s in enumerate(scenes)]
     names = [s.name for s in loaded]
     if len(set(names)) != len(names):
-        raise InputError(f"two scenes are called {next(n for n in names if names.count(n) > 1)!r}; give them names")
-    crops = [_crop_box(s.intensity.shape, crop, s.name) for s in loaded]
+        dup = next(n for n in names if names.count(n) > 1)
+        both = " and ".join(s.where for s in loaded if s.name == dup)
+        raise InputError(f"{both} are both called {dup!r}; give the scenes distinct names")
+    crops = [_crop_box(s.intensity.shape, crop, s.where) for s in loaded]
 
-    out_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = pathlib.Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", dir=out_dir.parent))
+    try:
+        out_dir.parent.mkdir(parents=True, exist_ok=True)
+        tmp = pathlib.Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.", dir=out_dir.parent))
+    except OSError as exc:
+        raise InputError(f"{out_dir}: cannot create the report folder there ({exc.strerror or exc})") from None
     try:
         rows, scene_info = [], []
         bar = tqdm(total=len(loaded) * len(methods), desc="bench", unit="run", disable=not progress)
@@ -518,9 +578,12 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
             rows.append(_measure(scene, scene.intensity, None, _INPUT_LABEL, "input"))
             for m in methods:
                 bar.set_postfix_str(f"{scene.name}: {m.label}")
-                out, seconds = _run_method(m, scene, models, workers)
-                outputs[m.label] = out
-                rows.append(_measure(scene, out, seconds, m.label, m.kind))
+                try:
+                    out, seconds = _run_method(m, scene, models, workers)
+                    outputs[m.label] = out
+                    rows.append(_measure(scene, out, seconds, m.label, m.kind))
+                except DespeckError as exc:
+                    raise _named(exc, f"{scene.where}: method {m.label!r}") from None
                 bar.update(1)
             figures = _figures(tmp, si, scene, outputs, box, [r for r in rows if r["scene"] == scene.name])
             scene_info.append({
@@ -538,15 +601,12 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
         _write_json(tmp / "results.json", result)
         _write_csv(tmp / "results.csv", rows)
         _write_report(tmp / "report.md", result)
-        if out_dir.exists():
-            old = pathlib.Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.old.", dir=out_dir.parent))
-            os.replace(out_dir, old / "previous")
-            publish(tmp, out_dir)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            publish(tmp, out_dir)
-    except BaseException:
+        _write_marker(tmp)
+        _swap_in(tmp, out_dir, inputs, overwrite)
+    except BaseException as exc:
         shutil.rmtree(tmp, ignore_errors=True)
+        if isinstance(exc, OSError) and not isinstance(exc, DespeckError):
+            raise InputError(f"{out_dir}: cannot write the report ({exc.strerror or exc}); nothing was changed there") from None
         raise
     result["report"] = str(out_dir / "report.md")
     return result
@@ -567,7 +627,7 @@ def _crop_box(shape, crop, name):
     try:
         r, c, size = (int(v) for v in crop)
     except (TypeError, ValueError):
-        raise InputError(f"crop must be (row, col, size), got {crop!r}") from None
+        raise InputError(f"{name}: crop must be (row, col, size), got {crop!r}") from None
     if size < 8 or r < 0 or c < 0 or r + size > h or c + size > w:
         raise InputError(f"{name}: crop {(r, c, size)} does not fit the {h} x {w} scene (size >= 8)")
     return (r, c, size)
@@ -579,7 +639,12 @@ def _conventions():
         "bias_db": "10 log10(mean filtered / mean input) over all homogeneous areas together; ideal 0",
         "ratio": "ratio image = input / filtered; mean over valid pixels (ideal 1); ENL median over the areas divided by the scene's looks (ideal 1)",
         "m": "unassisted M of Gomez et al. (2017), formula from memory: 1/2 sum over areas of relative ENL and mean deviations of the ratio image, plus 100 |h0 - h_shuffled| / h0 of its co-occurrence homogeneity (16 equally populated levels, 10 seeded shuffles); 0 ideal",
-        "epd_roa": "Feng et al. (2011), horizontal and vertical, against the clean reference when there is one, else against the noisy input; ideal 1",
+        "epd_roa": (f"robust variant of EPD-ROA (Feng, Hou, Gong 2011, IEEE TGRS 49(7) 2724-2737): ratios of the means of "
+                    f"adjacent non-overlapping {metrics.EPD_WINDOW} x {metrics.EPD_WINDOW} windows instead of single "
+                    "pixels (the pixel ratio of 1-look speckle has no finite mean, so a few pixels dominated the "
+                    "original form), horizontal and vertical, against the clean reference when there is one, else "
+                    "against the noisy input; ideal 1; pure 1-look speckle against its constant reflectivity scores "
+                    "9/8; not comparable with values published for the pixel form"),
         "edge_corr": "correlation of 4-neighbour Laplacians of reference and estimate (Sattar et al. 1997); ideal 1",
         "psnr_db": "PSNR of 10 log10 intensity, both clipped to the reference's 1st-99.9th percentile range, peak = that range (dB)",
         "ssim_db": "SSIM (7 x 7 uniform window, K1 0.01, K2 0.03) on the same clipped dB images and range",
@@ -587,8 +652,121 @@ def _conventions():
         "ssim_amplitude": "SSIM on the same clipped amplitudes",
         "mae_db": "mean |dB(filtered) - dB(reference)|, unclipped",
         "point_retention_db": "median over point targets of 10 log10(peak after / peak before) in a 3 x 3 neighbourhood; 0 dB = kept",
+        "point_worst_db": "the same for the worst point target (the minimum): one target lost shows here even when the median is 0 dB",
         "timing": "wall-clock seconds of the method call on this machine; MP/s = pixels / seconds / 1e6; the only columns that change between runs",
     }
+
+
+# --------------------------------------------------------------------------- the report folder
+
+def _sha256(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def _write_marker(folder: pathlib.Path):
+    """Flush every file of the finished report to disk and list it, with size and SHA-256, in the marker."""
+    files = {}
+    for path in sorted(folder.iterdir()):
+        with open(path, "rb") as fh:
+            os.fsync(fh.fileno())
+        files[path.name] = {"bytes": path.stat().st_size, "sha256": _sha256(path)}
+    json.loads((folder / "results.json").read_text())  # the numbers read back
+    marker = folder / REPORT_MARKER
+    with open(marker, "w") as fh:
+        json.dump({"format": _MARKER_FORMAT, "version": 1, "files": files}, fh, indent=1)
+        fh.write("\n")
+        fh.flush()
+        os.fsync(fh.fileno())
+
+
+def _check_out_dir(out_dir: pathlib.Path, inputs, overwrite: bool):
+    """Refuse a report folder whose replacement could lose anything; see the module docstring.
+
+    Returns the names of the entries of an existing report folder (all written by
+    despeck and unchanged), or None when the folder does not exist yet.
+    """
+    target = out_dir.resolve()
+    for p in inputs:
+        q = pathlib.Path(p).resolve()
+        if q == target or target in q.parents:
+            what = "is" if q == target else "holds"
+            raise InputError(f"{out_dir}: the report folder {what} an input of the run ({p}); choose another folder")
+    if not (out_dir.exists() or out_dir.is_symlink()):
+        return None
+    if not out_dir.is_dir():
+        raise InputError(f"{out_dir}: exists and is not a folder")
+    if not overwrite:
+        raise InputError(f"{out_dir}: report folder already exists; choose another or allow overwriting "
+                         "(which replaces only a report despeck wrote)")
+    if out_dir.is_symlink():
+        raise InputError(f"{out_dir}: is a symbolic link; give the folder itself")
+    cwd = pathlib.Path.cwd().resolve()
+    if target == cwd or target in cwd.parents:
+        what = "the current directory" if target == cwd else "a parent of the current directory"
+        raise InputError(f"{out_dir}: is {what}, which despeck never replaces; choose another folder")
+    return _own_entries(out_dir)
+
+
+def _own_entries(out_dir: pathlib.Path):
+    """Names in ``out_dir`` if every one is a file despeck wrote and nobody changed; else an error naming one."""
+    names = sorted(os.listdir(out_dir))
+    if not names:
+        return []
+    marker = out_dir / REPORT_MARKER
+    if marker.is_symlink() or not marker.is_file():
+        raise InputError(f"{out_dir}: not a report despeck wrote (no {REPORT_MARKER}), so it is not replaced; "
+                         "choose another folder")
+    try:
+        data = json.loads(marker.read_text())
+        files = data["files"]
+        if data.get("format") != _MARKER_FORMAT or not isinstance(files, dict):
+            raise ValueError
+    except (OSError, ValueError, KeyError, TypeError, AttributeError):
+        raise InputError(f"{marker}: not a valid despeck report marker, so {out_dir} is not replaced; "
+                         "choose another folder") from None
+    for name in names:
+        if name == REPORT_MARKER:
+            continue
+        path = out_dir / name
+        info = files.get(name)
+        if not isinstance(info, dict):
+            raise InputError(f"{out_dir}: holds {name}, which despeck did not write, so the folder is not replaced; "
+                             "move it away or choose another folder")
+        if path.is_symlink() or not path.is_file():
+            raise InputError(f"{path}: is no longer the file despeck wrote (a link or a folder), so {out_dir} is "
+                             "not replaced; move it away or choose another folder")
+        if path.stat().st_size != info.get("bytes") or _sha256(path) != info.get("sha256"):
+            raise InputError(f"{path}: changed since despeck wrote it, so {out_dir} is not replaced; "
+                             "move it away or choose another folder")
+    return names
+
+
+def _swap_in(tmp: pathlib.Path, out_dir: pathlib.Path, inputs, overwrite: bool):
+    """Rename the finished report ``tmp`` to ``out_dir``, replacing only what despeck wrote there before."""
+    previous = _check_out_dir(out_dir, inputs, overwrite)  # again: the folder may have changed during the run
+    if previous is None:
+        publish(tmp, out_dir)
+        return
+    old = pathlib.Path(tempfile.mkdtemp(prefix=f".{out_dir.name}.old.", dir=out_dir.parent))
+    os.replace(out_dir, old / "previous")
+    try:
+        publish(tmp, out_dir)
+    except BaseException:
+        os.replace(old / "previous", out_dir)
+        old.rmdir()
+        raise
+    for name in previous:
+        (old / "previous" / name).unlink(missing_ok=True)
+    try:
+        (old / "previous").rmdir()
+        old.rmdir()
+    except OSError:
+        warnings.warn(f"{out_dir}: files added to the old report while it was replaced are kept in {old / 'previous'}",
+                      stacklevel=3)
 
 
 # --------------------------------------------------------------------------- writing

@@ -29,7 +29,9 @@ def add_arguments(parser):
                              "(default: the list's methods, else every classical filter)")
     parser.add_argument("--crop", metavar="ROW,COL,SIZE", help="crop shown in the figures (default: centred 256)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar or summary")
-    parser.add_argument("--overwrite", action="store_true", help="replace an existing report folder")
+    parser.add_argument("--overwrite", action="store_true",
+                        help="replace a report folder despeck wrote earlier (refused if it holds an input, any other "
+                             "file, or the current directory)")
 
 
 def _ints(text, count, option):
