@@ -89,6 +89,7 @@ SPLITS = ("train", "test")
 
 NOISE_FLOOR_DB = -28.0  # noise-equivalent sigma nought, C-band common practice
 _MIN_BOX = 16
+_TERRAIN_PAD = 0.4  # margin per unit of max(h, w) * tan(rms slope) * cot(incidence)
 _POINT_GAIN_DB = (15.0, 25.0)
 
 # Parameter ranges per family and split: each a list of (low, high) intervals. Train and
@@ -96,8 +97,8 @@ _POINT_GAIN_DB = (15.0, 25.0)
 _INCIDENCE = {"train": [(30.0, 45.0)], "test": [(22.0, 29.0)]}
 _RANGES: dict[str, dict[str, dict[str, list]]] = {
     "terrain": {
-        "train": {"incidence_deg": _INCIDENCE["train"], "relief_px": [(2.0, 7.0)], "beta": [(3.0, 3.5)]},
-        "test": {"incidence_deg": _INCIDENCE["test"], "relief_px": [(7.5, 11.0)], "beta": [(3.6, 4.0)]},
+        "train": {"incidence_deg": _INCIDENCE["train"], "rms_slope_deg": [(8.0, 20.0)], "beta": [(3.7, 4.3)]},
+        "test": {"incidence_deg": _INCIDENCE["test"], "rms_slope_deg": [(21.0, 28.0)], "beta": [(4.4, 4.8)]},
     },
     "forest": {
         "train": {"incidence_deg": _INCIDENCE["train"], "texture_looks": [(2.0, 6.0)],
@@ -215,6 +216,15 @@ def _smooth(shape, sigma, rng, sigma_cols=None):
     )
 
 
+def _smooth_coarse(shape, sigma, rng, factor=4):
+    """Like _smooth for large sigma, drawn on a grid `factor` times coarser and upsampled."""
+    h, w = shape
+    hc, wc = -(-h // factor) + 1, -(-w // factor) + 1
+    g = _smooth((hc, wc), sigma / factor, rng)
+    out = ndimage.zoom(g, factor, order=1, prefilter=False)[:h, :w]
+    return (out - out.mean()) / (out.std() + 1e-12)
+
+
 def fractal_surface(shape, beta: float, *, rng):
     """Fractal (fractional Brownian) surface by spectral synthesis.
 
@@ -272,8 +282,21 @@ def gamma_texture(shape, looks: float, corr_px: float = 1.0, *, rng):
     g = _smooth(shape, corr_px, rng) if corr_px > 0 else rng.standard_normal(shape)
     if corr_px <= 0:
         g = (g - g.mean()) / (g.std() + 1e-12)
+    return _gamma_map(g, looks)
+
+
+def _gamma_map(g, looks):
+    """Map a standard normal field to unit-mean Gamma(looks) values (quantile transform)."""
     table = special.gammaincinv(looks, special.ndtr(_GAMMA_GRID)) / looks
-    return np.interp(g, _GAMMA_GRID, table)
+    return _uniform_interp(g, _GAMMA_GRID[0], _GAMMA_GRID[1] - _GAMMA_GRID[0], table)
+
+
+def _uniform_interp(x, x0, dx, table):
+    """np.interp for a uniform grid x0 + dx * i (clamped at both ends), without searching."""
+    t = np.clip((x - x0) / dx, 0.0, table.size - 1.000001)
+    i = t.astype(np.int64)
+    f = t - i
+    return table[i] + f * (table[i + 1] - table[i])
 
 
 def muhleman_backscatter(theta):
@@ -293,8 +316,11 @@ def muhleman_backscatter(theta):
     return 0.0118 * c / (s + 0.111 * c) ** 3
 
 
-def _voronoi(shape, scale, rng, warp=0.08):
-    """Voronoi cells of typical size `scale` with gently warped boundaries (int labels)."""
+def _voronoi(shape, scale, rng, warp=0.08, mask=None):
+    """Voronoi cells of typical size `scale` with gently warped boundaries (int labels).
+
+    With ``mask`` only the pixels inside it are labelled (the rest get label 0).
+    """
     h, w = shape
     n = max(4, int(h * w / scale**2))
     seeds = rng.uniform(0, 1, size=(n, 2)) * (h, w)
@@ -302,8 +328,47 @@ def _voronoi(shape, scale, rng, warp=0.08):
     if warp > 0:
         rows += warp * scale * _smooth(shape, scale / 4, rng)
         cols += warp * scale * _smooth(shape, scale / 4, rng)
-    _, labels = spatial.cKDTree(seeds).query(np.stack([rows.ravel(), cols.ravel()], axis=1), workers=1)
-    return labels.reshape(shape).astype(np.int64), n
+    tree = spatial.cKDTree(seeds)
+    if mask is None:
+        _, labels = tree.query(np.stack([rows.ravel(), cols.ravel()], axis=1), workers=1)
+        return labels.reshape(shape).astype(np.int64), n
+    out = np.zeros(shape, dtype=np.int64)
+    if mask.any():
+        _, out[mask] = tree.query(np.stack([rows[mask], cols[mask]], axis=1), workers=1)
+    return out, n
+
+
+def _zones(shape, n_zones, rng, wobble=12.0):
+    """Partition into about n_zones rectangles (recursive splits) with wavy borders.
+
+    Returns (labels, list of (row_slice, col_slice) bounding boxes). Zones are close to
+    rectangles, so rendering each zone on its bounding box costs little more than the
+    scene itself.
+    """
+    h, w = shape
+    rects = [(0.0, 0.0, float(h), float(w))]
+    while len(rects) < n_zones:
+        rects.sort(key=lambda t: (t[2] - t[0]) * (t[3] - t[1]))
+        r0, c0, r1, c1 = rects.pop()
+        f = rng.uniform(0.35, 0.65)
+        if (r1 - r0) > (c1 - c0):
+            m = r0 + f * (r1 - r0)
+            rects += [(r0, c0, m, c1), (m, c0, r1, c1)]
+        else:
+            m = c0 + f * (c1 - c0)
+            rects += [(r0, c0, r1, m), (r0, m, r1, c1)]
+    dr = wobble * _smooth((1, w), 30.0, rng)[0]  # row offset as a function of column
+    dc = wobble * _smooth((h, 1), 30.0, rng)[:, 0]
+    rr = np.clip(np.arange(h)[:, None] + dr[None, :], 0.0, h - 1e-6)
+    cc = np.clip(np.arange(w)[None, :] + dc[:, None], 0.0, w - 1e-6)
+    labels = np.zeros(shape, dtype=np.int64)
+    boxes = []
+    for k, (r0, c0, r1, c1) in enumerate(rects):
+        labels[(rr >= r0) & (rr < r1) & (cc >= c0) & (cc < c1)] = k
+    for k, sl in enumerate(ndimage.find_objects(labels + 1)):
+        if sl is not None:
+            boxes.append((k, sl))
+    return labels, boxes
 
 
 def _grid_parcels(shape, scale, angle_deg, rng):
@@ -455,7 +520,8 @@ def _parcel_cover(shape, labels, n, rng, row_period, weights=None, row_dir=None)
     rows_k = names.index("rowcrop")
     is_rows = (cls == rows_k)[labels]
     if is_rows.any():
-        r, c = np.mgrid[0:h, 0:w].astype(np.float64)
+        r, c = np.nonzero(is_rows)
+        lab = labels[r, c]
         if row_dir is None:
             phi = rng.uniform(0, np.pi, n)
         else:
@@ -464,9 +530,8 @@ def _parcel_cover(shape, labels, n, rng, row_period, weights=None, row_dir=None)
         amp = rng.uniform(0.25, 0.5, n)
         # rows perpendicular to the look direction (columns) return more (Bragg-like)
         amp = amp * (0.6 + 0.4 * np.abs(np.sin(phi)))
-        ph = 2 * np.pi * (r * np.cos(phi[labels]) + c * np.sin(phi[labels])) / period[labels]
-        mod = 1.0 + amp[labels] * np.sin(ph)
-        scene = np.where(is_rows, scene * mod, scene)
+        ph = 2 * np.pi * (r * np.cos(phi[lab]) + c * np.sin(phi[lab])) / period[lab]
+        scene[r, c] *= 1.0 + amp[lab] * np.sin(ph)
     mead_k = names.index("meadow")
     is_mead = (cls == mead_k)[labels]
     if is_mead.any():
@@ -481,10 +546,18 @@ def _terrain(shape, p, rng):
     h, w = shape
     theta = np.deg2rad(p["incidence_deg"])
     cot = 1.0 / np.tan(theta)
-    relief = p["relief_px"]
-    pad = int(np.ceil(4.5 * relief * cot)) + 4
-    wg = w + 2 * pad
-    z0 = fractal_surface((h, wg), p["beta"], rng=rng) * relief
+    # elevation: a fractal surface made peaky (exp) so valleys are broad and summits
+    # steep, scaled to the requested rms slope (pixel units: 1 = one ground pixel)
+    # extra columns on both sides for the range shifts z cot(theta); the elevation range
+    # grows with the rms slope (and the domain), so the margin follows them
+    tan_s = np.tan(np.deg2rad(p["rms_slope_deg"]))
+    coef = _TERRAIN_PAD + 0.5 * max(p["beta"] - 4.0, 0.0)
+    pad = int(np.ceil(coef * max(h, w) * tan_s * cot)) + 8
+    wg0 = w + 2 * pad
+    f = fractal_surface((h, wg0), p["beta"], rng=rng)
+    z0 = np.exp(rng.uniform(0.4, 1.1) * f)
+    gy, gx = np.gradient(z0)
+    z0 *= tan_s / np.sqrt(np.mean(gx**2 + gy**2) / 2)
     # flat valley floors (fields) with lakes in the deepest parts
     q_floor, q_lake = rng.uniform(0.15, 0.35), rng.uniform(0.0, 0.1)
     floor, lake_level = np.quantile(z0, [q_floor, q_lake])
@@ -492,22 +565,29 @@ def _terrain(shape, p, rng):
     on_floor = z0 <= floor
     lake = z0 < lake_level
     z = z - 0.5 * (z.max() + z.min())
+    # keep the range shifts +-z cot(theta) inside the extra columns: rare high summits
+    # are compressed smoothly above 80 % of the margin (no flat plateaus)
     zlim = (pad - 2) / cot
-    z = np.clip(z, -zlim, zlim)
+    knee = 0.8 * zlim
+    over = np.abs(z) > knee
+    if over.any():
+        z = np.where(over, np.sign(z) * (knee + (zlim - knee) * np.tanh((np.abs(z) - knee) / (zlim - knee))), z)
+    wg = wg0
 
     zy, zx = np.gradient(z)
     cos_loc = (zx * np.sin(theta) + np.cos(theta)) / np.sqrt(1.0 + zx**2 + zy**2)
     ratio = muhleman_backscatter(np.arccos(np.clip(cos_loc, -1, 1))) / muhleman_backscatter(theta)
     # land cover on the slopes: forest and grass patches, both textured
-    forest = _smooth((h, wg), 25.0, rng) > rng.uniform(-0.5, 0.5)
+    forest = _smooth_coarse((h, wg), 25.0, rng) > rng.uniform(-0.5, 0.5)
     cover_db = np.where(forest, rng.uniform(-8.0, -6.0), rng.uniform(-12.0, -9.5))
-    cover_db = cover_db + 1.0 * _smooth((h, wg), 8.0, rng)
-    veg = np.where(forest, gamma_texture((h, wg), rng.uniform(3, 6), 1.2, rng=rng),
-                   gamma_texture((h, wg), rng.uniform(8, 15), 1.0, rng=rng))
+    cover_db = cover_db + 1.0 * _smooth_coarse((h, wg), 8.0, rng, factor=2)
+    # one correlated Gaussian field, two Gamma marginals (woods: few looks, grass: many)
+    g = _smooth((h, wg), 1.1, rng)
+    veg = np.where(forest, _gamma_map(g, rng.uniform(3, 6)), _gamma_map(g, rng.uniform(8, 15)))
     ground = _lin(cover_db) * veg * ratio
     # valley floor: untextured parcels, flat so the incidence is nominal everywhere
-    labels, n = _voronoi((h, wg), rng.uniform(30, 70), rng, warp=0.0)
-    floor_scene = _parcel_cover((h, wg), labels, n, rng, 4.0, weights=[0.3, 0.35, 0.1, 0.05, 0.2])
+    labels, n = _voronoi((h, wg), rng.uniform(30, 70), rng, warp=0.0, mask=on_floor)
+    floor_scene = _parcel_cover((h, wg), labels, n, rng, 4.0, weights=[0.3, 0.35, 0.1, 0.0, 0.25])
     ground = np.where(on_floor, floor_scene, ground)
     ground = np.where(lake, _lin(rng.uniform(-24, -20)), ground)
     # radar shadow: hidden from the radar by terrain nearer in range
@@ -530,8 +610,11 @@ def _terrain(shape, p, rng):
     off = (np.arange(h) * 4.0 * (wg + 4 * pad))[:, None]
     q_edges = pad - 0.5 + np.arange(w + 1)[None, :] + off
     xp = (rho_e + off).ravel()
-    c_at = np.interp(q_edges.ravel(), xp, cum.ravel()).reshape(h, w + 1)
     e_at = np.interp(q_edges.ravel(), xp, np.tile(np.arange(wg + 1, dtype=np.float64), h)).reshape(h, w + 1)
+    # the cumulated ground signal is linear in the edge index between knots
+    rr = np.arange(h)[:, None]
+    e0 = np.clip(np.floor(e_at).astype(np.int64), 0, wg - 1)
+    c_at = cum[rr, e0] + (e_at - e0) * (cum[rr, e0 + 1] - cum[rr, e0])
     img = np.diff(c_at, axis=1)
     # where a range pixel lies inside one run of equal ground values, use that value
     # exactly, so flat untextured ground stays exactly constant in the image
@@ -539,7 +622,6 @@ def _terrain(shape, p, rng):
     run[:, 1:] = np.cumsum(ground[:, 1:] != ground[:, :-1], axis=1)
     pix = np.clip(np.floor(e_at).astype(np.int64), 0, wg - 1)
     lo, hi = pix[:, :-1], np.clip(np.ceil(e_at[:, 1:]).astype(np.int64) - 1, 0, wg - 1)
-    rr = np.arange(h)[:, None]
     same = run[rr, lo] == run[rr, np.maximum(hi, lo)]
     img = np.where(same, ground[rr, lo], img)
     img = img + _lin(NOISE_FLOOR_DB)
@@ -570,24 +652,23 @@ def _forest(shape, p, rng):
 
 def _fields(shape, p, rng, params_rng=None):
     h, w = shape
-    zones, nz = _voronoi(shape, rng.uniform(180, 320), rng, warp=0.05)
+    zones, boxes = _zones(shape, int(rng.integers(2, 5)), rng, wobble=20.0)
     scene = np.zeros(shape)
     ang_sign = rng.choice([-1.0, 1.0])
-    for z in range(nz):
-        m = zones == z
-        if not m.any():
-            continue
+    for z, sl in boxes:
+        sub = (sl[0].stop - sl[0].start, sl[1].stop - sl[1].start)
         # each zone its own parcel scale drawn from the split's parcel ranges
         scale = p["parcel_px"] if z == 0 else p["_parcel_draw"]()
         if rng.random() < 0.6:
             ang = ang_sign * p["grid_angle_deg"] + rng.uniform(-3, 3)
-            labels, n, _, _ = _grid_parcels(shape, scale, ang, rng)
+            labels, n, _, _ = _grid_parcels(sub, scale, ang, rng)
             row_dir = np.deg2rad(ang) + np.pi / 2
         else:
-            labels, n = _voronoi(shape, scale, rng, warp=0.06)
+            labels, n = _voronoi(sub, scale, rng, warp=0.06)
             row_dir = None
-        part = _parcel_cover(shape, labels, n, rng, p["row_period_px"], row_dir=row_dir)
-        scene = np.where(m, part, scene)
+        part = _parcel_cover(sub, labels, n, rng, p["row_period_px"], row_dir=row_dir)
+        m = zones[sl] == z
+        scene[sl][m] = part[m]
     # hedges along a share of the parcel boundaries, casting short shadows
     bound = np.zeros(shape, dtype=bool)
     bound[:, 1:] |= scene[:, 1:] != scene[:, :-1]
@@ -776,17 +857,14 @@ def _wetland(shape, p, rng):
 
 def _mixed(shape, p, rng, split):
     h, w = shape
-    zones, n = _voronoi(shape, np.sqrt(h * w / p["n_zones"]), rng, warp=0.15)
+    zones, boxes = _zones(shape, p["n_zones"], rng, wobble=25.0)
     pool = [f for f in TRAINING_FAMILIES if f != "mixed"]
     if split == "test":
         pool = pool + list(EVALUATION_FAMILIES)
     scene = np.zeros(shape)
-    for z in range(n):
+    for z, sl in boxes:
         m = zones == z
-        if not m.any():
-            continue
-        rows, cols = np.nonzero(m)
-        r0, r1, c0, c1 = rows.min(), rows.max() + 1, cols.min(), cols.max() + 1
+        r0, r1, c0, c1 = sl[0].start, sl[0].stop, sl[1].start, sl[1].stop
         sub_shape = (max(r1 - r0, 64), max(c1 - c0, 64))
         fam = pool[int(rng.integers(len(pool)))]
         sub = _render(fam, sub_shape, rng, split)
