@@ -17,6 +17,7 @@ into the output's nodata value.
 
 from __future__ import annotations
 
+import contextlib
 import math
 import os
 import pathlib
@@ -29,7 +30,7 @@ from rasterio.enums import MaskFlags
 from rasterio.errors import RasterioError, RasterioIOError
 from rasterio.windows import Window
 
-from .atomic import publish, sibling_temp
+from .atomic import OutputBusyError, claim_output, folder_is_full, publish, sibling_temp, write_problem
 from .errors import InputError, RasterError
 
 __all__ = [
@@ -49,6 +50,8 @@ __all__ = [
     "read_scene",
     "write_scene",
     "check_output_path",
+    "OutputFolderError",
+    "OutputBusyError",
     "read_with_halo",
     "process_file",
     "limit_gdal_cache",
@@ -364,7 +367,9 @@ def check_output_path(output, inputs, *, overwrite=False, create_dir=True) -> pa
 
     Refuses an output that is one of ``inputs`` (never overwrite an input, even with
     ``overwrite``), an existing file unless ``overwrite``, and an existing directory.
-    A missing parent directory is created when ``create_dir`` (else refused).
+    A missing parent directory is created when ``create_dir`` (else refused). The
+    folder must take a new file (a short-lived probe file is created and removed) and
+    have free space, else :class:`OutputFolderError` names the folder.
     """
     if output is None or str(output) == "":
         raise InputError("output path is empty")
@@ -387,9 +392,15 @@ def check_output_path(output, inputs, *, overwrite=False, create_dir=True) -> pa
         try:
             parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
-            raise RasterError(f"{out}: cannot create output directory {parent}: {exc.strerror or exc}") from None
+            raise OutputFolderError(f"{out}: cannot create the output folder {parent}: {exc.strerror or exc}") from None
     elif not parent.is_dir():
         raise RasterError(f"{out}: {parent} is not a directory")
+    try:
+        sibling_temp(out).unlink()
+    except OSError as exc:
+        raise _write_error(out, exc) from None
+    if folder_is_full(parent, _MIN_FREE_BYTES):
+        raise _write_error(out)
     return out
 
 
@@ -550,8 +561,8 @@ class SceneReader:
             kwargs["out_shape"] = (len(bands),) + tuple(out_shape)
         try:
             raw = ds.read(bands, **kwargs)
-        except RasterioError as exc:
-            raise RasterError(f"{self.path}: read failed at {window}: {exc}") from None
+        except (RasterioError, OSError) as exc:
+            raise self._read_error(exc, window) from None
         bad = np.zeros(raw.shape[1:], dtype=bool)
         nodata_all = np.ones(raw.shape[1:], dtype=bool)
         for k, b in enumerate(bands):
@@ -561,11 +572,22 @@ class SceneReader:
             else:
                 nodata_all[:] = False
             if b in self._masked_bands:
-                m = ds.read_masks(b, **({"window": window} | ({"out_shape": tuple(out_shape)} if out_shape else {})))
+                try:
+                    m = ds.read_masks(b, **({"window": window} | ({"out_shape": tuple(out_shape)} if out_shape else {})))
+                except (RasterioError, OSError) as exc:
+                    raise self._read_error(exc, window) from None
                 bad |= m == 0
         bad |= nodata_all
         data = raw if self._iq else raw[0]
         return data, bad
+
+    def _read_error(self, exc, window) -> RasterError:
+        """One line for a failed read: the file, where, and GDAL's own reason."""
+        w = window
+        where = (f"rows {int(w.row_off)}-{int(w.row_off + w.height) - 1}, "
+                 f"columns {int(w.col_off)}-{int(w.col_off + w.width) - 1}")
+        return RasterError(f"{self.path}: cannot read the data at {where} (the file may be cut off or damaged): "
+                           f"{_error_detail(exc)}")
 
     def _probe(self, declared):
         """Read up to ``_PROBE_PIXELS`` from blocks spread over band 1 (all of a small file)."""
@@ -578,14 +600,18 @@ class SceneReader:
         values, has_valid = [], False
         for i in picks:
             w = windows[i]
-            raw = ds.read(bands, window=w)
+            try:
+                raw = ds.read(bands, window=w)
+                masks = {b: ds.read_masks(b, window=w) for b in bands if b in self._masked_bands}
+            except (RasterioError, OSError) as exc:
+                raise self._read_error(exc, w) from None
             bad = np.zeros(raw.shape[1:], dtype=bool)
             for k, b in enumerate(bands):
                 nd = ds.nodatavals[b - 1]
                 if nd is not None:
                     bad |= _nodata_mask(raw[k], nd)
-                if b in self._masked_bands:
-                    bad |= ds.read_masks(b, window=w) == 0
+                if b in masks:
+                    bad |= masks[b] == 0
             if np.iscomplexobj(raw):
                 good = ~bad & np.isfinite(raw[0].real) & np.isfinite(raw[0].imag)
                 has_valid |= bool(np.any(good & (np.abs(raw[0]) > 0)))
@@ -719,6 +745,15 @@ def _nodata_is_safe(nodata, units) -> bool:
     return nodata < -460 or nodata > 390
 
 
+def _decode_threads():
+    """Let GDAL decode the blocks of one read on all cores, unless the user chose a number."""
+    from rasterio.env import getenv, hasenv
+
+    if os.environ.get("GDAL_NUM_THREADS") or (hasenv() and "GDAL_NUM_THREADS" in getenv()):
+        return contextlib.nullcontext()
+    return rasterio.Env(GDAL_NUM_THREADS="ALL_CPUS")
+
+
 class SceneWriter:
     """A GeoTIFF being written, in ``units``, georeferenced like a source scene.
 
@@ -772,8 +807,22 @@ class SceneWriter:
         if transform is not None:
             profile["transform"] = transform
         self._profile = profile
-        self._tmp = sibling_temp(self.path)
+        self._tmp = None
+        self._ds = None
+        # Claim the output so a second process cannot write it at the same time.
         try:
+            self._claim = claim_output(self.path)
+        except OutputBusyError:
+            raise
+        except OSError as exc:
+            raise _write_error(self.path, exc) from None
+        try:
+            if self.path.exists() and not overwrite:
+                raise InputError(f"{self.path}: output already exists (written by another process meanwhile)")
+            try:
+                self._tmp = sibling_temp(self.path)
+            except OSError as exc:
+                raise _write_error(self.path, exc) from None
             with warnings.catch_warnings():
                 # an ungeoreferenced source gives an ungeoreferenced output; that is not news
                 warnings.simplefilter("ignore", rasterio.errors.NotGeoreferencedWarning)
@@ -787,11 +836,19 @@ class SceneWriter:
             if tags:
                 self._ds.update_tags(**tags)
         except BaseException as exc:
-            if getattr(self, "_ds", None) is not None:
-                self._ds.close()
-            self._tmp.unlink(missing_ok=True)
+            error = None
             if isinstance(exc, (RasterioError, OSError)) and not isinstance(exc, RasterError):
-                raise RasterError(f"{self.path}: cannot create output: {exc}") from None
+                error = _write_error(self.path, exc, partial=self._tmp, what="cannot create the output")
+            if self._ds is not None:
+                try:
+                    self._ds.close()
+                except (RasterioError, OSError):
+                    pass
+            if self._tmp is not None:
+                self._tmp.unlink(missing_ok=True)
+            self._claim.release()
+            if error is not None:
+                raise error from None
             raise
         self._done = False
 
@@ -829,28 +886,80 @@ class SceneWriter:
         out = np.where(ok, out, np.float32(self.nodata)).astype(self.dtype, copy=False)
         try:
             self._ds.write(out, b, window=w)
-        except RasterioError as exc:
-            raise RasterError(f"{self.path}: write failed at {w}: {exc}") from None
+        except (RasterioError, OSError) as exc:
+            raise _write_error(self.path, exc, partial=self._tmp) from None
 
     def block_windows(self) -> list:
         """Windows of the output's tiles (write in these for the least work)."""
         return [w for _, w in self._ds.block_windows(1)]
 
     def close(self, *, commit=True):
-        """Finish the file: rename it into place (``commit``) or delete it."""
+        """Finish the file: verify it and rename it into place (``commit``), or delete it.
+
+        Before the rename the finished file is flushed to disk and opened again, and
+        every block of every band must be present inside the file and decode (see
+        :meth:`_verify`): GDAL compresses blocks on worker threads whose write errors
+        (a full disk, a file size limit) it does not report to the caller. A file that
+        fails is deleted and :class:`RasterError` (:class:`OutputFolderError` when the
+        folder is the cause) is raised; the destination is left untouched.
+        """
         if self._done:
             return
         self._done = True
+        published = False
         try:
-            self._ds.close()
+            try:
+                self._ds.close()
+            except (RasterioError, OSError) as exc:
+                if commit:
+                    raise _write_error(self.path, exc, partial=self._tmp) from None
             if commit:
-                publish(self._tmp, self.path)
-        except (RasterioError, OSError) as exc:
-            self._tmp.unlink(missing_ok=True)
-            raise RasterError(f"{self.path}: cannot finish output: {exc}") from None
+                try:
+                    self._verify()
+                    publish(self._tmp, self.path)
+                except (RasterioError, OSError) as exc:
+                    if isinstance(exc, RasterError):
+                        raise
+                    raise _write_error(self.path, exc, partial=self._tmp) from None
+                published = True
         finally:
-            if not commit:
+            if not published:
                 self._tmp.unlink(missing_ok=True)
+            self._claim.release()
+
+    def _verify(self):
+        """Check the closed temporary file: size, data type, every block present and decodable.
+
+        Each block's byte range (from the TIFF tile offsets and sizes) must lie inside
+        the file, and every block row is read and decoded by GDAL (in full-width strips,
+        so memory stays at one row of blocks).
+        """
+        size = os.path.getsize(self._tmp)
+        with _decode_threads(), rasterio.open(self._tmp) as ds:
+            if (ds.width, ds.height, ds.count) != (self.width, self.height, self.band_count) or \
+                    ds.dtypes[0] != self.dtype:
+                raise _write_error(self.path, partial=self._tmp, what="the written file has the wrong size or type")
+            bh, bw = (int(v) for v in ds.block_shapes[0])
+            buf = np.empty((bh, self.width), dtype=self.dtype)
+            for b in range(1, self.band_count + 1):
+                for i in range(-(-self.height // bh)):
+                    for j in range(-(-self.width // bw)):
+                        offset = ds.get_tag_item(f"BLOCK_OFFSET_{j}_{i}", "TIFF", bidx=b)
+                        nbytes = ds.get_tag_item(f"BLOCK_SIZE_{j}_{i}", "TIFF", bidx=b)
+                        if not offset or not nbytes or int(offset) + int(nbytes) > size:
+                            raise _write_error(
+                                self.path, partial=self._tmp,
+                                what=f"the written file is incomplete (block {i},{j} of band {b} is missing or cut off)",
+                            )
+                    r0 = i * bh
+                    n = min(bh, self.height - r0)
+                    try:
+                        ds.read(b, window=Window(0, r0, self.width, n), out=buf[:n])
+                    except (RasterioError, OSError) as exc:
+                        raise _write_error(
+                            self.path, exc, partial=self._tmp,
+                            what=f"the written file does not read back (rows {r0}-{r0 + n - 1} of band {b})",
+                        ) from None
 
     def abort(self):
         """Delete the temporary file; the destination is left untouched."""
@@ -863,11 +972,11 @@ class SceneWriter:
         self.close(commit=exc_type is None)
         return False
 
-    def __del__(self):  # a writer dropped without closing must not leave its temporary file
+    def __del__(self):  # a writer dropped without closing must not leave its temporary file or claim
         try:
             if not self._done:
                 self.abort()
-        except Exception:
+        except Exception:  # noqa: BLE001 - never raise from a finaliser
             pass
 
 
