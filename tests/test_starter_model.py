@@ -30,7 +30,7 @@ def starter():
 
 
 def test_starter_is_small_and_describes_itself():
-    assert STARTER.stat().st_size < 5 * 1024 * 1024
+    assert STARTER.stat().st_size < 5 * 1024 * 1024  # project target: a small bundled file
     meta = read_model_metadata(STARTER)
     text = repr(meta)
     assert "unet-s" in text and "intensity" in text
@@ -41,7 +41,7 @@ def test_starter_is_small_and_describes_itself():
 def test_starter_keeps_mean_backscatter_on_a_homogeneous_area(starter):
     # A constant area of -13 dB under 1-look speckle. Without correction, averaging in the
     # log domain would be low by psi(1) - ln 1 = -0.5772 nepers = -2.51 dB (scipy's digamma;
-    # Oliver & Quegan 1998); the model must stay within 0.1 dB of the truth. The
+    # Oliver & Quegan 1998); the model must stay within 0.1 dB of the truth (project target). The
     # sampling error of the mean of 65,536 unit-mean exponential values is 1/256, i.e.
     # 0.017 dB (1 sigma), so the tolerance is dominated by the model.
     assert 10 * math.log10(math.exp(special.digamma(1.0))) == pytest.approx(-2.507, abs=1e-3)
@@ -50,7 +50,8 @@ def test_starter_keeps_mean_backscatter_on_a_homogeneous_area(starter):
     out = despeckle_array(noisy, starter, progress=False)
     bias_db = 10 * math.log10(out.astype(np.float64).mean() / truth)
     assert abs(bias_db) < 0.1
-    # and it does smooth: ENL well above the input's single look
+    # and it does smooth: ENL well above the input's single look (20: project floor; for scale,
+    # a 5 x 5 boxcar reaches N^2 L = 25 on white speckle, Oliver & Quegan 1998)
     inner = out[32:-32, 32:-32].astype(np.float64)
     assert inner.mean() ** 2 / inner.var() > 20
 
@@ -64,7 +65,7 @@ def test_starter_is_calibration_independent(starter):
     noisy = simulate_intensity(clean, 1, rng=np.random.default_rng(5))
     a = despeckle_array(noisy, starter, progress=False)
     b = despeckle_array(noisy * np.float32(1000), starter, progress=False)
-    np.testing.assert_allclose(b / a, 1000, rtol=2e-4)
+    np.testing.assert_allclose(b / a, 1000, rtol=2e-4)  # float32 rounding through log/exp (project tolerance)
 
 
 def test_apply_uses_the_starter_by_default(tmp_path):
@@ -77,14 +78,14 @@ def test_apply_uses_the_starter_by_default(tmp_path):
     with rasterio.open(tmp_path / "out.tif") as d:
         out = d.read(1)
         assert d.crs.to_epsg() == 32631
-    assert out.std() < 0.5 * data.std()
+    assert out.std() < 0.5 * data.std()  # project floor: clearly smoothed
 
 
 def test_starter_keeps_an_isolated_point_target(starter):
     # A point 20 dB above a -15 dB field. The guard passes through pixels above the level
     # 1-look speckle exceeds with probability 1e-4: gammaincinv(1, 1 - 1e-4) = ln(1e4) = 9.21
     # (scipy.special; exponential quantile, Goodman 1976). The peak must stay within 3 dB
-    # of the input peak (issue target), while without the guard it is smoothed away.
+    # (half power; project target) of the input peak, while without the guard it is smoothed away.
     assert starter.point_threshold == pytest.approx(math.log(1e4), rel=1e-9)
     clean = np.full((128, 128), 10 ** (-1.5), np.float32)
     clean[64, 64] *= 100.0

@@ -28,14 +28,16 @@ def test_layout_boxes_are_constant_and_points_are_isolated():
         neighbourhood = scene[max(r - 5, 0) : r + 6, max(c - 5, 0) : c + 6].copy()
         peak = scene[r, c]
         neighbourhood[neighbourhood == peak] = 0
-        # at least 15 dB above everything within five pixels
+        # at least 15 dB above everything within five pixels: the lower end of make_scene's
+        # point_gain_db (15-25 dB), a design choice of the generator (project choice)
         assert 10 * np.log10(peak / neighbourhood.max()) >= 15 - 1e-4
 
 
 def test_backscatter_in_plausible_range():
     scene = make_scene((128, 128), rng=2)
     db = 10 * np.log10(scene)
-    # common practice for C-band land scenes: open water near -25 dB, point targets above +10 dB
+    # common practice for C-band land scenes (values from memory): calm open water near -25 dB,
+    # vegetation around -15 to -5 dB, point targets above +10 dB; the bounds below are loose
     assert db.min() > -30 and np.median(db) < 0 and db.max() < 40
 
 
