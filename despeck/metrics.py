@@ -52,7 +52,8 @@ __all__ = [
 ]
 
 #: Fewest valid pixels an area needs for an ENL: at L = 1 the ENL estimate's relative
-#: standard error is then about sqrt(8 / 100) ~ 28 % (exponential kurtosis 9).
+#: standard error is then about sqrt((2 + 2/L) / 100) = 20 % (delta method with the Gamma
+#: moments, checked by simulation; docs/methods.md, section Equivalent number of looks).
 MIN_AREA_PIXELS = 100
 
 
