@@ -16,6 +16,7 @@ __all__ = [
     "RasterError",
     "ConfigError",
     "ModelFileError",
+    "MissingDependencyError",
 ]
 
 
@@ -37,3 +38,7 @@ class ConfigError(DespeckError, ValueError):
 
 class ModelFileError(DespeckError, OSError):
     """A model file or checkpoint is missing, corrupt, foreign or from a newer format."""
+
+
+class MissingDependencyError(DespeckError, ImportError):
+    """An optional package that a chosen method needs is not installed (the message says what to install)."""

@@ -37,6 +37,7 @@ from typing import Callable
 import numpy as np
 from scipy import ndimage, optimize, special
 
+from .bm3d_log import DEFAULT_SEARCH_WINDOW, bm3d_log
 from .errors import InputError
 from .speckle import check_looks
 
@@ -1086,6 +1087,8 @@ FILTERS = {
     "refined-lee": refined_lee,
     "improved-sigma": improved_sigma,
     "nonlocal": nonlocal_glr,
+    # optional extra (pip install despeck[bm3d]); whole images in memory, see despeck/bm3d_log.py
+    "bm3d-log": bm3d_log,
 }
 
 #: Window used when none is given (pixels). Common practice for single- to few-look
@@ -1100,6 +1103,7 @@ DEFAULT_WINDOWS = {
     "refined-lee": 7,
     "improved-sigma": 9,
     "nonlocal": 11,
+    "bm3d-log": DEFAULT_SEARCH_WINDOW,  # its block-matching search window
 }
 
 _PLANS = {
@@ -1218,6 +1222,10 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
                     raise InputError(f"{in_path}: the scene looks constant, cannot estimate the number of looks; give looks")
             if name == "improved-sigma" and options.get("point_threshold") is None:
                 options["point_threshold"] = _scene_percentile(sample.astype(np.float64), sample_valid)
+        if name not in _PLANS:
+            return _filter_whole_band(name, reader, out_path, looks=looks, looks_estimated=looks_estimated,
+                                      window=window, options=options, out_units=out_units, overwrite=overwrite,
+                                      workers=workers, band=band)
         plan = _PLANS[name](looks, window, **options)
         nworkers = _check_workers(workers)
         h, w = reader.height, reader.width
@@ -1242,6 +1250,28 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
                     writer.write(result, _row_window(r0, r1, w), band=1, valid=core_valid)
                     bar.update(r1 - r0)
         bar.close()
+    return {
+        "method": name,
+        "looks": float(looks),
+        "looks_estimated": bool(looks_estimated),
+        "window": window,
+        "options": options,
+        "output": str(out_path),
+        "pixels": int(h) * int(w),
+    }
+
+
+def _filter_whole_band(name, reader, out_path, *, looks, looks_estimated, window, options, out_units, overwrite,
+                       workers, band):
+    """Methods without a strip plan (bm3d-log): read the whole band, filter it in memory, write it."""
+    from . import raster
+
+    h, w = reader.height, reader.width
+    data, ok = reader.read(band=band)
+    result = FILTERS[name](np.where(ok, data, 0.0), looks=looks, window=window, mask=ok, workers=workers, **options)
+    result[~ok] = 0.0
+    with raster.open_output(out_path, like=reader, units=out_units, band_count=1, overwrite=overwrite) as writer:
+        writer.write(result, _row_window(0, h, w), band=1, valid=ok)
     return {
         "method": name,
         "looks": float(looks),

@@ -15,12 +15,21 @@ one JSON document::
 
 The network is rebuilt from the registry by name and arguments, so a file can only
 describe architectures this version of despeck knows. Files are written to a temporary
-name in the destination folder and renamed, so a crash never leaves half a file.
+name in the destination folder, synced and checked for size, and renamed, so a crash or
+a full disk never leaves half a file.
+
+Loading trusts nothing in the file: the header's size and nesting are capped, the
+architecture's arguments are checked against the registry's ceilings, the tensor names,
+shapes and types stored in the file are compared with the architecture's before any
+weight is read or any network built, every weight must be finite, and the calibration
+values must lie in physically sensible ranges (:data:`MAX_LOOKS`,
+:data:`MAX_ABS_LOG_BIAS`, :data:`LOG_SCALE_RANGE`; ``point_false_alarm`` in (0, 1)).
 """
 
 from __future__ import annotations
 
 import json
+import math
 import os
 from pathlib import Path
 
@@ -28,7 +37,7 @@ import torch
 
 from ..atomic import publish, sibling_temp
 from ..errors import DespeckError, InputError, ModelFileError
-from .registry import create_model, list_models
+from .registry import create_model, list_models, weight_shapes
 from .wrapper import Despeckler
 
 __all__ = ["save_model_file", "load_model_file", "read_model_metadata", "FORMAT_NAME", "FORMAT_VERSION"]
@@ -36,6 +45,21 @@ __all__ = ["save_model_file", "load_model_file", "read_model_metadata", "FORMAT_
 FORMAT_NAME = "despeck-model"
 FORMAT_VERSION = 1
 _HEADER_KEY = "despeck"
+
+#: Largest safetensors header read (the JSON table of tensors plus the description), bytes;
+#: a despeck model's is a few kilobytes.
+MAX_HEADER_BYTES = 8 * 1024 * 1024
+#: Deepest nesting of lists and mappings in the description.
+MAX_HEADER_DEPTH = 32
+#: Largest number of looks a model may be described for (speckle of more looks is below
+#: 0.15 dB standard deviation: nothing left to filter).
+MAX_LOOKS = 1000.0
+#: Largest magnitude of the log-domain bias correction, nepers (a factor of 22 000;
+#: real corrections are below one neper: ``ln L - psi(L)`` is 0.58 at one look).
+MAX_ABS_LOG_BIAS = 10.0
+#: Allowed normalisation scales, nepers per unit (the default is 2).
+LOG_SCALE_RANGE = (0.01, 100.0)
+_FLOAT_DTYPES = {"F16", "BF16", "F32", "F64"}
 
 
 def _json_ready(value, where):
@@ -90,6 +114,10 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
     normalisation.update(extra.pop("normalisation", {}) or {})
     normalisation["log_scale"], normalisation["log_bias"] = despeckler.log_scale, despeckler.log_bias
     normalisation["point_false_alarm"] = despeckler.point_false_alarm
+    if despeckler.log_bias_table is not None:
+        normalisation["log_bias_table"] = despeckler.log_bias_table
+    else:
+        normalisation.pop("log_bias_table", None)
     header = {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
@@ -102,8 +130,11 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
     header.update({k: v for k, v in extra.items()})
     header = _json_ready(header, "")
     tensors = {k: v.detach().to("cpu").contiguous().clone() for k, v in net.state_dict().items()}
+    for key, tensor in tensors.items():
+        if tensor.is_floating_point() and not bool(torch.isfinite(tensor).all()):
+            raise InputError(f"cannot save model file {path}: weight {key} holds NaN or infinite values")
 
-    from safetensors.torch import save_file
+    from safetensors.torch import save
 
     folder = path.parent if str(path.parent) else Path(".")
     if not folder.is_dir():
@@ -113,7 +144,13 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
     except OSError as exc:
         raise ModelFileError(f"cannot write model file {path}: {exc.strerror or exc}") from None
     try:
-        save_file(tensors, str(tmp), metadata={_HEADER_KEY: json.dumps(header, sort_keys=True)})
+        data = save(tensors, metadata={_HEADER_KEY: json.dumps(header, sort_keys=True)})
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        if os.path.getsize(tmp) != len(data):
+            raise OSError(f"only {os.path.getsize(tmp)} of {len(data)} bytes reached the disk")
         publish(tmp, path)
     except OSError as exc:
         raise ModelFileError(f"cannot write model file {path}: {exc.strerror or exc}") from None
@@ -137,6 +174,15 @@ def read_model_metadata(path) -> dict:
     if not path.is_file():
         raise ModelFileError(f"model file {path} does not exist")
     try:
+        with open(path, "rb") as f:
+            prefix = f.read(8)
+    except OSError as exc:
+        raise ModelFileError(f"cannot read model file {path} ({exc.strerror or exc})") from None
+    size = int.from_bytes(prefix, "little") if len(prefix) == 8 else 0
+    if size > MAX_HEADER_BYTES:
+        raise ModelFileError(f"{path} declares a {size}-byte header, more than the {MAX_HEADER_BYTES} "
+                             "a despeck model file may have; it is corrupt or not a despeck model")
+    try:
         with safe_open(str(path), framework="pt") as f:
             raw = (f.metadata() or {}).get(_HEADER_KEY)
     except Exception as exc:  # the safetensors reader raises its own error types
@@ -148,6 +194,11 @@ def read_model_metadata(path) -> dict:
         header = json.loads(raw)
     except ValueError:
         raise ModelFileError(f"{path} has a corrupt despeck description header") from None
+    except RecursionError:
+        header = None
+    if header is None or _depth(header) > MAX_HEADER_DEPTH:
+        raise ModelFileError(f"{path} has a description header nested more than {MAX_HEADER_DEPTH} levels deep; "
+                             "it is corrupt or not a despeck model")
     if not isinstance(header, dict) or header.get("format") != FORMAT_NAME:
         raise ModelFileError(f"{path} is not a despeck model file (format {header.get('format')!r})"
                              if isinstance(header, dict) else f"{path} has a corrupt despeck description header")
@@ -162,6 +213,70 @@ def read_model_metadata(path) -> dict:
     return header
 
 
+def _depth(value) -> int:
+    """Nesting depth of lists and mappings in parsed JSON (iterative: no recursion limit)."""
+    deepest, stack = 0, [(value, 1)]
+    while stack:
+        item, level = stack.pop()
+        if isinstance(item, (list, dict)):
+            deepest = max(deepest, level)
+            if level > MAX_HEADER_DEPTH:
+                break
+            stack.extend((v, level + 1) for v in (item.values() if isinstance(item, dict) else item))
+    return deepest
+
+
+def _check_calibration(path, header: dict, norm: dict) -> None:
+    """Refuse non-numeric, non-finite or absurd calibration values (one line naming the value)."""
+
+    def number(key, value):
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            raise ModelFileError(f"{path}: {key} must be a finite number, got {value!r}")
+        return float(value)
+
+    looks = header.get("looks")
+    for value in looks if isinstance(looks, list) else [looks]:
+        if not 0 < number("looks", value) <= MAX_LOOKS:
+            raise ModelFileError(f"{path}: looks {value!r} is out of range (0, {MAX_LOOKS:g}]")
+    if not isinstance(norm, dict):
+        raise ModelFileError(f"{path}: normalisation must be a mapping, got {norm!r}")
+    if "log_scale" not in norm:
+        raise ModelFileError(f"{path} has an incomplete despeck description header (no normalisation.log_scale)")
+    lo, hi = LOG_SCALE_RANGE
+    if not lo <= number("normalisation.log_scale", norm["log_scale"]) <= hi:
+        raise ModelFileError(f"{path}: normalisation.log_scale {norm['log_scale']!r} is out of range "
+                             f"[{lo:g}, {hi:g}] nepers per unit")
+    if abs(number("normalisation.log_bias", norm.get("log_bias", 0.0))) > MAX_ABS_LOG_BIAS:
+        raise ModelFileError(f"{path}: normalisation.log_bias {norm['log_bias']!r} is out of range "
+                             f"[-{MAX_ABS_LOG_BIAS:g}, {MAX_ABS_LOG_BIAS:g}] nepers")
+    pfa = norm.get("point_false_alarm")
+    if pfa is not None and not 0 < number("normalisation.point_false_alarm", pfa) < 1:
+        raise ModelFileError(f"{path}: normalisation.point_false_alarm {pfa!r} must lie in (0, 1) or be null")
+
+
+def _check_stored_weights(path, name, expected: dict) -> None:
+    """Compare the tensors listed in the file's header with the architecture's, reading no weight."""
+    from safetensors import safe_open
+
+    try:
+        with safe_open(str(path), framework="pt") as f:
+            stored = {k: (tuple(f.get_slice(k).get_shape()), f.get_slice(k).get_dtype()) for k in f.keys()}
+    except Exception as exc:  # the safetensors reader raises its own error types
+        first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
+        raise ModelFileError(f"{path} has an unreadable tensor table ({first})") from None
+    if set(stored) != set(expected):
+        missing, unexpected = sorted(set(expected) - set(stored)), sorted(set(stored) - set(expected))
+        raise ModelFileError(f"{path}: weights do not fit architecture {name!r} "
+                             f"(missing {missing[:1]}, unexpected {unexpected[:1]})")
+    for key in sorted(expected):
+        shape, dtype = stored[key]
+        if shape != tuple(expected[key]):
+            raise ModelFileError(f"{path}: weights do not fit architecture {name!r} "
+                                 f"({key} has shape {list(shape)}, expected {list(expected[key])})")
+        if dtype not in _FLOAT_DTYPES:
+            raise ModelFileError(f"{path}: weight {key} is stored as {dtype}, not as floating point")
+
+
 def load_model_file(path) -> Despeckler:
     """Load a model file written by :func:`save_model_file`; the result is in eval mode.
 
@@ -171,8 +286,10 @@ def load_model_file(path) -> Despeckler:
     Raises
     ------
     ModelFileError
-        Missing, corrupt, foreign or newer-format file, unknown architecture, or weights
-        that do not fit the described architecture. One line, naming the file.
+        Missing, corrupt, foreign or newer-format file, unknown architecture or one
+        beyond the registry's size ceilings, weights that do not fit the described
+        architecture or are not finite, calibration values out of range. One line,
+        naming the file.
     """
     from safetensors.torch import load_file
 
@@ -182,6 +299,14 @@ def load_model_file(path) -> Despeckler:
         arch = header["architecture"]
         name, kwargs = arch["name"], dict(arch.get("kwargs") or {})
         norm = header.get("normalisation") or {}
+        expected = weight_shapes(name, **kwargs)  # checks the arguments, allocates nothing
+    except DespeckError as exc:
+        raise ModelFileError(f"{path} describes a model this despeck cannot build: {exc}") from None
+    except (KeyError, TypeError, AttributeError, ValueError) as exc:
+        raise ModelFileError(f"{path} has an incomplete or malformed architecture description ({exc})") from None
+    _check_calibration(path, header, norm)
+    _check_stored_weights(path, name, expected)
+    try:
         network = create_model(name, **kwargs)
         despeckler = Despeckler(
             network,
@@ -189,6 +314,7 @@ def load_model_file(path) -> Despeckler:
             log_bias=norm.get("log_bias", 0.0),
             log_scale=norm.get("log_scale"),
             point_false_alarm=norm.get("point_false_alarm"),
+            log_bias_table=norm.get("log_bias_table"),
         )
     except DespeckError as exc:
         raise ModelFileError(f"{path} describes a model this despeck cannot build: {exc}") from None
@@ -199,6 +325,10 @@ def load_model_file(path) -> Despeckler:
     except Exception as exc:
         first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise ModelFileError(f"{path} has unreadable weights ({first})") from None
+    for key in sorted(tensors):
+        if not bool(torch.isfinite(tensors[key]).all()):
+            raise ModelFileError(f"{path}: weight {key} holds NaN or infinite values; the file is corrupt "
+                                 "or was saved from a diverged training run")
     try:
         network.load_state_dict(tensors, strict=True)
     except RuntimeError:

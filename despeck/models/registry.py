@@ -7,6 +7,14 @@ overrides into those defaults, builds the network and records the name and the
 fully resolved arguments on it (``network.architecture``,
 ``network.architecture_kwargs``) so the model file can rebuild it exactly without
 executing anything stored in the file.
+
+Arguments can come from a model file or a config anyone may have written, so
+:func:`create_model` checks them against the ceilings below *before* building: first
+each argument on its own (:data:`ARGUMENT_LIMITS`, :data:`MAX_ARGUMENT`,
+:data:`MAX_LIST_LENGTH`), then the whole network, laid out on torch's ``meta`` device
+(shapes only, no memory for weights): parameter count, receptive field and pooling
+multiple. :func:`weight_shapes` gives those shapes so a model file's tensors can be
+compared with them before anything is allocated.
 """
 
 from __future__ import annotations
@@ -14,9 +22,32 @@ from __future__ import annotations
 import inspect
 from dataclasses import dataclass, field
 
+import torch
+from torch.overrides import TorchFunctionMode
+
 from ..errors import InputError
 
-__all__ = ["register_model", "create_model", "list_models", "model_defaults", "model_description"]
+__all__ = ["register_model", "create_model", "list_models", "model_defaults", "model_description",
+           "weight_shapes", "ARGUMENT_LIMITS", "MAX_ARGUMENT", "MAX_LIST_LENGTH", "MAX_PARAMETERS",
+           "MAX_RECEPTIVE_FIELD", "MAX_SIZE_MULTIPLE"]
+
+# Ceilings on what a network description may ask for. The registered variants stay far
+# below them (the largest, unet-m and logcnn-m, have under 0.6 M parameters, receptive
+# fields under 120 pixels and a pooling multiple of 8); they exist so that a corrupt or
+# hostile model header or config (``depth: 300000``) is refused in milliseconds instead
+# of exhausting memory.
+#: Largest value of a named integer argument (a list argument: of each entry).
+ARGUMENT_LIMITS = {"depth": 128, "width": 512, "widths": 512, "dilations": 64}
+#: Largest value of any other integer argument.
+MAX_ARGUMENT = 4096
+#: Most entries of a list argument.
+MAX_LIST_LENGTH = 64
+#: Most trainable values in one network (40 MB of float32).
+MAX_PARAMETERS = 10_000_000
+#: Largest receptive field, pixels (the tiler overlaps tiles by about this much).
+MAX_RECEPTIVE_FIELD = 2049
+#: Largest pooling-grid multiple (``2 ** levels`` of a U-Net).
+MAX_SIZE_MULTIPLE = 256
 
 
 @dataclass(frozen=True)
@@ -94,17 +125,96 @@ def create_model(name: str, **kwargs):
         Unknown name, unknown argument (the message lists the allowed ones) or a bad value.
     """
     v = _variant(name)
+    resolved, _ = _checked_arguments(name, kwargs)
+    network = v.cls(**resolved)
+    network.architecture = name
+    network.architecture_kwargs = {k: _plain(val) for k, val in resolved.items()}
+    return network
+
+
+def weight_shapes(name: str, **kwargs) -> dict:
+    """Name and shape of every tensor in the state dict of ``create_model(name, **kwargs)``.
+
+    Nothing is allocated: the network is laid out on torch's ``meta`` device, after the
+    same checks as :func:`create_model`.
+
+    Returns
+    -------
+    dict
+        ``{tensor name: tuple of ints}``.
+
+    Raises
+    ------
+    InputError
+        As :func:`create_model`.
+    """
+    return dict(_checked_arguments(name, kwargs)[1])
+
+
+def _checked_arguments(name, kwargs) -> dict:
+    """Resolved arguments of variant ``name`` (checked against the ceilings) and its tensor shapes."""
     allowed = model_defaults(name)
     unknown = sorted(set(kwargs) - set(allowed))
     if unknown:
         raise InputError(
             f"model {name!r} has no argument {unknown[0]!r}; allowed: {', '.join(sorted(allowed))}"
         )
+    for key, value in kwargs.items():
+        _check_limit(key, value, ARGUMENT_LIMITS.get(key, MAX_ARGUMENT))
     resolved = {**allowed, **kwargs}
-    network = v.cls(**resolved)
-    network.architecture = name
-    network.architecture_kwargs = {k: _plain(val) for k, val in resolved.items()}
-    return network
+    return resolved, _meta_shapes(name, resolved)
+
+
+def _check_limit(key, value, ceiling, nested=0):
+    if isinstance(value, (list, tuple)):
+        if nested or len(value) > MAX_LIST_LENGTH:
+            what = "nested lists" if nested else f"{len(value)} entries"
+            raise InputError(f"model argument {key} has {what}; at most {MAX_LIST_LENGTH} numbers are allowed")
+        for item in value:
+            _check_limit(key, item, ceiling, nested + 1)
+    elif isinstance(value, (int, float)) and not isinstance(value, bool):
+        if not value <= ceiling:  # NaN fails too
+            raise InputError(f"model argument {key} = {value!r} exceeds the limit of {ceiling}")
+    elif isinstance(value, str) and len(value) > 100:
+        raise InputError(f"model argument {key} is a {len(value)}-character text; at most 100 are allowed")
+    elif isinstance(value, dict):
+        raise InputError(f"model argument {key} must not be a mapping")
+
+
+class _ShapesOnly(TorchFunctionMode):
+    """Skip in-place operations on meta tensors (weight initialisation): there is nothing to
+    compute, and torch's first meta random-number call costs about a second of set-up."""
+
+    def __torch_function__(self, func, types, args=(), kwargs=None):
+        name = getattr(func, "__name__", "")
+        if (name.endswith("_") and not name.endswith("__") and args
+                and isinstance(args[0], torch.Tensor) and args[0].is_meta):
+            return args[0]
+        return func(*args, **(kwargs or {}))
+
+
+def _meta_shapes(name, resolved):
+    """Build variant ``name`` on the meta device, check its size; list of (tensor name, shape)."""
+    with torch.device("meta"), _ShapesOnly():
+        network = _variant(name).cls(**resolved)
+    count = sum(p.numel() for p in network.parameters())
+    if count > MAX_PARAMETERS:
+        raise InputError(
+            f"model {name!r} with these arguments has {count:,} parameters; at most {MAX_PARAMETERS:,} are allowed"
+        )
+    rf = getattr(network, "receptive_field", None)
+    if isinstance(rf, int) and rf > MAX_RECEPTIVE_FIELD:
+        raise InputError(
+            f"model {name!r} with these arguments has a receptive field of {rf} pixels; "
+            f"at most {MAX_RECEPTIVE_FIELD} are allowed"
+        )
+    multiple = getattr(network, "size_multiple", 1)
+    if isinstance(multiple, int) and multiple > MAX_SIZE_MULTIPLE:
+        raise InputError(
+            f"model {name!r} with these arguments pools to a grid of {multiple} pixels; "
+            f"at most {MAX_SIZE_MULTIPLE} are allowed"
+        )
+    return [(k, tuple(t.shape)) for k, t in network.state_dict().items()]
 
 
 def _plain(value):
