@@ -57,6 +57,7 @@ __all__ = [
     "refined_lee",
     "improved_sigma",
     "sigma_interval",
+    "sigma_domain",
     "nonlocal_glr",
     "filter_raster",
 ]
@@ -77,19 +78,27 @@ CALIBRATION_SEED = 8675309
 #: Pixels of the decimated sample read to estimate scene-level values (looks, percentiles).
 SAMPLE_PIXELS = 1_000_000
 
+#: Largest window (and patch) any filter accepts, in pixels. The published filters use
+#: windows of 3 to about 15 pixels (common practice); far larger ones only average the
+#: neighbourhood away, and their working arrays and running time grow with the window's
+#: area, so a mistyped size would exhaust memory instead of failing at once.
+MAX_WINDOW = 201
+
 
 # --------------------------------------------------------------------------- validation
 
-def check_window(window, name: str = "window") -> int:
-    """Return ``window`` as an int, or raise :class:`InputError` unless it is odd and >= 3."""
+def check_window(window, name: str = "window", maximum: int = MAX_WINDOW) -> int:
+    """Return ``window`` as an int, or raise :class:`InputError` unless it is odd, >= 3 and <= ``maximum``."""
     try:
         value = int(window)
         if value != float(window):
             raise ValueError
     except (TypeError, ValueError, OverflowError):
-        raise InputError(f"{name} must be an odd integer >= 3, got {window!r}") from None
+        raise InputError(f"{name} must be an odd integer from 3 to {maximum}, got {window!r}") from None
     if value < 3 or value % 2 == 0:
         raise InputError(f"{name} must be an odd integer >= 3 (3, 5, 7, ...), got {window!r}")
+    if value > maximum:
+        raise InputError(f"{name} must be at most {maximum} pixels (filters use 3 to about 15), got {window!r}")
     return value
 
 
@@ -789,11 +798,39 @@ def sigma_interval(looks, xi=0.9):
     -------
     (A1, A2, eta_v) : tuple of float
         For L = 1, xi = 0.9: about 0.084, 3.932, 0.819 (Lee et al. 2009, Table I).
+
+    Raises
+    ------
+    InputError
+        ``(looks, xi)`` outside the solver's domain (:func:`sigma_domain`): for very
+        few looks (below about 0.1 at xi = 0.9) the interval's lower end falls below
+        1e-10 and double precision cannot place it, and for a vanishing ``eta_v``
+        (millions of looks, or a tiny ``xi``) its square is lost to rounding.
     """
     L = check_looks(looks)
     xi = float(xi)
     if not 0 < xi < 1:
         raise InputError(f"xi (the probability kept by the sigma range) must lie in (0, 1), got {xi!r}")
+    solved = _solve_sigma_interval(L, xi)
+    if solved is None:
+        low, high = sigma_domain(xi)
+        where = (f"at xi={xi:g} it works for looks from {low:.3g} to {high:.3g}" if low is not None
+                 else f"no number of looks works at xi={xi:g}; use xi between 0.5 and 0.99")
+        raise InputError(
+            f"looks {L:g} is outside the improved sigma filter's domain: the sigma interval cannot be computed "
+            f"accurately ({where})"
+        )
+    return solved
+
+
+#: Tolerances of the check that a solved sigma interval meets both conditions, and the
+#: smallest ``eta_v**2`` whose rounding error (about 1e-16 absolute) stays negligible.
+_SIGMA_TOLERANCE = 1e-7
+_SIGMA_MIN_ETA2 = 1e-8
+
+
+def _solve_sigma_interval(L: float, xi: float):
+    """``(A1, A2, eta_v)``, or None where double precision cannot give them (see :func:`sigma_interval`)."""
 
     def upper(a):
         return special.gammaincinv(L, xi + special.gammainc(L, L * a)) / L
@@ -802,12 +839,49 @@ def sigma_interval(looks, xi=0.9):
         b = upper(a)
         return (special.gammainc(L + 1, L * b) - special.gammainc(L + 1, L * a)) / xi
 
-    a_max = special.gammaincinv(L, 1.0 - xi) / L
-    lo, hi = 0.0, a_max * (1.0 - 1e-12)
-    a1 = optimize.brentq(lambda a: truncated_mean(a) - 1.0, lo, hi, xtol=1e-14, rtol=1e-13, maxiter=500)
-    a2 = upper(a1)
-    second = (L + 1.0) / L * (special.gammainc(L + 2, L * a2) - special.gammainc(L + 2, L * a1)) / xi
-    return float(a1), float(a2), float(math.sqrt(max(second - 1.0, 0.0)))
+    with np.errstate(all="ignore"):
+        a_max = special.gammaincinv(L, 1.0 - xi) / L
+        lo, hi = 0.0, a_max * (1.0 - 1e-12)
+        f_lo, f_hi = truncated_mean(lo) - 1.0, truncated_mean(hi) - 1.0
+        if not (np.isfinite(f_lo) and np.isfinite(f_hi) and f_lo < 0 < f_hi):
+            return None
+        a1 = optimize.brentq(lambda a: truncated_mean(a) - 1.0, lo, hi, xtol=1e-14, rtol=1e-13, maxiter=500)
+        a2 = upper(a1)
+        kept = special.gammainc(L, L * a2) - special.gammainc(L, L * a1)
+        second = (L + 1.0) / L * (special.gammainc(L + 2, L * a2) - special.gammainc(L + 2, L * a1)) / xi
+    eta2 = second - 1.0
+    if not (np.isfinite(a2) and abs(kept - xi) <= _SIGMA_TOLERANCE and abs(truncated_mean(a1) - 1.0) <= _SIGMA_TOLERANCE
+            and eta2 >= _SIGMA_MIN_ETA2):
+        return None
+    return float(a1), float(a2), float(math.sqrt(eta2))
+
+
+def sigma_domain(xi=0.9) -> tuple:
+    """Range of looks ``(low, high)`` for which :func:`sigma_interval` can be solved at ``xi``.
+
+    Found by bisection on a log scale (relative precision about 1 %) between 1e-6
+    and 1e12 looks; ``(None, None)`` when even 1 look fails. The valid looks form one
+    interval (checked on a grid of xi from 0.01 to 0.9999 in the tests).
+    """
+    xi = float(xi)
+    if not 0 < xi < 1:
+        raise InputError(f"xi (the probability kept by the sigma range) must lie in (0, 1), got {xi!r}")
+    if _solve_sigma_interval(1.0, xi) is None:
+        return None, None
+
+    def edge(good, bad):
+        g, b = math.log(good), math.log(bad)
+        if _solve_sigma_interval(bad, xi) is not None:
+            return bad
+        while abs(g - b) > 0.01:
+            mid = 0.5 * (g + b)
+            if _solve_sigma_interval(math.exp(mid), xi) is None:
+                b = mid
+            else:
+                g = mid
+        return math.exp(g)
+
+    return edge(1.0, 1e-6), edge(1.0, 1e12)
 
 
 def _plan_improved_sigma(looks, window, xi=0.9, point_threshold=None, point_count=5, prior_window=3,
@@ -1154,12 +1228,14 @@ def _check_options(name, options):
 # --------------------------------------------------------------------------- files
 
 def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=None, out_units=None,
-                  overwrite=False, progress=True, workers=None, band=1, **options):
-    """Filter one band of a raster file strip by strip and write a GeoTIFF like the input.
+                  overwrite=False, progress=True, workers=None, band=None, **options):
+    """Filter the SAR bands of a raster file strip by strip and write a GeoTIFF like the input.
 
     Strips of full rows are read with a halo of the method's reach, filtered and
     written; the result is bit-identical to filtering the whole scene in memory
     (with the same scene-level values). Invalid input pixels are nodata in the output.
+    Every SAR band is filtered (each with its own looks estimate and scene-level
+    values) into an output with as many bands, unless ``band`` picks one.
 
     Parameters
     ----------
@@ -1169,10 +1245,11 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
         Input raster and destination (never the input; written to a temporary file
         in the destination folder and renamed when complete).
     looks : float, optional
-        Number of looks; default estimated from the scene
+        Number of looks; default estimated from the scene, band by band
         (:func:`despeck.speckle.estimate_looks` on a decimated sample), reported in the result.
     window : int, optional
-        Window size; default ``DEFAULT_WINDOWS[method]``.
+        Window size; default ``DEFAULT_WINDOWS[method]``. Odd, at most
+        :data:`MAX_WINDOW` and no larger than the scene's longer side.
     units : str, optional
         Units of the input file (detected if not given).
     out_units : str, optional
@@ -1183,22 +1260,23 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
         Show a progress bar.
     workers : int, optional
         Threads used on each strip batch.
-    band : int
-        SAR band to filter.
+    band : int, optional
+        Filter only this SAR band (from 1) into a one-band output; default every band.
     **options
         Method-specific options (see :func:`filter_options`).
 
     Returns
     -------
     dict
-        What was done: ``method``, ``looks``, ``looks_estimated``, ``window``,
-        ``options`` (including scene-level values such as ``point_threshold``),
-        ``output`` and ``pixels``.
+        What was done: ``method``, ``window``, ``output``, ``pixels`` (per band),
+        ``bands`` (one dict per band filtered: ``band``, ``looks``,
+        ``looks_estimated``, ``options`` including scene-level values such as
+        ``point_threshold``), and the first of those as ``looks``,
+        ``looks_estimated`` and ``options``.
     """
     from tqdm.auto import tqdm
 
     from . import raster
-    from .speckle import estimate_looks
 
     name = str(method).strip().lower()
     get_filter(name)
@@ -1209,78 +1287,107 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
     in_path = pathlib.Path(in_path)
     raster.check_output_path(out_path, [in_path], overwrite=overwrite)
     with raster.open_scene(in_path, units=units) as reader:
-        looks_estimated = looks is None
-        options = dict(options)
-        if looks_estimated or (name == "improved-sigma" and options.get("point_threshold") is None):
-            sample, sample_valid = reader.sample_image(SAMPLE_PIXELS, band=band)
-            if looks_estimated:
-                try:
-                    looks = estimate_looks(sample, sample_valid)
-                except InputError as exc:
-                    raise InputError(f"{in_path}: cannot estimate the number of looks ({exc}); give looks") from None
-                if not math.isfinite(looks):
-                    raise InputError(f"{in_path}: the scene looks constant, cannot estimate the number of looks; give looks")
-            if name == "improved-sigma" and options.get("point_threshold") is None:
-                options["point_threshold"] = _scene_percentile(sample.astype(np.float64), sample_valid)
-        if name not in _PLANS:
-            return _filter_whole_band(name, reader, out_path, looks=looks, looks_estimated=looks_estimated,
-                                      window=window, options=options, out_units=out_units, overwrite=overwrite,
-                                      workers=workers, band=band)
-        plan = _PLANS[name](looks, window, **options)
-        nworkers = _check_workers(workers)
         h, w = reader.height, reader.width
-        rows = _strip_rows(w, plan.halo)
-        starts = list(range(0, h, rows))
-        bar = tqdm(total=h, unit="row", desc=f"{name} {in_path.name}", disable=not progress, leave=False)
-        with raster.open_output(out_path, like=reader, units=out_units, band_count=1, overwrite=overwrite) as writer:
-            with ThreadPoolExecutor(nworkers) as pool:
-                for r0 in starts:
-                    r1 = min(r0 + rows, h)
-                    s0, s1 = max(r0 - plan.halo, 0), min(r1 + plan.halo, h)
-                    data, ok = reader.read(window=_row_window(s0, s1, w), band=band)
-                    data = np.where(ok, data, 0.0)
-                    # the strip with its halo rows, as an image of its own whose top and
-                    # bottom context is real data (or the scene's edge)
-                    result = np.empty((s1 - s0, w), dtype=np.float32)
-                    _run_tiles(plan, data, ok, result, pool if nworkers > 1 else None)
-                    core = slice(r0 - s0, r0 - s0 + (r1 - r0))
-                    core_valid = ok[core]
-                    result = result[core]
-                    result[~core_valid] = 0.0
-                    writer.write(result, _row_window(r0, r1, w), band=1, valid=core_valid)
-                    bar.update(r1 - r0)
+        if window > max(h, w):
+            raise InputError(f"{in_path}: window {window} is larger than the scene ({w} x {h} pixels); "
+                             "choose a smaller window")
+        bands = _bands_to_filter(reader, band, in_path)
+        done = [_band_settings(name, reader, b, looks, options, in_path) for b in bands]
+        # plans first: a bad option or looks value fails before any file exists
+        plans = [_PLANS[name](e["looks"], window, **e["options"]) if name in _PLANS else None for e in done]
+        bar = tqdm(total=h * len(bands), unit="row", desc=f"{name} {in_path.name}", disable=not progress, leave=False)
+        with raster.open_output(out_path, like=reader, units=out_units, band_count=len(bands),
+                                overwrite=overwrite) as writer:
+            for k, (entry, plan) in enumerate(zip(done, plans), start=1):
+                description = reader.descriptions[entry["band"] - 1] if entry["band"] <= len(reader.descriptions) else None
+                if description or entry["band"] != k:  # output band k is input band entry["band"]
+                    writer.set_description(k, description or "")
+                if name not in _PLANS:
+                    _filter_whole_band(name, reader, writer, entry["band"], k, looks=entry["looks"], window=window,
+                                       options=entry["options"], workers=workers)
+                    bar.update(h)
+                    continue
+                _filter_strips(plan, reader, writer, entry["band"], k, workers, bar)
         bar.close()
+    first = done[0]
     return {
         "method": name,
-        "looks": float(looks),
-        "looks_estimated": bool(looks_estimated),
+        "looks": first["looks"],
+        "looks_estimated": first["looks_estimated"],
         "window": window,
-        "options": options,
+        "options": first["options"],
+        "bands": done,
         "output": str(out_path),
         "pixels": int(h) * int(w),
     }
 
 
-def _filter_whole_band(name, reader, out_path, *, looks, looks_estimated, window, options, out_units, overwrite,
-                       workers, band):
-    """Methods without a strip plan (bm3d-log): read the whole band, filter it in memory, write it."""
-    from . import raster
+def _bands_to_filter(reader, band, in_path) -> list:
+    """Every SAR band of ``reader``, or the one ``band`` names (checked)."""
+    if band is None:
+        return list(range(1, reader.band_count + 1))
+    try:
+        b = int(band)
+        if b != float(band):
+            raise ValueError
+    except (TypeError, ValueError, OverflowError):
+        raise InputError(f"band must be a whole number from 1, got {band!r}") from None
+    if not 1 <= b <= reader.band_count:
+        raise InputError(f"{in_path}: band {band} does not exist (the scene has {reader.band_count} SAR band(s))")
+    return [b]
 
+
+def _band_settings(name, reader, band, looks, options, in_path) -> dict:
+    """Looks (given or estimated) and scene-level options of one band."""
+    from .speckle import estimate_looks
+
+    looks_estimated = looks is None
+    options = dict(options)
+    if looks_estimated or (name == "improved-sigma" and options.get("point_threshold") is None):
+        sample, sample_valid = reader.sample_image(SAMPLE_PIXELS, band=band)
+        where = f"{in_path}" if reader.band_count == 1 else f"{in_path} band {band}"
+        if looks_estimated:
+            try:
+                looks = estimate_looks(sample, sample_valid)
+            except InputError as exc:
+                raise InputError(f"{where}: cannot estimate the number of looks ({exc}); give looks") from None
+            if not math.isfinite(looks):
+                raise InputError(f"{where}: the scene looks constant, cannot estimate the number of looks; give looks")
+        if name == "improved-sigma" and options.get("point_threshold") is None:
+            options["point_threshold"] = _scene_percentile(sample.astype(np.float64), sample_valid)
+    return {"band": band, "looks": float(looks), "looks_estimated": bool(looks_estimated), "options": options}
+
+
+def _filter_strips(plan, reader, writer, band, out_band, workers, bar):
+    """Filter one band of ``reader`` strip by strip into ``out_band`` of ``writer``."""
+    nworkers = _check_workers(workers)
+    h, w = reader.height, reader.width
+    rows = _strip_rows(w, plan.halo)
+    with ThreadPoolExecutor(nworkers) as pool:
+        for r0 in range(0, h, rows):
+            r1 = min(r0 + rows, h)
+            s0, s1 = max(r0 - plan.halo, 0), min(r1 + plan.halo, h)
+            data, ok = reader.read(window=_row_window(s0, s1, w), band=band)
+            data = np.where(ok, data, 0.0)
+            # the strip with its halo rows, as an image of its own whose top and
+            # bottom context is real data (or the scene's edge)
+            result = np.empty((s1 - s0, w), dtype=np.float32)
+            _run_tiles(plan, data, ok, result, pool if nworkers > 1 else None)
+            core = slice(r0 - s0, r0 - s0 + (r1 - r0))
+            core_valid = ok[core]
+            result = result[core]
+            result[~core_valid] = 0.0
+            writer.write(result, _row_window(r0, r1, w), band=out_band, valid=core_valid)
+            bar.update(r1 - r0)
+
+
+def _filter_whole_band(name, reader, writer, band, out_band, *, looks, window, options, workers):
+    """Methods without a strip plan (bm3d-log): read the whole band, filter it in memory, write it."""
     h, w = reader.height, reader.width
     data, ok = reader.read(band=band)
     result = FILTERS[name](np.where(ok, data, 0.0), looks=looks, window=window, mask=ok, workers=workers, **options)
     result[~ok] = 0.0
-    with raster.open_output(out_path, like=reader, units=out_units, band_count=1, overwrite=overwrite) as writer:
-        writer.write(result, _row_window(0, h, w), band=1, valid=ok)
-    return {
-        "method": name,
-        "looks": float(looks),
-        "looks_estimated": bool(looks_estimated),
-        "window": window,
-        "options": options,
-        "output": str(out_path),
-        "pixels": int(h) * int(w),
-    }
+    writer.write(result, _row_window(0, h, w), band=out_band, valid=ok)
 
 
 def _row_window(r0, r1, width):

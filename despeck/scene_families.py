@@ -80,6 +80,7 @@ __all__ = [
     "fractal_surface",
     "gamma_texture",
     "muhleman_backscatter",
+    "ground_to_slant",
 ]
 
 SCENE_FAMILIES: tuple[str, ...] = ("terrain", "forest", "fields", "urban", "water", "mixed", "wetland")
@@ -89,6 +90,7 @@ SPLITS = ("train", "test")
 
 NOISE_FLOOR_DB = -28.0  # noise-equivalent sigma nought, C-band common practice
 _MIN_BOX = 16
+_MIN_POINTS = 3
 _TERRAIN_PAD = 0.4  # margin per unit of max(h, w) * tan(rms slope) * cot(incidence)
 _POINT_GAIN_DB = (15.0, 25.0)
 
@@ -469,6 +471,19 @@ def _place_points(scene, boxes, n, rng, *, gain_db=_POINT_GAIN_DB, min_sep=12):
             points.append((r, c))
             if len(points) >= n:
                 break
+    # too few constant backgrounds (rare: steep terrain, dense town): lay small flat pads
+    # (a car park, a clearing) of the local median and put the target in the middle
+    tries = 0
+    while len(points) < min(n, _MIN_POINTS) and tries < 200:
+        tries += 1
+        r, c = int(rng.integers(8, h - 8)), int(rng.integers(8, w - 8))
+        if any(abs(r - pr) < min_sep + 8 and abs(c - pc) < min_sep + 8 for pr, pc in points):
+            continue
+        if any(r0 - 15 < r < r1 + 15 and c0 - 15 < c < c1 + 15 for r0, c0, r1, c1 in boxes):
+            continue
+        pad = scene[r - 7 : r + 8, c - 7 : c + 8]
+        pad[:] = np.median(pad)
+        points.append((r, c))
     for r, c in points:
         scene[r, c] *= _lin(rng.uniform(*gain_db))
     return points
@@ -542,6 +557,96 @@ def _parcel_cover(shape, labels, n, rng, row_period, weights=None, row_dir=None)
 # --------------------------------------------------------------------------- families
 
 
+def ground_to_slant(ground, elevation, incidence_deg: float, *, margin: int):
+    """Image a ground-range reflectivity map side-looking, in slant range.
+
+    The radar looks along the columns from the left (near range at column 0) with
+    incidence angle ``incidence_deg`` on flat ground. In the plane-wave approximation a
+    ground point at column x and height z lies at slant position
+    ``rho = x - z cot(theta)`` (in flat-ground pixel units), so slopes facing the radar
+    (dz/dx > 0) are foreshortened by the factor ``1 - dz/dx cot(theta)`` and appear
+    brighter, slopes facing away are stretched and darker. Each output pixel collects the
+    ground signal whose ``rho`` falls into it (energy is conserved along a row). Layover
+    (``dz/dx > tan(theta)``) is collapsed onto the nearest range. Ground hidden from the
+    radar by terrain nearer in range (radar shadow, where ``z + x cot(theta)`` is below
+    its running maximum) returns nothing (0; add the noise floor afterwards).
+
+    Parameters
+    ----------
+    ground : ndarray (rows, cols_ground)
+        Reflectivity per unit ground area (already including the local-incidence law).
+    elevation : ndarray (rows, cols_ground)
+        Height in ground-pixel units.
+    incidence_deg : float
+        Incidence angle on flat ground, degrees (0 < theta < 90).
+    margin : int
+        Ground columns on each side not imaged (room for the range shifts
+        ``z cot(theta)``); the output has ``cols_ground - 2 margin`` columns, output
+        column j centred on ``rho = margin + j``.
+
+    Returns
+    -------
+    ndarray of float64, (rows, cols_ground - 2 margin). Runs of exactly equal ground
+    values on level ground that cover a whole output pixel give exactly that value.
+
+    References
+    ----------
+    Oliver, C., Quegan, S. (1998). Understanding Synthetic Aperture Radar Images.
+    Artech House (imaging geometry: foreshortening, layover, shadow).
+    """
+    ground = np.asarray(ground, dtype=np.float64)
+    z = np.asarray(elevation, dtype=np.float64)
+    if ground.ndim != 2 or ground.shape != z.shape:
+        raise InputError(f"ground and elevation must be 2-D arrays of one shape, got {ground.shape} and {z.shape}")
+    if not 0.0 < incidence_deg < 90.0:
+        raise InputError(f"incidence angle must be between 0 and 90 degrees, got {incidence_deg}")
+    h, wg = ground.shape
+    pad = int(margin)
+    w = wg - 2 * pad
+    if pad < 0 or w < 1:
+        raise InputError(f"margin {margin} leaves no output columns for {wg} ground columns")
+    theta = np.deg2rad(incidence_deg)
+    cot = 1.0 / np.tan(theta)
+    x = np.arange(wg, dtype=np.float64)
+    # radar shadow: hidden from the radar by terrain nearer in range
+    q = z + x[None, :] * cot
+    shadow = np.maximum.accumulate(q, axis=1) > q + 1e-9
+    ground = np.where(shadow, 0.0, ground)
+    # ground range -> slant range; the running maximum keeps the mapping monotonic
+    rho = x[None, :] - z * cot
+    rho_e = np.empty((h, wg + 1))
+    rho_e[:, 1:-1] = 0.5 * (rho[:, 1:] + rho[:, :-1])
+    rho_e[:, 0] = rho[:, 0] - 0.5
+    rho_e[:, -1] = rho[:, -1] + 0.5
+    rho_e = np.maximum.accumulate(rho_e, axis=1) + 1e-7 * np.arange(wg + 1)[None, :]
+    cum = np.zeros((h, wg + 1))
+    np.cumsum(ground, axis=1, out=cum[:, 1:])
+    # one interpolation for all rows: rows are stacked on disjoint stretches of the axis
+    span = float(rho_e.max() - rho_e.min()) + wg + 4.0
+    off = (np.arange(h) * span)[:, None]
+    # queries outside a row's imaged range clamp to its ends (no ground there: zero)
+    q_edges = np.clip(pad - 0.5 + np.arange(w + 1)[None, :], rho_e[:, :1], rho_e[:, -1:]) + off
+    xp = (rho_e + off).ravel()
+    e_at = np.interp(q_edges.ravel(), xp, np.tile(np.arange(wg + 1, dtype=np.float64), h)).reshape(h, w + 1)
+    # the cumulated ground signal is linear in the edge index between knots
+    rr = np.arange(h)[:, None]
+    e0 = np.clip(np.floor(e_at).astype(np.int64), 0, wg - 1)
+    c_at = cum[rr, e0] + (e_at - e0) * (cum[rr, e0 + 1] - cum[rr, e0])
+    img = np.diff(c_at, axis=1)
+    # where an output pixel lies inside one run of equal ground values at one height
+    # (level ground: no foreshortening), use that value exactly, so flat untextured
+    # ground stays exactly constant in the image
+    run = np.zeros((h, wg), dtype=np.int64)
+    run[:, 1:] = np.cumsum((ground[:, 1:] != ground[:, :-1]) | (z[:, 1:] != z[:, :-1]), axis=1)
+    lo = e0[:, :-1]
+    hi = np.clip(np.ceil(e_at[:, 1:]).astype(np.int64) - 1, 0, wg - 1)
+    hi = np.maximum(hi, lo)
+    level = np.zeros((h, wg), dtype=bool)  # both pixel edges at the pixel's own height
+    level[:, 1:-1] = (z[:, 1:-1] == z[:, :-2]) & (z[:, 1:-1] == z[:, 2:])
+    same = (run[rr, lo] == run[rr, hi]) & level[rr, lo] & level[rr, hi] & ~shadow[rr, lo]
+    return np.where(same, ground[rr, lo], img)
+
+
 def _terrain(shape, p, rng):
     h, w = shape
     theta = np.deg2rad(p["incidence_deg"])
@@ -590,42 +695,8 @@ def _terrain(shape, p, rng):
     floor_scene = _parcel_cover((h, wg), labels, n, rng, 4.0, weights=[0.3, 0.35, 0.1, 0.0, 0.25])
     ground = np.where(on_floor, floor_scene, ground)
     ground = np.where(lake, _lin(rng.uniform(-24, -20)), ground)
-    # radar shadow: hidden from the radar by terrain nearer in range
-    x = np.arange(wg, dtype=np.float64)
-    q = z + x[None, :] * cot
-    shadow = np.maximum.accumulate(q, axis=1) > q + 1e-9
-    ground = np.where(shadow, 0.0, ground)
-
-    # ground range -> slant range (plane-wave approximation): rho = x - z cot(theta).
-    # Layover is collapsed onto the nearest range (running maximum), which keeps the
-    # mapping monotonic; foreshortened slopes gather more ground into a pixel.
-    rho = x[None, :] - z * cot
-    rho_e = np.empty((h, wg + 1))
-    rho_e[:, 1:-1] = 0.5 * (rho[:, 1:] + rho[:, :-1])
-    rho_e[:, 0] = rho[:, 0] - 0.5
-    rho_e[:, -1] = rho[:, -1] + 0.5
-    rho_e = np.maximum.accumulate(rho_e, axis=1) + 1e-7 * np.arange(wg + 1)[None, :]
-    cum = np.zeros((h, wg + 1))
-    np.cumsum(ground, axis=1, out=cum[:, 1:])
-    off = (np.arange(h) * 4.0 * (wg + 4 * pad))[:, None]
-    q_edges = pad - 0.5 + np.arange(w + 1)[None, :] + off
-    xp = (rho_e + off).ravel()
-    e_at = np.interp(q_edges.ravel(), xp, np.tile(np.arange(wg + 1, dtype=np.float64), h)).reshape(h, w + 1)
-    # the cumulated ground signal is linear in the edge index between knots
-    rr = np.arange(h)[:, None]
-    e0 = np.clip(np.floor(e_at).astype(np.int64), 0, wg - 1)
-    c_at = cum[rr, e0] + (e_at - e0) * (cum[rr, e0 + 1] - cum[rr, e0])
-    img = np.diff(c_at, axis=1)
-    # where a range pixel lies inside one run of equal ground values, use that value
-    # exactly, so flat untextured ground stays exactly constant in the image
-    run = np.zeros((h, wg), dtype=np.int64)
-    run[:, 1:] = np.cumsum(ground[:, 1:] != ground[:, :-1], axis=1)
-    pix = np.clip(np.floor(e_at).astype(np.int64), 0, wg - 1)
-    lo, hi = pix[:, :-1], np.clip(np.ceil(e_at[:, 1:]).astype(np.int64) - 1, 0, wg - 1)
-    same = run[rr, lo] == run[rr, np.maximum(hi, lo)]
-    img = np.where(same, ground[rr, lo], img)
-    img = img + _lin(NOISE_FLOOR_DB)
-    return img
+    img = ground_to_slant(ground, z, p["incidence_deg"], margin=pad)
+    return img + _lin(NOISE_FLOOR_DB)
 
 
 def _forest(shape, p, rng):
@@ -723,19 +794,25 @@ def _urban(shape, p, rng):
     scene = np.where(lawn, _lin(rng.uniform(-13, -9, nb))[block], scene)
     trees = lawn & (_smooth(shape, 3.0, rng) > 1.6)
     scene = np.where(trees, _lin(-7.0) * gamma_texture(shape, 3.0, 1.0, rng=rng), scene)
-    # buildings: each built block split into 1-3 buildings along u, inset from the street
+    # buildings: each built block split into 1-4 x 1-3 buildings, inset from the street,
+    # separated by alleys and courtyards
     inset = rng.uniform(1.0, 3.0, nb)
-    nsplit = rng.integers(1, 4, nb)
-    bu = lu - street - inset[block]
-    width_u = su - street - 2 * inset[block]
-    part = np.floor(bu / np.maximum(width_u, 1) * nsplit[block]).astype(np.int64)
-    seg = width_u / nsplit[block]
-    in_seg = bu - part * seg
-    gap = 1.5
-    bld = (built[block] & (bu >= 0) & (bu < width_u) & (lv >= street + inset[block])
-           & (lv < sv - inset[block]) & (in_seg >= 0) & (in_seg < seg - gap))
-    bid = np.where(bld, block * 4 + part, -1)
-    nbid = nb * 4
+    gap = rng.uniform(1.5, 4.0, nb)[block]
+
+    def split(local, size, nmax):
+        ns = rng.integers(1, nmax + 1, nb)[block]
+        b = local - street - inset[block]
+        extent = size - street - 2 * inset[block]
+        part = np.clip(np.floor(b / np.maximum(extent, 1) * ns), 0, 3).astype(np.int64)
+        seg = extent / ns
+        within = b - part * seg
+        return part, (b >= 0) & (b < extent) & (within < seg - gap)
+
+    part_u, ok_u = split(lu, su, 4)
+    part_v, ok_v = split(lv, sv, 3)
+    bld = built[block] & ok_u & ok_v
+    bid = np.where(bld, block * 16 + part_u * 4 + part_v, -1)
+    nbid = nb * 16
     height = p["height_px"] * rng.uniform(0.5, 1.5, nbid)
     roof_db = rng.uniform(-11, -4, nbid)
     roof = _lin(roof_db)[np.maximum(bid, 0)] * gamma_texture(shape, 8.0, 0.8, rng=rng)
@@ -763,7 +840,7 @@ def _urban(shape, p, rng):
     side = bld & ~(np.roll(bld, 1 if a > 0 else -1, axis=0))
     side_line = np.roll(side, -1 if a > 0 else 1, axis=0) & ~bld
     g1 = rng.uniform(18, 30, nbid) - 0.5 * np.rad2deg(abs(a))
-    g2 = rng.uniform(10, 15, nbid)
+    g2 = rng.uniform(10, 16, nbid)
     bid_left = np.full(shape, -1)
     bid_left[:, :-1] = bid[:, 1:]
     scene = np.where(db_line, _lin(-8.0) * _lin(g1)[np.maximum(bid_left, 0)], scene)

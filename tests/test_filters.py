@@ -431,3 +431,58 @@ def test_refined_lee_matches_a_naive_per_pixel_loop(rng):
             m, var = v.mean(), v.var()
             gain = 0.0 if var == 0 else min(max((1 - (1 / looks) * m * m / var) / (1 + 1 / looks), 0.0), 1.0)
             assert out[r, c] == pytest.approx(m + gain * (noisy[r, c] - m), rel=1e-5), (r, c)
+
+
+# --------------------------------------------------------------------------- domains and sizes
+
+@pytest.mark.parametrize("xi", [0.5, 0.9, 0.99])
+def test_sigma_interval_domain_is_solved_inside_and_refused_outside(xi):
+    # Inside the domain the interval has probability xi and truncated mean 1 by
+    # scipy.stats.gamma integration (independent of the incomplete-Gamma route in code);
+    # just outside it the filter refuses with a one-line error naming the looks.
+    low, high = filters.sigma_domain(xi)
+    assert 0.0 < low < 0.5 and high > 1e6  # the looks real data have (1 to hundreds) are inside
+    for looks in np.geomspace(low * 1.05, 1e4, 6):
+        a1, a2, _ = filters.sigma_interval(looks, xi)
+        g = stats.gamma(a=looks, scale=1 / looks)
+        assert g.cdf(a2) - g.cdf(a1) == pytest.approx(xi, abs=1e-7)
+        mean = integrate.quad(lambda x: x * g.pdf(x), a1, a2, points=[1.0], limit=200)[0] / xi
+        assert mean == pytest.approx(1.0, abs=1e-6)
+    for looks in (low / 1.1, high * 1.1, 1e-3):
+        with pytest.raises(InputError, match=r"^looks .* outside the improved sigma filter's domain"):
+            filters.sigma_interval(looks, xi)
+    with pytest.raises(InputError, match="looks"):
+        filters.improved_sigma(np.ones((20, 20)), looks=1e-3)
+
+
+def test_absurd_windows_are_refused_before_any_allocation():
+    assert filters.check_window(filters.MAX_WINDOW) == filters.MAX_WINDOW
+    for window in (filters.MAX_WINDOW + 2, 100001, 10**12 + 1):
+        with pytest.raises(InputError, match=r"window must be at most"):
+            filters.lee(np.ones((10, 10), np.float32), looks=1, window=window)
+    with pytest.raises(InputError, match="patch must be at most"):
+        filters.nonlocal_glr(np.ones((10, 10), np.float32), looks=1, patch=100001)
+
+
+def test_filter_raster_filters_every_band_or_the_one_asked(rng, tmp_path):
+    # A two-band file (e.g. two polarisations) used to come back with band 1 only.
+    bands = np.stack([gamma_speckle((48, 40), 1, rng=rng), 5.0 * gamma_speckle((48, 40), 1, rng=rng)]).astype(np.float32)
+    src = tmp_path / "two.tif"
+    with rasterio.open(src, "w", driver="GTiff", width=40, height=48, count=2, dtype="float32", crs="EPSG:32631",
+                       transform=Affine(10, 0, 500000, 0, -10, 5800000)) as ds:
+        ds.write(bands)
+    info = filters.filter_raster("lee", src, tmp_path / "all.tif", looks=1, progress=False)
+    assert [b["band"] for b in info["bands"]] == [1, 2]
+    with rasterio.open(tmp_path / "all.tif") as ds:
+        assert ds.count == 2
+        for k in range(2):
+            np.testing.assert_array_equal(ds.read(k + 1), filters.lee(bands[k], looks=1))
+    info = filters.filter_raster("lee", src, tmp_path / "second.tif", looks=1, band=2, progress=False)
+    with rasterio.open(tmp_path / "second.tif") as ds:
+        assert ds.count == 1
+        np.testing.assert_array_equal(ds.read(1), filters.lee(bands[1], looks=1))
+    with pytest.raises(InputError, match="band 3 does not exist"):
+        filters.filter_raster("lee", src, tmp_path / "third.tif", looks=1, band=3, progress=False)
+    with pytest.raises(InputError, match=r"window 49 is larger than the scene \(40 x 48 pixels\)"):
+        filters.filter_raster("boxcar", src, tmp_path / "wide.tif", looks=1, window=49, progress=False)
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["all.tif", "second.tif", "two.tif"]

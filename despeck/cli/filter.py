@@ -21,6 +21,8 @@ def add_arguments(parser):
                              + ", ".join(f"{k} {v}" for k, v in DEFAULT_WINDOWS.items()) + ")")
     parser.add_argument("--option", action="append", default=[], metavar="KEY=VALUE",
                         help="method-specific option, repeatable (e.g. damping=2 for frost, xi=0.8 for improved-sigma)")
+    parser.add_argument("--band", type=int, metavar="N",
+                        help="filter only SAR band N (from 1); default: every band, like apply")
     parser.add_argument("--units", choices=("intensity", "amplitude", "db", "complex"),
                         help="units of the input (default: detected, else linear intensity)")
     parser.add_argument("--out-units", choices=("intensity", "amplitude", "db"),
@@ -47,10 +49,15 @@ def run(args) -> int:
 
     info = filter_raster(
         args.method, args.input, args.output, looks=args.looks, window=args.window, units=args.units,
-        out_units=args.out_units, overwrite=args.overwrite, progress=not args.quiet, **parse_options(args.option),
+        out_units=args.out_units, overwrite=args.overwrite, progress=not args.quiet, band=args.band,
+        **parse_options(args.option),
     )
     if not args.quiet:
-        how = "estimated from the scene" if info["looks_estimated"] else "given"
-        extra = "".join(f", {k}={v:.6g}" if isinstance(v, float) else f", {k}={v}" for k, v in info["options"].items())
-        print(f"{info['method']}: window {info['window']}, looks {info['looks']:.3g} ({how}){extra} -> {info['output']}")
+        for entry in info["bands"]:
+            how = "estimated from the scene" if entry["looks_estimated"] else "given"
+            extra = "".join(f", {k}={v:.6g}" if isinstance(v, float) else f", {k}={v}"
+                            for k, v in entry["options"].items())
+            label = f"band {entry['band']}: " if len(info["bands"]) > 1 or args.band is not None else ""
+            print(f"{info['method']}: {label}window {info['window']}, looks {entry['looks']:.3g} ({how}){extra} "
+                  f"-> {info['output']}")
     return 0
