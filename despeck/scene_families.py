@@ -385,7 +385,7 @@ def _grid_parcels(shape, scale, angle_deg, rng):
     widths = scale * rng.uniform(0.5, 1.5, n_u)
     edges = u0 - rng.uniform(0, 1) * widths[0] + np.cumsum(widths)
     iu = np.searchsorted(edges, u)
-    lengths = scale * rng.uniform(0.8, 3.0, n_u + 1)
+    lengths = scale * rng.uniform(0.8, 2.2, n_u + 1)
     offs = rng.uniform(0, 1, n_u + 1) * lengths
     iv = np.floor((v - v0 + offs[iu]) / lengths[iu]).astype(np.int64)
     n_v = int(iv.max()) + 1
@@ -664,7 +664,7 @@ def _terrain(shape, p, rng):
     gy, gx = np.gradient(z0)
     z0 *= tan_s / np.sqrt(np.mean(gx**2 + gy**2) / 2)
     # flat valley floors (fields) with lakes in the deepest parts
-    q_floor, q_lake = rng.uniform(0.15, 0.35), rng.uniform(0.0, 0.1)
+    q_floor, q_lake = rng.uniform(0.08, 0.25), rng.uniform(0.0, 0.07)
     floor, lake_level = np.quantile(z0, [q_floor, q_lake])
     z = np.maximum(z0, floor)
     on_floor = z0 <= floor
@@ -691,7 +691,7 @@ def _terrain(shape, p, rng):
     veg = np.where(forest, _gamma_map(g, rng.uniform(3, 6)), _gamma_map(g, rng.uniform(8, 15)))
     ground = _lin(cover_db) * veg * ratio
     # valley floor: untextured parcels, flat so the incidence is nominal everywhere
-    labels, n = _voronoi((h, wg), rng.uniform(30, 70), rng, warp=0.0, mask=on_floor)
+    labels, n = _voronoi((h, wg), rng.uniform(35, 80), rng, warp=0.0, mask=on_floor)
     floor_scene = _parcel_cover((h, wg), labels, n, rng, 4.0, weights=[0.3, 0.35, 0.1, 0.0, 0.25])
     ground = np.where(on_floor, floor_scene, ground)
     ground = np.where(lake, _lin(rng.uniform(-24, -20)), ground)
@@ -704,7 +704,9 @@ def _forest(shape, p, rng):
     stands, n = _voronoi(shape, rng.uniform(90, 180), rng, warp=0.15)
     stand_db = rng.uniform(-8.5, -5.5, n)
     tex = gamma_texture(shape, p["texture_looks"], p["corr_px"], rng=rng)
-    scene = _lin(stand_db)[stands] * tex
+    # crown clumps and gaps at a few tens of metres: about +-1 dB around the stand mean
+    clumps = _lin(rng.uniform(0.6, 1.3) * _smooth_coarse(shape, rng.uniform(5.0, 10.0), rng, factor=2))
+    scene = _lin(stand_db)[stands] * clumps * tex
     # clearings: blobs plus straight tracks / firebreaks
     blob = _smooth(shape, rng.uniform(12, 25), rng)
     clear = blob > np.quantile(blob, 1.0 - p["clearing_frac"])
@@ -723,8 +725,9 @@ def _forest(shape, p, rng):
 
 def _fields(shape, p, rng, params_rng=None):
     h, w = shape
-    zones, boxes = _zones(shape, int(rng.integers(2, 5)), rng, wobble=20.0)
+    zones, boxes = _zones(shape, int(rng.integers(2, 5)), rng, wobble=4.0)
     scene = np.zeros(shape)
+    pid = np.zeros(shape, dtype=np.int64)  # parcel id over the whole scene
     ang_sign = rng.choice([-1.0, 1.0])
     for z, sl in boxes:
         sub = (sl[0].stop - sl[0].start, sl[1].stop - sl[1].start)
@@ -740,13 +743,14 @@ def _fields(shape, p, rng, params_rng=None):
         part = _parcel_cover(sub, labels, n, rng, p["row_period_px"], row_dir=row_dir)
         m = zones[sl] == z
         scene[sl][m] = part[m]
+        pid[sl][m] = labels[m] + z * 1_000_000
     # hedges along a share of the parcel boundaries, casting short shadows
     bound = np.zeros(shape, dtype=bool)
-    bound[:, 1:] |= scene[:, 1:] != scene[:, :-1]
-    bound[1:, :] |= scene[1:, :] != scene[:-1, :]
-    keep = _smooth(shape, 40.0, rng) > rng.uniform(0.3, 1.0)
+    bound[:, 1:] |= pid[:, 1:] != pid[:, :-1]
+    bound[1:, :] |= pid[1:, :] != pid[:-1, :]
+    keep = _smooth_coarse(shape, 40.0, rng) > rng.uniform(-0.3, 0.8)
     hedge = ndimage.binary_dilation(bound & keep, iterations=1)
-    hedge_val = _lin(rng.uniform(-8, -6)) * gamma_texture(shape, 3.0, 0.8, rng=rng)
+    hedge_val = _lin(rng.uniform(-7, -4.5)) * gamma_texture(shape, 3.0, 0.8, rng=rng)
     scene = np.where(hedge, hedge_val, scene)
     scene, _ = _edge_effects(scene, hedge, np.full(shape, 1.5), p["incidence_deg"],
                              near_gain_db=1.0, shadow_value=_lin(-20.0), near_px=1)
@@ -858,13 +862,15 @@ def _urban(shape, p, rng):
 def _water_mask(shape, frac, rng):
     h, w = shape
     kind = rng.choice(["sea", "lake", "river"])
-    f = _smooth(shape, rng.uniform(25, 45), rng) + 0.5 * _smooth(shape, 6.0, rng)
+    # large-scale shape plus a fractal coastline (bays, headlands, small islands)
+    f = _smooth_coarse(shape, rng.uniform(50, 90) * max(h, w) / 512, rng) + 0.35 * fractal_surface(shape, 3.2, rng=rng)
     if kind == "sea":
         ang = rng.uniform(0, 2 * np.pi)
         r, c = np.mgrid[0:h, 0:w]
         ramp = (np.cos(ang) * (r - h / 2) + np.sin(ang) * (c - w / 2)) / (0.25 * max(h, w))
-        f = f + 2.0 * ramp
+        f = f + 2.5 * ramp
     if kind == "river":
+        f = 0.5 * f
         river = _line_mask(shape, rng, rng.uniform(0.04, 0.1) * min(h, w), curvy=rng.uniform(20, 60))
         f = f + 3.0 * river
     water = f > np.quantile(f, 1.0 - frac)
@@ -887,8 +893,9 @@ def _water(shape, p, rng):
     # wind-roughened patches: streaky (elongated along the wind) brightening, exactly
     # zero outside the patches so calm water stays constant
     wind_dir = rng.random() < 0.5
-    streak = _smooth(shape, 30.0, rng, sigma_cols=10.0) if wind_dir else _smooth(shape, 10.0, rng, sigma_cols=30.0)
-    rough = np.clip((streak - rng.uniform(0.3, 1.0)) / 1.0, 0.0, 1.0)
+    gusts = _smooth_coarse(shape, 45.0, rng)
+    streak = _smooth(shape, 16.0, rng, sigma_cols=3.0) if wind_dir else _smooth(shape, 3.0, rng, sigma_cols=16.0)
+    rough = np.clip((gusts + 0.35 * streak - rng.uniform(0.0, 0.9)) / 1.2, 0.0, 1.0)
     water_db = base + p["wind_db"] * rough
     scene = np.where(water, _lin(water_db), scene)
     # shoreline: a bright rim on part of the coast (rocks, surf, embankments)

@@ -31,14 +31,17 @@ def main(argv=None):
     ap.add_argument("--layout", action="store_true", help="draw layout boxes and points")
     args = ap.parse_args(argv)
 
-    fams = SCENE_FAMILIES
+    # every family, plus the first one again from the other split
+    other = "test" if args.split == "train" else "train"
+    panels = [(f, args.split if f in TRAINING_FAMILIES else "test") for f in SCENE_FAMILIES]
+    panels.append((SCENE_FAMILIES[0], other))
+    fams = panels
     ncol = 4
     nrow = int(np.ceil(len(fams) / ncol))
     fig, axes = plt.subplots(nrow, ncol, figsize=(4 * ncol, 4.2 * nrow))
     for ax in axes.ravel():
         ax.axis("off")
-    for i, fam in enumerate(fams):
-        split = args.split if fam in TRAINING_FAMILIES else "test"
+    for i, (fam, split) in enumerate(fams):
         scene, layout = make_family_scene(fam, (args.size, args.size), rng=args.seed + i, split=split,
                                           return_layout=True)
         ax = axes.ravel()[i]
