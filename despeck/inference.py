@@ -482,6 +482,7 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         return clean[r0:r1]
 
     def emit_rows(r0, r1, estimate, source):
+        _check_finite(estimate, source, r0, "intensity array")
         result[r0:r1] = np.where(source > 0, estimate, x[r0:r1])
 
     bar = _make_bar(x.size, "despeckle", progress)
@@ -561,6 +562,26 @@ def _gdal_threads(threads):
     return rasterio.Env(GDAL_NUM_THREADS=str(threads))
 
 
+def _check_finite(estimate, source, r0, name, band=None):
+    """Raise :class:`InputError` if the model gave NaN or infinity for a valid input pixel.
+
+    Such a pixel would otherwise be written as nodata, and a broken model (damaged
+    weights, absurd calibration) would turn a whole scene into nodata while the run
+    reported success.
+    """
+    if np.isfinite(estimate).all():
+        return
+    bad = ~np.isfinite(estimate) & (source > 0)
+    if not bad.any():
+        return
+    rows = np.flatnonzero(bad.any(axis=1))
+    where = f"rows {r0 + rows[0]}-{r0 + rows[-1]}" + (f" of band {band}" if band is not None else "")
+    raise InputError(
+        f"{name}: the model gave non-finite values (NaN or infinity) for {int(bad.sum())} valid pixel(s) in {where}; "
+        "the model file may be damaged or unsuited to these data"
+    )
+
+
 class _BlockWriter:
     """Writes finished rows in whole rows of the output's blocks, a few blocks wide at a time.
 
@@ -571,9 +592,10 @@ class _BlockWriter:
     conversion temporaries small whatever the scene's width.
     """
 
-    def __init__(self, writer, band, block_shape):
+    def __init__(self, writer, band, block_shape, name=None):
         self.writer = writer
         self.band = band
+        self.name = writer.path if name is None else name  # named in errors
         self.block_rows, block_cols = block_shape
         self.width = writer.width
         self.height = writer.height
@@ -592,6 +614,7 @@ class _BlockWriter:
             self.writer.write(values[:, c0:c1], Window(c0, r0, c1 - c0, n), band=self.band, valid=valid)
 
     def __call__(self, r0, r1, estimate, source):
+        _check_finite(estimate, source, r0, self.name, self.band if self.writer.band_count > 1 else None)
         n = r1 - r0
         aligned = self.held == 0 and r0 % self.block_rows == 0
         if aligned and (r1 % self.block_rows == 0 or r1 == self.height):
@@ -700,8 +723,8 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                             return intensity
 
                         try:
-                            _stream(grid, read_rows, _BlockWriter(writer, band, block_shape), runner, batch_size,
-                                    bar, chunk_rows=chunk)
+                            _stream(grid, read_rows, _BlockWriter(writer, band, block_shape, reader.path), runner,
+                                    batch_size, bar, chunk_rows=chunk)
                         finally:
                             runner.restore()
                         channels_last = runner.channels_last

@@ -353,6 +353,49 @@ def _doubts(values, units) -> list:
 
 # --------------------------------------------------------------------------- paths
 
+class OutputFolderError(RasterError):
+    """The output folder cannot take any file: read-only, no permission, or its disk is full.
+
+    Unlike other write errors, the next output into the same folder would fail too, so
+    a batch stops at the first one.
+    """
+
+
+# An output folder with less free space than this cannot take any raster (a few blocks).
+_MIN_FREE_BYTES = 1 << 16
+
+# Kinds of write_problem() that no other output into the same folder can escape.
+_FOLDER_KINDS = ("read-only", "permission", "full")
+
+
+def _error_detail(exc) -> str:
+    """The most specific message in an error's chain of causes, on one line.
+
+    rasterio reports a failed read or write as "Read failed. See previous exception
+    for details."; the causes hold GDAL's own message (e.g. the bytes missing).
+    """
+    messages, seen = [], exc
+    while seen is not None and len(messages) < 10:
+        text = " ".join(str(getattr(seen, "strerror", None) or seen).split())
+        if text:
+            messages.append(text)
+        seen = seen.__cause__ or seen.__context__
+    useful = [m for m in messages if "see previous exception" not in m.lower()]
+    return (useful or messages or [type(exc).__name__])[-1]
+
+
+def _write_error(path, exc=None, partial=None, what="cannot write the output") -> RasterError:
+    """A one-line error for a failed write, naming the folder when it is the cause."""
+    path = pathlib.Path(path)
+    folder = path.parent
+    problem = write_problem(folder, exc, partial=partial)
+    if problem is not None and problem.kind in _FOLDER_KINDS:
+        return OutputFolderError(f"{path}: cannot write in the output folder {folder}: {problem.text}; "
+                                 "nothing was written")
+    reason = problem.text if problem is not None else _error_detail(exc) if exc is not None else "unknown error"
+    return RasterError(f"{path}: {what}: {reason}; nothing was written at the destination")
+
+
 def _same_file(a: pathlib.Path, b: pathlib.Path) -> bool:
     try:
         if a.exists() and b.exists():
@@ -392,7 +435,7 @@ def check_output_path(output, inputs, *, overwrite=False, create_dir=True) -> pa
         try:
             parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:
-            raise OutputFolderError(f"{out}: cannot create the output folder {parent}: {exc.strerror or exc}") from None
+            raise OutputFolderError(f"{out}: cannot create output directory {parent}: {exc.strerror or exc}") from None
     elif not parent.is_dir():
         raise RasterError(f"{out}: {parent} is not a directory")
     try:

@@ -50,6 +50,9 @@ def add_arguments(parser):
                         help="run the network in bfloat16 where the CPU supports it (faster, slightly less exact)")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace existing outputs (inputs are never overwritten)")
+    parser.add_argument("--busy", choices=("skip", "fail"), default="skip",
+                        help="an output another despeck process is writing at the same time: skip it with a "
+                             "warning (default; exit status 0) or count it as failed")
     parser.add_argument("--quiet", action="store_true", help="no progress bars or per-file lines")
 
 
@@ -167,21 +170,43 @@ def run(args) -> int:
             # Check the tile options once, before any file is touched.
             side = 2 * max(model.receptive_field, args.tile or 1)
             resolve_tiling((side, side), model, tile=args.tile, overlap=args.overlap)
-            done, skipped, failed = _run_all(args, inputs, outputs, model)
+            counts = _run_all(args, inputs, outputs, model)
     finally:
         signal.signal(signal.SIGTERM, previous)
     if not args.quiet and len(inputs) > 1:
-        print(f"{done} written, {skipped} skipped, {failed} failed")
-    return 2 if failed else 0
+        extra = "".join(f", {counts[k]} {k}" for k in ("busy", "not attempted") if counts[k])
+        print(f"{counts['written']} written, {counts['skipped']} skipped, {counts['failed']} failed{extra}")
+    return 2 if counts["failed"] or counts["not attempted"] else 0
 
 
-def _run_all(args, inputs, outputs, model):
+def _one_line(exc) -> str:
+    return " ".join(str(exc).split()) or type(exc).__name__
+
+
+def _run_all(args, inputs, outputs, model) -> dict:
+    """Despeckle each input; return the counts of outputs written, skipped, busy, failed, not attempted.
+
+    A file that fails (unreadable or cut-off input, a write that fails) is reported in
+    one line and the batch goes on. An output folder that can take no file at all
+    (read-only, no permission, disk full) fails the output in one line and every
+    later output into the same folder is not attempted: it could not succeed. An output
+    another despeck process is writing is skipped with a warning (``--busy skip``) or
+    counted as failed (``--busy fail``).
+    """
+    from rasterio.errors import RasterioError
+
     from ..inference import despeckle_file
+    from ..raster import OutputBusyError, OutputFolderError
 
-    done = skipped = failed = 0
-    for src, dst in zip(inputs, outputs):
+    counts = dict.fromkeys(("written", "skipped", "busy", "failed", "not attempted"), 0)
+    unusable = set()  # output folders that can take no file
+    for k, (src, dst) in enumerate(zip(inputs, outputs)):
+        folder = os.path.abspath(dst.parent)
+        if folder in unusable:
+            counts["not attempted"] += 1
+            continue
         if dst.exists() and not args.overwrite:
-            skipped += 1
+            counts["skipped"] += 1
             if not args.quiet:
                 print(f"{src} -> {dst}: exists, skipped (use --overwrite to redo)")
             continue
@@ -192,12 +217,34 @@ def _run_all(args, inputs, outputs, model):
                 tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=args.bf16,
                 progress=not args.quiet,
             )
-        except DespeckError as exc:
-            # One bad scene must not stop a batch; the exit status reports it.
-            failed += 1
-            print(f"despeck: error: {exc}", file=sys.stderr)
+        except OutputBusyError as exc:
+            if args.busy == "fail":
+                counts["failed"] += 1
+                print(f"despeck: error: {exc}", file=sys.stderr)
+            else:
+                counts["busy"] += 1
+                print(f"despeck: warning: {exc}; skipped", file=sys.stderr)
             continue
-        done += 1
+        except OutputFolderError as exc:
+            counts["failed"] += 1
+            unusable.add(folder)
+            rest = sum(1 for d in outputs[k + 1:] if os.path.abspath(d.parent) == folder)
+            tail = f"; stopped: the {rest} remaining output(s) for this folder were not attempted" if rest else ""
+            print(f"despeck: error: {exc}{tail}", file=sys.stderr)
+            continue
+        except (DespeckError, OSError, RasterioError) as exc:
+            if dst.exists() and not args.overwrite:
+                # another process finished this output while we were starting on it
+                counts["skipped"] += 1
+                if not args.quiet:
+                    print(f"{src} -> {dst}: written meanwhile by another process, skipped")
+                continue
+            # One bad scene must not stop a batch; the exit status reports it.
+            counts["failed"] += 1
+            text = _one_line(exc) if isinstance(exc, DespeckError) else f"{src}: {_one_line(exc)}"
+            print(f"despeck: error: {text}", file=sys.stderr)
+            continue
+        counts["written"] += 1
         if not args.quiet:
             print(f"{src} -> {dst} ({time.perf_counter() - start:.1f} s)")
-    return done, skipped, failed
+    return counts

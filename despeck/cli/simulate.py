@@ -9,6 +9,7 @@ gives the same output.
 
 from __future__ import annotations
 
+import signal
 import sys
 import warnings
 
@@ -35,6 +36,10 @@ def add_arguments(parser):
     parser.add_argument("--quiet", "-q", action="store_true", help="no progress bar or summary")
 
 
+def _raise_on_term(signum, frame):  # noqa: ARG001
+    raise KeyboardInterrupt
+
+
 def run(args) -> int:
     looks = speckle.check_looks(args.looks, "--looks")
     if args.correlated and looks != round(looks):
@@ -55,12 +60,17 @@ def run(args) -> int:
     tags = {"speckle": f"{kind}, looks={args.looks:g}, seed={seed}"}
     if args.correlated:
         tags["speckle"] += f", oversampling={args.oversampling:g}, taper={args.taper}"
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", raster.UnitsWarning)
-        path = raster.process_file(
-            args.clean, args.output, apply, halo=field.halo, units=args.units, out_units=args.out_units,
-            overwrite=args.overwrite, progress=not args.quiet, description="simulate", tags=tags,
-        )
+    # SIGTERM becomes KeyboardInterrupt, so the writer removes its temporary file and claim.
+    previous = signal.signal(signal.SIGTERM, _raise_on_term)
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", raster.UnitsWarning)
+            path = raster.process_file(
+                args.clean, args.output, apply, halo=field.halo, units=args.units, out_units=args.out_units,
+                overwrite=args.overwrite, progress=not args.quiet, description="simulate", tags=tags,
+            )
+    finally:
+        signal.signal(signal.SIGTERM, previous)
     for w in caught:
         print(f"despeck: warning: {w.message}", file=sys.stderr)
     if not args.quiet:
