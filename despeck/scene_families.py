@@ -17,7 +17,8 @@ approximation:
     shadow behind the edge facing away.
 ``fields``
     Agricultural parcels at several scales (rectangular strips and Voronoi cells), row-crop
-    texture in some, roads (dark asphalt or bright lined lines) and hedges with shadows.
+    texture in some, roads (dark asphalt, or bright where lined with fences and barriers)
+    and hedges with shadows.
 ``urban``
     Street grids with buildings: L-shaped double-bounce lines at the walls facing the
     radar (+10 to +30 dB), layover of the walls onto the street in front, shadows behind,
@@ -479,8 +480,11 @@ def _place_points(scene, boxes, n, rng, *, gain_db=_POINT_GAIN_DB, min_sep=12):
         r, c = int(rng.integers(8, h - 8)), int(rng.integers(8, w - 8))
         if any(abs(r - pr) < min_sep + 8 and abs(c - pc) < min_sep + 8 for pr, pc in points):
             continue
-        if any(r0 - 15 < r < r1 + 15 and c0 - 15 < c < c1 + 15 for r0, c0, r1, c1 in boxes):
+        near = [b for b in boxes if b[0] - 15 < r < b[2] + 15 and b[1] - 15 < c < b[3] + 15]
+        if near and tries <= 100:
             continue
+        for b in near:  # small scenes: give up a box rather than the targets
+            boxes.remove(b)
         pad = scene[r - 7 : r + 8, c - 7 : c + 8]
         pad[:] = np.median(pad)
         points.append((r, c))

@@ -71,6 +71,17 @@ def test_layout_boxes_constant_points_bright(family):
                 assert not (r0 <= r < r1 and c0 <= c < c1)
 
 
+@pytest.mark.parametrize("family", SCENE_FAMILIES)
+def test_smallest_scene_still_has_targets(family):
+    for seed in range(3):
+        scene, layout = make_family_scene(family, (64, 64), rng=seed, split=_splits(family)[0], return_layout=True)
+        assert len(layout.points) >= 3
+        for r, c in layout.points:
+            assert not any(r0 <= r < r1 and c0 <= c < c1 for r0, c0, r1, c1 in layout.homogeneous_boxes)
+        for r0, c0, r1, c1 in layout.homogeneous_boxes:
+            assert np.ptp(scene[r0:r1, c0:c1]) == 0
+
+
 @pytest.mark.parametrize("family", ["fields", "water", "forest", "urban"])
 def test_full_size_scene_has_boxes(family):
     _, layout = make_family_scene(family, (512, 512), rng=3, return_layout=True)
