@@ -803,6 +803,10 @@ class SceneWriter:
     Use :func:`open_output`. Data go to a temporary file in the destination folder,
     renamed to the destination when the context manager exits cleanly and deleted
     if it exits with an exception, so a crash never leaves a half-written output.
+    Before the rename the file is read back block by block (:meth:`close`). While it
+    is being written the output is claimed (:func:`despeck.atomic.claim_output`): a
+    second writer of the same path, in this or another process, gets
+    :class:`OutputBusyError`.
 
     Attributes
     ----------

@@ -2,8 +2,12 @@
 
 Inputs are files, folders (every GeoTIFF directly inside) or glob patterns. Each
 output is written to a temporary file beside its destination and renamed when
-complete; existing outputs are skipped unless ``--overwrite``, so an interrupted
-batch run restarts where it stopped. The work itself is
+complete and read back; existing outputs are skipped unless ``--overwrite``, so an
+interrupted batch run restarts where it stopped. An input that cannot be read or an
+output that cannot be written fails that file only (one line each, a summary at the
+end, exit status 2); an output folder that can take no file (read-only, full) stops
+every later output into it at once. Several ``apply`` runs may share a batch: an
+output another run is writing is skipped (``--busy``). The work itself is
 :func:`despeck.inference.despeckle_file`.
 """
 
