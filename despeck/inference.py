@@ -47,6 +47,8 @@ __all__ = [
     "despeckle_file",
     "bf16_supported",
     "resolve_tiling",
+    "max_overlap",
+    "MAX_TILE",
     "model_mismatch_notes",
     "InferenceWarning",
 ]
@@ -138,7 +140,9 @@ def resolve_tiling(shape, model, *, tile=None, overlap=None, row_stride=None) ->
     Raises
     ------
     InputError
-        Tile smaller than the receptive field, overlap not below the tile.
+        Tile smaller than the receptive field or above :data:`MAX_TILE`; overlap not
+        below the tile, or above what any tiling of this model needs
+        (:func:`max_overlap`).
     """
     rf = _check_model(model)
     multiple = _size_multiple(model)
@@ -148,6 +152,12 @@ def resolve_tiling(shape, model, *, tile=None, overlap=None, row_stride=None) ->
     margin = rf // 2
     if tile is not None and tile < rf:
         raise InputError(f"tile ({tile}) is smaller than the model's receptive field ({rf} pixels); use at least {rf}")
+    if tile is not None and tile > MAX_TILE:
+        raise InputError(f"tile ({tile}) is larger than the {MAX_TILE}-pixel maximum (a tile's activations must fit "
+                         f"in memory; the default is about {d_tile})")
+    if overlap is not None and overlap > max_overlap(model):
+        raise InputError(f"overlap ({overlap}) is larger than this model can use ({max_overlap(model)} pixels at most; "
+                         f"the default is {d_overlap})")
     if overlap is None:
         overlap = d_overlap
         if tile is not None and overlap >= tile:
@@ -175,6 +185,24 @@ def resolve_tiling(shape, model, *, tile=None, overlap=None, row_stride=None) ->
 
 def _round_up(value, multiple):
     return -(-int(value) // multiple) * multiple
+
+
+#: Largest tile side accepted (pixels). The default tiles are 720-1024 pixels; a
+#: 4096-pixel tile already needs about 2.7 GB of activations for a 40-channel network
+#: (330 MB per megapixel, see :func:`despeck.tiling.default_tiling`).
+MAX_TILE = 4096
+
+
+def max_overlap(model) -> int:
+    """Largest overlap accepted for ``model``: four times its default overlap, at least 256 pixels.
+
+    The default overlap already holds the receptive field and a blend zone; a larger
+    one only recomputes more of every tile, and since tiles are at least the overlap
+    plus a few pixels, an absurd value would make absurdly large tiles.
+    """
+    rf = _check_model(model)
+    _, d_overlap = default_tiling(rf, _size_multiple(model))
+    return int(max(4 * d_overlap, 256))
 
 
 def bf16_supported() -> bool:

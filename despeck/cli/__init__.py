@@ -3,14 +3,19 @@
 Each subcommand lives in its own module of this package and defines
 ``add_arguments(parser)`` and ``run(args) -> int``. Errors the package raises on
 purpose (:class:`despeck.errors.DespeckError`) are printed as one line,
-``despeck: error: ...``, with exit status 2; nothing else is caught.
+``despeck: error: ...``, with exit status 2; nothing else is caught. Warnings
+are shown as one line each, ``despeck: warning: ...``, once per message; library
+noise a user cannot act on (GDAL's note that a file is not georeferenced, numpy's
+"All-NaN slice") is not shown.
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import importlib
 import sys
+import warnings
 
 from ..errors import DespeckError
 
@@ -44,6 +49,55 @@ def build_parser(load_all: bool = True) -> argparse.ArgumentParser:
     return parser
 
 
+# Warnings that say nothing a user can act on: an ungeoreferenced input gives an
+# ungeoreferenced output (``info`` prints "CRS none"); all-nodata slices are handled
+# by the code that meets them.
+_SILENCED = (
+    ("ignore", r"Dataset has no geotransform, gcps, or rpcs"),
+    ("ignore", r"All-NaN (slice|axis) encountered"),
+    ("ignore", r"Mean of empty slice"),
+)
+
+
+def format_warning(message) -> str:
+    """A warning as one line in the package's style: ``despeck: warning: <text>``."""
+    text = " ".join(str(message).split())
+    return f"despeck: warning: {text}"
+
+
+@contextlib.contextmanager
+def one_line_warnings(stream=None):
+    """Show warnings raised inside as ``despeck: warning: ...`` lines, each text once.
+
+    Installed by :func:`main` around every command. Library warnings a user cannot
+    act on (see ``_SILENCED``) and rasterio's ``NotGeoreferencedWarning`` are dropped;
+    every other warning, despeck's own and third-party ones, is shown without a
+    source line or traceback.
+    """
+    shown = set()
+
+    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
+        text = format_warning(message)
+        if text not in shown:
+            shown.add(text)
+            print(text, file=stream or sys.stderr)
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("default")
+        for action, pattern in _SILENCED:
+            warnings.filterwarnings(action, message=pattern)
+        try:
+            from rasterio.errors import NotGeoreferencedWarning
+        except ImportError:  # pragma: no cover - rasterio is a dependency
+            pass
+        else:
+            warnings.filterwarnings("ignore", category=NotGeoreferencedWarning)
+        warnings.filterwarnings("ignore", category=DeprecationWarning)
+        warnings.filterwarnings("ignore", category=PendingDeprecationWarning)
+        warnings.showwarning = show
+        yield
+
+
 def main(argv=None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
     # Build only the chosen subcommand's options (cheap imports), but all of them for --help.
@@ -59,7 +113,8 @@ def main(argv=None) -> int:
     module.add_arguments(sub_parser)
     args = parser.parse_args(argv)
     try:
-        return int(module.run(args) or 0)
+        with one_line_warnings():
+            return int(module.run(args) or 0)
     except DespeckError as exc:
         print(f"despeck: error: {exc}", file=sys.stderr)
         return 2
