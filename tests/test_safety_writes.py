@@ -119,10 +119,10 @@ def test_simulate_over_file_size_limit_fails_and_publishes_nothing(tmp_path):
 
 
 def test_apply_over_file_size_limit_fails_and_publishes_nothing(tmp_path):
-    src = _tif(tmp_path / "scene.tif", _speckle((512, 1024)))  # two output blocks
+    src = _tif(tmp_path / "scene.tif", _speckle((256, 1024)))  # two output blocks of about 0.4 MB
     model = _model_file(tmp_path / "m.safetensors")
     out = tmp_path / "clean.tif"
-    result = _cli(["apply", src, "--model", model, "--out", out, "--threads", 2, "--quiet"], limit=1 << 18)
+    result = _cli(["apply", src, "--model", model, "--out", out, "--threads", 2, "--quiet"], limit=1 << 17)
     line = _assert_one_line(result, out)
     assert "file size limit" in line
     assert not out.exists() and _leftovers(tmp_path) == []  # so a rerun does not skip the scene as done
