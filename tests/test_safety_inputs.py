@@ -149,3 +149,15 @@ def test_one_line_warnings_formats_and_filters(capsys):
 
         warnings.warn("Dataset has no geotransform, gcps, or rpcs.", NotGeoreferencedWarning)
     assert capsys.readouterr().err == "despeck: warning: first line second line\n"
+
+
+def test_apply_does_not_pass_on_rasterio_notes(tmp_path, capsys):
+    # apply shows every file's warnings; rasterio's "no geotransform" note is not one of them.
+    from despeck.models import Despeckler, create_model, save_model_file
+
+    model = tmp_path / "m.safetensors"
+    save_model_file(model, Despeckler(create_model("logcnn-xs"), looks=1), units="intensity")
+    src = write_tif(tmp_path / "plain.tif", one_look_intensity(8, (64, 64)), georeferenced=False)
+    code, _, err = run(["apply", src, "--model", model, "--quiet"], capsys)
+    assert code == 0, err
+    assert "geotransform" not in err and all(ln.startswith("despeck: warning: ") for ln in err.splitlines())

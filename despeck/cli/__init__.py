@@ -84,18 +84,28 @@ def one_line_warnings(stream=None):
 
     with warnings.catch_warnings():
         warnings.simplefilter("default")
-        for action, pattern in _SILENCED:
-            warnings.filterwarnings(action, message=pattern)
-        try:
-            from rasterio.errors import NotGeoreferencedWarning
-        except ImportError:  # pragma: no cover - rasterio is a dependency
-            pass
-        else:
-            warnings.filterwarnings("ignore", category=NotGeoreferencedWarning)
-        warnings.filterwarnings("ignore", category=DeprecationWarning)
-        warnings.filterwarnings("ignore", category=PendingDeprecationWarning)
+        silence_library_noise()
         warnings.showwarning = show
         yield
+
+
+def silence_library_noise() -> None:
+    """Add the filters that hide library warnings a user cannot act on (see ``_SILENCED``).
+
+    For commands that reset the warning filters inside :func:`one_line_warnings`
+    (e.g. ``warnings.simplefilter("always")`` to see every file's note): call it
+    after the reset.
+    """
+    for action, pattern in _SILENCED:
+        warnings.filterwarnings(action, message=pattern)
+    try:
+        from rasterio.errors import NotGeoreferencedWarning
+    except ImportError:  # pragma: no cover - rasterio is a dependency
+        pass
+    else:
+        warnings.filterwarnings("ignore", category=NotGeoreferencedWarning)
+    warnings.filterwarnings("ignore", category=DeprecationWarning)
+    warnings.filterwarnings("ignore", category=PendingDeprecationWarning)
 
 
 def main(argv=None) -> int:

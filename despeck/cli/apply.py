@@ -22,6 +22,7 @@ import time
 import warnings
 
 from ..errors import DespeckError, InputError, ModelFileError
+from . import silence_library_noise
 
 # Files a folder input contributes (other rasters can still be named one by one).
 _RASTER_SUFFIXES = {".tif", ".tiff"}
@@ -170,6 +171,7 @@ def run(args) -> int:
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("always")
+            silence_library_noise()
             warnings.showwarning = show
             # Check the tile options once, before any file is touched.
             side = 2 * max(model.receptive_field, args.tile or 1)
