@@ -65,6 +65,7 @@ __all__ = [
     "DEFAULT_SEARCH_WINDOW",
     "NOISE_SIGMA",
     "available",
+    "require",
     "bm3d_log",
     "bm3d_gaussian",
     "homomorphic_log",
@@ -100,6 +101,11 @@ _SYSTEM_PSD: dict = {}
 def available() -> bool:
     """True if the optional ``bm3d`` package is installed (found without importing it)."""
     return importlib.util.find_spec("bm3d") is not None
+
+
+def require() -> None:
+    """Raise :class:`MissingDependencyError` (saying what to install) unless the ``bm3d`` package imports."""
+    _bm3d()
 
 
 def _bm3d():

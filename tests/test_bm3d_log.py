@@ -90,7 +90,7 @@ def test_constant_scene_returns_the_constant():
 
 def test_missing_package_is_a_one_line_error_naming_the_extra(monkeypatch, tmp_path, capsys):
     monkeypatch.setitem(sys.modules, "bm3d", None)  # makes "import bm3d" raise ImportError
-    image = gamma_speckle((32, 32), 1, rng=np.random.default_rng(1))
+    image = gamma_speckle((48, 48), 1, rng=np.random.default_rng(1))  # larger than the 39-pixel search window
     with pytest.raises(MissingDependencyError, match=r"pip install despeck\[bm3d\]") as info:
         bm3d_log.bm3d_log(image, looks=1)
     assert "\n" not in str(info.value)
