@@ -54,7 +54,8 @@ import numpy as np
 from . import bm3d_log, filters, metrics
 from .atomic import publish
 from .errors import ConfigError, DespeckError, InputError, RasterError
-from .speckle import check_looks, estimate_looks
+from .looks import estimate_scene_looks
+from .speckle import check_looks
 
 __all__ = ["BenchScene", "Method", "parse_method", "load_scene_list", "run_benchmark", "DEFAULT_METHODS", "CAUTIONS",
            "REPORT_MARKER"]
@@ -380,12 +381,11 @@ def _load_scene_checked(scene: BenchScene, index: int, where: str) -> _Loaded:
     if scene.looks is not None:
         looks, looks_source = check_looks(scene.looks, f"{where}: looks"), "given"
     else:
+        # One owner for the looks of a scene (despeck.looks): estimated on full-resolution windows.
         try:
-            looks = estimate_looks(intensity, valid)
+            looks = estimate_scene_looks(intensity, valid).value
         except InputError as exc:
             raise InputError(f"{where}: cannot estimate the number of looks ({exc}); give looks") from None
-        if not math.isfinite(looks):
-            raise InputError(f"{where}: cannot estimate the number of looks (constant scene); give looks")
         looks_source = "estimated"
     if scene.areas is None:
         try:

@@ -276,9 +276,10 @@ class _TileRunner:
     keep the default (contiguous) format.
     """
 
-    def __init__(self, model, *, log_offset, bf16, channels_last, total_pixels=None):
+    def __init__(self, model, *, log_offset, bf16, channels_last, total_pixels=None, looks=None, correlation=None):
         self.model = model
         self.log_offset = log_offset
+        self.condition = {} if looks is None else {"looks": looks, "correlation": correlation}
         self.bf16 = bf16
         if channels_last is None and total_pixels is not None and total_pixels < _TRIAL_MIN_PIXELS:
             channels_last = False
@@ -320,7 +321,7 @@ class _TileRunner:
         if cl:
             x = x.contiguous(memory_format=torch.channels_last)
         with torch.autocast("cpu", dtype=torch.bfloat16, enabled=self.bf16):
-            y = self.model(x, log_offset=self.log_offset)
+            y = self.model(x, log_offset=self.log_offset, **self.condition)
         return y.to(torch.float32).squeeze(1).contiguous().numpy()
 
 
@@ -434,10 +435,40 @@ def _settings(model, threads, bf16, batch_size, grid):
     return threads, use_bf16, batch_size
 
 
+# --------------------------------------------------------------------------- scene condition
+
+def _model_range(model):
+    rng = getattr(model, "looks_range", None)
+    return tuple(rng) if rng is not None else None
+
+
+def condition_for_model(model, info, corr, name="scene"):
+    """``(looks, correlation, notes)`` to pass to ``model`` for a scene of ``info`` looks and ``corr`` correlation.
+
+    Looks outside the model's trained range are clamped to it (a conditioned network
+    does not extrapolate) and the note says so; correlation is passed as measured.
+    Models that are not looks-aware get the looks only (for the point-target test).
+    """
+    notes = []
+    rng = _model_range(model)
+    L = float(info.value)
+    if rng is not None and not (rng[0] * 0.9 <= L <= rng[1] * 1.1):
+        clamped = min(max(L, rng[0]), rng[1])
+        what = "residual speckle" if L < rng[0] else "some oversmoothing"
+        trained = f"{rng[0]:g}" if rng[0] == rng[1] else f"{rng[0]:g}-{rng[1]:g}"
+        notes.append(f"{name}: {info.describe()}, outside the {trained} looks the model was trained "
+                     f"for; applied it as for {clamped:g} looks, expect {what} (train or fine-tune for these looks)")
+        L = clamped
+    if not getattr(model, "conditioned", False):
+        return L, None, notes
+    return L, corr.lag1, notes
+
+
 # --------------------------------------------------------------------------- arrays
 
 def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, batch_size=None, threads=None,
-                    bf16=False, log_offset=None, channels_last=None, progress=True) -> np.ndarray:
+                    bf16=False, log_offset=None, channels_last=None, progress=True, looks=None,
+                    correlation=None) -> np.ndarray:
     """Despeckle a 2-D linear intensity array with a model, tile by tile.
 
     Parameters
@@ -470,6 +501,13 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         on a 160 x 160 crop of the first tile and keep the faster, else contiguous.
     progress : bool
         Show a progress bar (MP/s, time left).
+    looks : float, optional
+        The scene's number of looks. Looks-aware models need it: default, estimated on
+        homogeneous blocks of the array (:mod:`despeck.looks`); a warning says when it
+        cannot be and what was assumed.
+    correlation : (float, float), optional
+        Lag-1 intensity correlation of the speckle down rows and along columns; default,
+        measured like the looks (looks-aware models only).
 
     Returns
     -------
@@ -501,6 +539,16 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
     threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
     if log_offset is None:
         log_offset = _scene_offset(model, _array_sample(x, ok))
+    cond_looks = cond_corr = None
+    if getattr(model, "conditioned", False) or looks is not None:
+        from .looks import describe_array
+
+        info, corr, notes = describe_array(x, ok, looks=looks, correlation=correlation)
+        cond_looks, cond_corr, more = condition_for_model(model, info, corr, "array")
+        if not getattr(model, "conditioned", False):
+            notes = [n for n in notes if "speckle correlation" not in n]
+        for note in notes + more:
+            warnings.warn(note, InferenceWarning, stacklevel=2)
     result = np.empty_like(x)
     # Invalid pixels enter the tiles as 0 intensity: NaN-free, and the model's fill
     # replaces them before the network sees them.
@@ -515,7 +563,7 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
 
     bar = _make_bar(x.size, "despeckle", progress)
     runner = _TileRunner(model, log_offset=log_offset, bf16=use_bf16, channels_last=channels_last,
-                         total_pixels=x.size)
+                         total_pixels=x.size, looks=cond_looks, correlation=cond_corr)
     was_training = model.training
     model.eval()
     try:
@@ -530,18 +578,6 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
 
 
 # --------------------------------------------------------------------------- files
-
-def _looks_from_tags(tags) -> float | None:
-    for key, value in (tags or {}).items():
-        if str(key).strip().lower() in ("looks", "enl", "number_of_looks"):
-            try:
-                v = float(value)
-            except (TypeError, ValueError):
-                continue
-            if math.isfinite(v) and v > 0:
-                return v
-    return None
-
 
 def model_mismatch_notes(model, reader) -> list[str]:
     """Warnings (one line each) when ``model`` was made for other units or looks than the scene.
@@ -558,21 +594,7 @@ def model_mismatch_notes(model, reader) -> list[str]:
             f"{name}: the model was trained on {m_units} data but the file holds {reader.units}; "
             f"the values were converted to linear intensity, which the model takes, so results should be comparable"
         )
-    m_looks = getattr(model, "looks", None)
-    if m_looks is None:
-        return notes
-    lo, hi = (m_looks if isinstance(m_looks, (list, tuple)) else (m_looks, m_looks))
-    looks_text = f"{lo:g}" if lo == hi else f"{lo:g}-{hi:g}"
-    s_looks = _looks_from_tags(reader.tags)
-    if s_looks is None:
-        notes.append(
-            f"{name}: the number of looks is not recorded in the file; assumed it matches the model's ({looks_text})"
-        )
-    elif not (lo * 0.9 <= s_looks <= hi * 1.1):
-        notes.append(
-            f"{name}: the file says {s_looks:g} looks but the model was trained for {looks_text}; "
-            f"applied it as is, expect {'residual speckle' if s_looks < lo else 'oversmoothing'}"
-        )
+    # Looks and speckle correlation: see despeck.looks and condition_for_model.
     return notes
 
 
@@ -668,7 +690,7 @@ class _BlockWriter:
 
 def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, overwrite=False, tile=None,
                    overlap=None, batch_size=None, threads=None, bf16=False, channels_last=None,
-                   progress=True) -> pathlib.Path:
+                   progress=True, looks=None) -> pathlib.Path:
     """Despeckle a raster file band by band and write a GeoTIFF.
 
     The output keeps the input's size, CRS, transform, nodata, band descriptions and
@@ -693,6 +715,11 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
         then wider than tall.
     overlap, batch_size, threads, bf16, channels_last, progress
         As for :func:`despeckle_array`.
+    looks : float, optional
+        The input's number of looks; default from the file's ``looks`` tag, else
+        estimated (:func:`despeck.looks.describe_speckle`). The speckle correlation is
+        taken from the file's tags or measured. Both are recorded in the output's tags
+        (``input_looks``, ``input_speckle_correlation_rows``/``_cols`` and their sources).
 
     Returns
     -------
@@ -713,6 +740,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
     """
     from rasterio.windows import Window
 
+    from .looks import describe_speckle, speckle_tags
     from .raster import check_output_path, open_output, open_scene
 
     _check_model(model)
@@ -742,8 +770,18 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                 with _torch_settings(threads):
                     for band in range(1, reader.band_count + 1):
                         offset = _scene_offset(model, reader.sample_intensity(_SAMPLE_PIXELS, band=band))
+                        info, corr, notes = describe_speckle(reader, band, looks=looks)
+                        if not getattr(model, "conditioned", False):
+                            # only looks-aware networks use the correlation; it is still recorded
+                            notes = [n for n in notes if "speckle correlation" not in n]
+                        cond_looks, cond_corr, more = condition_for_model(model, info, corr, reader.path)
+                        for note in notes + more:
+                            warnings.warn(note, InferenceWarning, stacklevel=2)
+                        if band == 1 or reader.band_count == 1:
+                            writer.update_tags(**speckle_tags(info, corr, prefix="input_"))
                         runner = _TileRunner(model, log_offset=offset, bf16=use_bf16, channels_last=channels_last,
-                                             total_pixels=reader.width * reader.height)
+                                             total_pixels=reader.width * reader.height, looks=cond_looks,
+                                             correlation=cond_corr)
 
                         def read_rows(r0, r1, band=band):
                             intensity, valid = reader.read(Window(0, r0, reader.width, r1 - r0), band=band)

@@ -54,6 +54,13 @@ __all__ = [
     "psf_intensity_kernel",
     "simulate_correlated_slc",
     "simulate_correlated_intensity",
+    "look_weights",
+    "intensity_correlation_theory",
+    "KAISER_BETA",
+    "measure_speckle_correlation",
+    "log_intensity_iqr",
+    "looks_from_log_iqr",
+    "estimate_looks_log_iqr",
     "SpeckleField",
     "split_sublooks",
     "homogeneous_blocks",
@@ -306,16 +313,29 @@ def enl_amplitude(values, mask=None) -> float:
 
 # --------------------------------------------------------------------------- correlated speckle
 
-#: Named spectral tapers: the coefficient ``alpha`` of the generalised Hamming window
-#: ``alpha + (1 - alpha) cos(pi f / b)`` over the band ``|f| <= b`` (Harris 1978).
-TAPERS = {"none": 1.0, "hamming": 0.54, "hann": 0.5}
+#: Named spectral tapers. Numbers are the coefficient ``alpha`` of the generalised
+#: Hamming window ``alpha + (1 - alpha) cos(pi f / b)`` over the band ``|f| <= b``
+#: (Harris 1978); ``"kaiser"`` is the Kaiser window ``I0(beta sqrt(1 - (f/b)^2)) / I0(beta)``
+#: with ``beta`` = :data:`KAISER_BETA` (Harris 1978; Kaiser windows with beta about 2-3
+#: are a usual range-compression weighting, common practice).
+TAPERS = {"none": 1.0, "hamming": 0.54, "hann": 0.5, "kaiser": "kaiser"}
+KAISER_BETA = 2.5
+
+
+def _taper_window(taper):
+    """``w(u)`` on the normalised band offset ``u = (f - centre) / b`` in [-1, 1]."""
+    if isinstance(taper, str) and taper.strip().lower() == "kaiser":
+        return lambda u: special.i0(KAISER_BETA * np.sqrt(np.clip(1.0 - u * u, 0.0, 1.0))) / special.i0(KAISER_BETA)
+    alpha = _taper_alpha(taper)
+    return lambda u: alpha + (1.0 - alpha) * np.cos(np.pi * u)
+
 
 def _taper_alpha(taper) -> float:
     if taper is None:
         return 1.0
     if isinstance(taper, str):
         key = taper.strip().lower()
-        if key not in TAPERS:
+        if key not in TAPERS or key == "kaiser":
             raise InputError(f"taper must be one of {', '.join(TAPERS)} or a number in [0.5, 1], got {taper!r}")
         return TAPERS[key]
     try:
@@ -349,7 +369,8 @@ def spectral_taper(n: int, *, oversampling=1.0, taper="hamming", centre=0.0) -> 
     The band occupies ``1 / oversampling`` of the sampling rate, centred on ``centre``
     (cycles per pixel, e.g. a Doppler centroid); inside it the weight is the
     generalised Hamming window ``alpha + (1 - alpha) cos(pi (f - centre) / b)`` with
-    ``b = 0.5 / oversampling`` (``alpha`` 0.54 Hamming, 0.5 Hann, 1 untapered), outside 0.
+    ``b = 0.5 / oversampling`` (``alpha`` 0.54 Hamming, 0.5 Hann, 1 untapered) or the
+    Kaiser window (``taper="kaiser"``, see :data:`TAPERS`), outside 0.
 
     Returns
     -------
@@ -357,12 +378,12 @@ def spectral_taper(n: int, *, oversampling=1.0, taper="hamming", centre=0.0) -> 
         Weights in :func:`numpy.fft.fftfreq` order (not normalised).
     """
     (os_, _) = _pair(oversampling, "oversampling")
-    alpha = _taper_alpha(taper)
+    window = _taper_window(taper)
     f = np.fft.fftfreq(int(n))
     d = (f - float(centre) + 0.5) % 1.0 - 0.5  # wrap offsets from the centre into [-0.5, 0.5)
     b = 0.5 / os_
     inside = np.abs(d) <= b
-    return np.where(inside, alpha + (1.0 - alpha) * np.cos(np.pi * d / b), 0.0)
+    return np.where(inside, window(np.clip(d / b, -1.0, 1.0)), 0.0)
 
 
 def system_transfer(shape, *, oversampling=1.25, taper="hamming") -> np.ndarray:
@@ -466,30 +487,88 @@ def simulate_correlated_slc(reference, *, rng, oversampling=1.25, taper="hamming
     return _convolve_valid(simulate_slc(padded, rng=rng), psf)
 
 
-def _whole_looks(looks) -> int:
+def look_weights(looks) -> np.ndarray:
+    """Weights of the independent single looks whose weighted mean has ``looks`` looks.
+
+    A whole ``L`` gives ``L`` equal weights. A fractional ``L > 1`` uses ``n = ceil(L)``
+    looks, ``n - 1`` of weight 1 and one of weight ``w`` in (0, 1) chosen so that the
+    equivalent number of looks of the weighted sum of independent exponential
+    intensities, ``(sum w)^2 / sum w^2``, equals ``L`` -- the way unequally weighted
+    looks give the non-integer ENL of real multi-looked products (Oliver & Quegan
+    1998, Understanding Synthetic Aperture Radar Images, ch. 4: ENL of a weighted
+    look sum). Weights are normalised to sum to 1, so the mean is kept. The marginal
+    law is then close to, not exactly, Gamma(L, 1/L).
+
+    Raises
+    ------
+    InputError
+        ``looks`` below 1 (a sum of looks has at least one).
+    """
     L = check_looks(looks)
-    if abs(L - round(L)) > 1e-9:
-        raise InputError(f"correlated speckle averages whole single looks; looks must be a whole number, got {looks!r}")
-    return int(round(L))
+    if L < 1.0 - 1e-9:
+        raise InputError(f"correlated speckle needs at least one look, got {looks!r}")
+    n = max(1, int(math.ceil(L - 1e-9)))
+    if abs(L - round(L)) <= 1e-9:
+        w = np.ones(int(round(L)))
+    else:
+        m = n - 1  # looks of weight 1; solve (L - 1) w^2 - 2 m w + (L m - m^2) = 0 for w in (0, 1)
+        w_last = (m - math.sqrt(max(m * m - (L - 1.0) * (L * m - m * m), 0.0))) / (L - 1.0)
+        w = np.ones(n)
+        w[-1] = w_last
+    return w / w.sum()
 
 
 def simulate_correlated_intensity(reference, looks, *, rng, oversampling=1.25, taper="hamming",
                                   psf_size=33) -> np.ndarray:
-    """L-look intensity with spatially correlated speckle: the mean of L correlated single looks.
+    """L-look intensity with spatially correlated speckle: a weighted mean of correlated single looks.
 
-    Each look is ``|z|^2`` of an independent :func:`simulate_correlated_slc`, so the
-    marginal is Gamma(L, R'/L) with ``R'`` the reference convolved with ``|PSF|^2``,
-    while the pixel-to-pixel correlation lowers the ENL of any spatial average below
-    ``N * L``. ``looks`` must be a whole number (looks are summed).
+    Each look is ``|z|^2`` of an independent :func:`simulate_correlated_slc`; a whole
+    ``L`` averages ``L`` looks, so the marginal is Gamma(L, R'/L) with ``R'`` the
+    reference convolved with ``|PSF|^2``, while the pixel-to-pixel correlation lowers
+    the ENL of any spatial average below ``N * L``. A fractional ``L`` (e.g. 4.4)
+    weights the looks unequally (:func:`look_weights`) so the per-pixel ENL is ``L``.
+    The intensity correlation between pixels does not depend on ``L``
+    (:func:`intensity_correlation_theory`).
     """
-    n = _whole_looks(looks)
+    from scipy import signal
+
+    weights = look_weights(looks)
     g = _as_generator(rng)
-    total = None
-    for _ in range(n):
-        z = simulate_correlated_slc(reference, rng=g, oversampling=oversampling, taper=taper, psf_size=psf_size)
-        look = z.real * z.real + z.imag * z.imag
-        total = look if total is None else total + look
-    return (total / np.float32(n)).astype(np.float32, copy=False)
+    reference = _check_reference(reference)
+    psf = system_psf(oversampling=oversampling, taper=taper, size=psf_size)
+    halo = psf.shape[0] // 2
+    padded = np.pad(reference, halo, mode="symmetric")
+    # The same draws as len(weights) calls of simulate_correlated_slc, convolved in one batch.
+    fields = np.stack([simulate_slc(padded, rng=g) for _ in weights])
+    z = signal.fftconvolve(fields, psf.astype(np.complex64)[None], mode="valid", axes=(1, 2))
+    looks_i = (z.real * z.real + z.imag * z.imag).astype(np.float32, copy=False)
+    return np.tensordot(weights.astype(np.float32), looks_i, axes=1).astype(np.float32, copy=False)
+
+
+def intensity_correlation_theory(*, oversampling=1.25, taper="hamming", lags=(1, 2), n=1024) -> np.ndarray:
+    """Correlation coefficient of speckle intensity at pixel ``lags`` along one axis, from the system response.
+
+    For a circular Gaussian field the intensity correlation coefficient at lag ``k``
+    is ``|rho_z(k)|^2`` (the Siegert relation), ``rho_z`` being the normalised
+    autocorrelation of the complex field, i.e. of the system's point-spread function:
+    ``rho_z(k) = sum_f |W(f)|^2 e^(2 pi i f k) / sum_f |W(f)|^2`` with ``W`` the
+    one-dimensional band-limited taper (:func:`spectral_taper`). Averaging independent
+    looks does not change it. White speckle (no oversampling, no taper) gives 0.
+
+    Returns
+    -------
+    ndarray of float64, one value per lag.
+
+    References
+    ----------
+    Goodman, J. W. (1985). Statistical Optics. Wiley (Siegert relation, ch. 3).
+    Oliver, C., Quegan, S. (1998). Understanding Synthetic Aperture Radar Images.
+    Artech House (correlated speckle, ch. 4).
+    """
+    w2 = spectral_taper(int(n), oversampling=oversampling, taper=taper) ** 2
+    ac = np.fft.ifft(w2)
+    rho = ac / ac[0]
+    return np.array([abs(rho[int(k)]) ** 2 for k in lags], dtype=np.float64)
 
 
 class SpeckleField:
@@ -503,7 +582,7 @@ class SpeckleField:
     Parameters
     ----------
     looks : float
-        Number of looks (whole for correlated speckle).
+        Number of looks (a fractional number weights the looks, :func:`look_weights`).
     seed : int
         Non-negative seed.
     correlated : bool
@@ -530,7 +609,7 @@ class SpeckleField:
             raise InputError(f"seed must be a non-negative integer, got {seed!r}")
         self.correlated = bool(correlated)
         if self.correlated:
-            self._n_looks = _whole_looks(looks)
+            self._weights = look_weights(looks)
             self._psf = system_psf(oversampling=oversampling, taper=taper, size=psf_size)
             self.halo = self._psf.shape[0] // 2
         else:
@@ -572,12 +651,12 @@ class SpeckleField:
             return (reference * self._noise(0, 0, row, col, h, w)).astype(np.float32, copy=False)
         amplitude = np.sqrt(reference)
         total = np.zeros((h, w), dtype=np.float32)
-        for look in range(self._n_looks):
+        for look, wk in enumerate(self._weights):
             field = self._noise(1, look, row - hh, col - hh, h + 2 * hh, w + 2 * hh)
             field *= amplitude
             z = _convolve_valid(field, self._psf)
-            total += z.real * z.real + z.imag * z.imag
-        return total / np.float32(self._n_looks)
+            total += (z.real * z.real + z.imag * z.imag) * np.float32(wk)
+        return total
 
 
 # --------------------------------------------------------------------------- sub-looks
@@ -677,7 +756,8 @@ def split_sublooks(slc, count, *, axis="azimuth", oversampling=1.0, taper=None, 
 
 # --------------------------------------------------------------------------- looks from a scene
 
-def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8):
+def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8, split="checker",
+                       rank_scale=1):
     """Find the most homogeneous ``window`` x ``window`` blocks of an intensity image.
 
     The image is cut into non-overlapping blocks; blocks with any invalid pixel, a
@@ -725,7 +805,13 @@ def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_bl
 
     xb, okb = blocks(np.where(ok, x, 0.0)), blocks(ok)
     keep = okb.all(axis=(1, 2))
-    checker = (np.add.outer(np.arange(window), np.arange(window)) % 2).astype(bool)
+    if split == "checker":
+        checker = (np.add.outer(np.arange(window), np.arange(window)) % 2).astype(bool)
+    elif split == "halves":
+        checker = np.zeros((window, window), dtype=bool)
+        checker[:, window // 2:] = True
+    else:
+        raise InputError(f"split must be 'checker' or 'halves', got {split!r}")
     first, second = xb[:, ~checker], xb[:, checker]
     m1, m2 = first.mean(axis=1), second.mean(axis=1)
     keep &= (m1 > 0) & (m2 > 0)
@@ -735,7 +821,18 @@ def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_bl
             f"only {n_ok} {window}x{window} blocks are free of nodata; at least {int(min_blocks)} are needed to estimate the looks"
         )
     index = np.flatnonzero(keep)
-    rank_cv = first[index].std(axis=1, ddof=1) / m1[index]
+    rank_scale = int(rank_scale)
+    if rank_scale > 1 and split == "halves" and (window // 2) % rank_scale == 0:
+        # Rank on the CV of rank_scale x rank_scale cell means of the first half:
+        # averaging divides the speckle's variance but keeps smooth texture, so weak
+        # texture on multi-look scenes is seen (the measurement half is unaffected).
+        half = xb[index][:, :, :window // 2]
+        s_ = rank_scale
+        cells = half.reshape(len(index), window // s_, s_, window // 2 // s_, s_).mean(axis=(2, 4))
+        cells = cells.reshape(len(index), -1)
+        rank_cv = cells.std(axis=1, ddof=1) / m1[index]
+    else:
+        rank_cv = first[index].std(axis=1, ddof=1) / m1[index]
     n_keep = max(int(min_blocks), int(math.ceil(float(fraction) * index.size)))
     order = index[np.argsort(rank_cv, kind="stable")[:n_keep]]
     cv2 = second[order].var(axis=1, ddof=1) / m2[order] ** 2
@@ -763,3 +860,145 @@ def estimate_looks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks
     _, cv2 = homogeneous_blocks(intensity, valid, window=window, fraction=fraction, min_blocks=min_blocks)
     median = float(np.median(cv2))
     return math.inf if median == 0 else 1.0 / median
+
+
+def measure_speckle_correlation(intensity, valid=None, *, window=32, fraction=0.2, min_blocks=8, lags=(1, 2),
+                                split="halves", background_lags=(4, 5), rank_scale=1):
+    """Measure the speckle's intensity correlation coefficients along rows and columns.
+
+    On the most homogeneous ``window`` x ``window`` blocks (:func:`homogeneous_blocks`)
+    each block is normalised to ``d = I / mean - 1`` and the correlation coefficient at
+    lag ``k`` is ``sum d(p) d(p + k) / sum d(p)^2``, pooled over the blocks (sums of
+    numerators over sums of denominators). On pure speckle it estimates the system
+    value ``|rho_z(k)|^2`` (:func:`intensity_correlation_theory`; 0 for white speckle).
+
+    Texture left in the blocks (on multi-look scenes the speckle is weak enough that
+    smooth structure passes the homogeneity ranking) adds a slowly decaying term.
+    Sensor speckle decorrelates within a few pixels (``|rho_z(4)|^2 < 0.02`` for
+    oversampling up to 1.6 with the usual tapers), so the mean coefficient at
+    ``background_lags`` is taken as that texture term ``b`` and removed:
+    ``rho(k) = (r(k) - b) / (1 - b)``. ``background_lags=None`` reports the raw ``r(k)``.
+
+    Parameters
+    ----------
+    intensity : array_like, 2-D
+    valid : array_like of bool, optional
+    window, fraction, min_blocks
+        Block search (see :func:`homogeneous_blocks`).
+    lags : sequence of int
+        Pixel lags to measure (each smaller than ``window``).
+
+    Returns
+    -------
+    dict
+        ``{"rows": [rho(k) for k in lags], "cols": [...], "lags": [...], "blocks": m}``;
+        ``rows`` is the correlation between vertically adjacent pixels (along the
+        columns of the array, i.e. down the rows axis), ``cols`` between horizontally
+        adjacent ones.
+
+    References
+    ----------
+    Goodman, J. W. (1985). Statistical Optics. Wiley (Siegert relation).
+    """
+    lags = [int(k) for k in lags]
+    if not lags or min(lags) < 1 or max(lags) >= int(window):
+        raise InputError(f"lags must be positive and smaller than the window ({window}), got {lags}")
+    x = np.asarray(intensity, dtype=np.float64)
+    origins, _ = homogeneous_blocks(x, valid, window=window, fraction=fraction, min_blocks=min_blocks, split=split,
+                                    rank_scale=rank_scale)
+    w = int(window)
+    blocks = np.stack([x[r:r + w, c:c + w] for r, c in origins])
+    d = blocks / blocks.mean(axis=(1, 2), keepdims=True) - 1.0
+
+    def coefficient(k, axis):
+        a, b = (d[:, :-k, :], d[:, k:, :]) if axis == 0 else (d[:, :, :-k], d[:, :, k:])
+        den = np.sum(a * a + b * b) / 2.0
+        return float(np.sum(a * b) / den) if den > 0 else 0.0
+
+    if background_lags is not None and max(background_lags) >= w:
+        raise InputError(f"background lags must be smaller than the window ({window}), got {background_lags}")
+    out = {"rows": [], "cols": [], "lags": lags, "blocks": int(len(origins)), "background": []}
+    for axis, key in ((0, "rows"), (1, "cols")):
+        bg = float(np.mean([coefficient(k, axis) for k in background_lags])) if background_lags else 0.0
+        bg = min(max(bg, 0.0), 0.95)
+        out["background"].append(bg)
+        out[key] = [(coefficient(k, axis) - bg) / (1.0 - bg) for k in lags]
+    return out
+
+
+def log_intensity_iqr(looks) -> float:
+    """Interquartile range of ``ln n`` for unit-mean L-look Gamma speckle (nepers).
+
+    ``ln(q75 / q25)`` of Gamma(L, 1/L) (``scipy.stats.gamma.ppf``); 1.60 at L = 1,
+    falling as ``1.349 sqrt(psi_1(L))`` for large L (the Gaussian limit).
+    """
+    from scipy import stats
+
+    L = check_looks(looks)
+    q25, q75 = stats.gamma.ppf([0.25, 0.75], L, scale=1.0 / L)
+    return float(math.log(q75 / q25))
+
+
+def looks_from_log_iqr(iqr: float) -> float:
+    """Invert :func:`log_intensity_iqr` (monotone in L) for L in [0.05, 1e4]."""
+    iqr = float(iqr)
+    lo, hi = 0.05, 1e4
+    f = lambda L: log_intensity_iqr(L) - iqr  # noqa: E731
+    if f(hi) >= 0:
+        return hi
+    if f(lo) <= 0:
+        return lo
+    return float(optimize.brentq(f, lo, hi, xtol=1e-6, rtol=1e-6))
+
+
+def estimate_looks_log_iqr(intensity, valid=None, *, window=32, fraction=0.2, min_blocks=8):
+    """Estimate the looks from the interquartile range of ``ln I`` on homogeneous blocks.
+
+    Blocks free of nodata are split into left and right halves; blocks are ranked by
+    the log-IQR of their left half, the lowest ``fraction`` (at least ``min_blocks``)
+    are kept and the median log-IQR of their right halves is inverted through
+    :func:`log_intensity_iqr`. Quartiles ignore the few bright point scatterers and
+    edges that inflate a block's coefficient of variation, so built-up scenes with
+    little homogeneous ground are estimated far better than by ``1 / CV^2``
+    (:func:`estimate_looks`); on pure Gamma speckle both agree within a few per cent.
+    Halves (not a checkerboard) keep the ranking out of the measurement also for
+    spatially correlated speckle.
+
+    Returns
+    -------
+    (float, int)
+        The estimate and the number of blocks it rests on.
+
+    References
+    ----------
+    Oliver, C., Quegan, S. (1998). Understanding Synthetic Aperture Radar Images.
+    Artech House (distribution of log intensity, ch. 4).
+    """
+    x = np.asarray(intensity, dtype=np.float64)
+    if x.ndim != 2:
+        raise InputError(f"intensity must be a 2-D image, got shape {x.shape}")
+    w = int(window)
+    if w < 8 or w % 2:
+        raise InputError(f"window must be an even number of at least 8 pixels, got {window}")
+    ok = np.isfinite(x) & (x > 0)
+    if valid is not None:
+        ok &= np.asarray(valid, dtype=bool)
+    rows, cols = x.shape[0] // w, x.shape[1] // w
+    if rows == 0 or cols == 0:
+        raise InputError(f"image of shape {x.shape} is smaller than one {w}x{w} block")
+    logs = np.log(np.where(ok, x, 1.0))[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3)
+    okb = ok[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3).reshape(rows * cols, w, w)
+    logs = logs.reshape(rows * cols, w, w)
+    keep = np.flatnonzero(okb.all(axis=(1, 2)))
+    if keep.size < int(min_blocks):
+        raise InputError(f"only {keep.size} {w}x{w} blocks are free of nodata; at least {int(min_blocks)} are needed")
+    first = logs[keep, :, :w // 2].reshape(keep.size, -1)
+    second = logs[keep, :, w // 2:].reshape(keep.size, -1)
+    q1 = np.subtract(*np.percentile(first, [75, 25], axis=1))
+    q2 = np.subtract(*np.percentile(second, [75, 25], axis=1))
+    n_keep = max(int(min_blocks), int(math.ceil(float(fraction) * keep.size)))
+    chosen = np.argsort(q1, kind="stable")[:n_keep]
+    median = float(np.median(q2[chosen]))
+    if median <= 0:
+        raise InputError("the most homogeneous blocks are constant; the scene holds no speckle to measure")
+    return looks_from_log_iqr(median), int(chosen.size)

@@ -36,9 +36,11 @@ def test_every_model_forward_backward(name, shape):
     # Generic model test (common practice, as in timm's tests/test_models.py):
     # same shape out, no NaN, every parameter receives a non-zero gradient.
     net = create_model(name)
-    z = torch.randn(shape, requires_grad=True)
+    # Looks-aware networks take conditioning planes after the log-intensity plane.
+    cin = 1 + getattr(net, "condition_channels", 0)
+    z = torch.randn((shape[0], cin) + shape[2:], requires_grad=True)
     y = net(z)
-    assert y.shape == z.shape
+    assert y.shape == shape
     assert torch.isfinite(y).all()
     ((y - 0.3) ** 2).mean().backward()
     assert torch.isfinite(z.grad).all()
@@ -56,7 +58,7 @@ def test_receptive_field_bounds_influence(name):
     rf = net.receptive_field
     assert isinstance(rf, int) and rf % 2 == 1
     side = rf + 24
-    z = torch.randn(1, 1, side, side, requires_grad=True)
+    z = torch.randn(1, 1 + getattr(net, "condition_channels", 0), side, side, requires_grad=True)
     c = side // 2
     net(z)[0, 0, c, c].backward()
     rows, cols = torch.nonzero(z.grad[0, 0] != 0, as_tuple=True)
@@ -82,7 +84,7 @@ def test_create_model_rejects_bad_arguments():
     with pytest.raises(InputError, match="depth must be an integer >= 2"):
         create_model("logcnn-s", depth=1)
     net = create_model("unet-s", widths=[4, 8])
-    assert net.architecture == "unet-s" and net.architecture_kwargs == {"widths": [4, 8]}
+    assert net.architecture == "unet-s" and net.architecture_kwargs == {"widths": [4, 8], "condition_channels": 0}
 
 
 def test_logcnn_crop_of_output_equals_output_of_crop():

@@ -335,9 +335,9 @@ def test_bad_looks(looks):
         speckle.gamma_speckle((4,), looks, rng=0)
 
 
-def test_correlated_needs_whole_looks_and_valid_reference(rng):
-    with pytest.raises(InputError, match="whole number"):
-        speckle.simulate_correlated_intensity(np.ones((8, 8)), 2.5, rng=rng)
+def test_correlated_needs_one_look_and_valid_reference(rng):
+    with pytest.raises(InputError, match="at least one look"):
+        speckle.simulate_correlated_intensity(np.ones((8, 8)), 0.5, rng=rng)
     with pytest.raises(InputError, match="non-negative"):
         speckle.simulate_correlated_slc(-np.ones((8, 8)), rng=rng)
     with pytest.raises(InputError, match="oversampling"):

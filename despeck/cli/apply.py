@@ -45,6 +45,9 @@ def add_arguments(parser):
                         help="units of the inputs (default: detected, else linear intensity)")
     parser.add_argument("--out-units", choices=("intensity", "amplitude", "db"),
                         help="units of the outputs (default: the input's)")
+    parser.add_argument("--looks", metavar="L",
+                        help="number of looks of the inputs (default: the file's 'looks' tag, else estimated "
+                             "on homogeneous areas; the speckle correlation is always measured unless recorded)")
     parser.add_argument("--tile", type=int, metavar="N",
                         help="tile size: at most N x N pixels per tile (default: from the model's receptive field)")
     parser.add_argument("--overlap", type=int, metavar="N",
@@ -63,7 +66,9 @@ def add_arguments(parser):
 
 def starter_model_path() -> pathlib.Path:
     """Where the bundled starter model lives inside the installed package."""
-    return pathlib.Path(__file__).resolve().parent.parent / "weights" / "starter.safetensors"
+    from ..models.bundled import bundled_model_path
+
+    return bundled_model_path("starter")
 
 
 def expand_inputs(patterns) -> list[pathlib.Path]:
@@ -221,7 +226,7 @@ def _run_all(args, inputs, outputs, model) -> dict:
             despeckle_file(
                 src, dst, model, units=args.units, out_units=args.out_units, overwrite=args.overwrite,
                 tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=args.bf16,
-                progress=not args.quiet,
+                progress=not args.quiet, looks=getattr(args, "looks", None),
             )
         except OutputBusyError as exc:
             if args.busy == "fail":

@@ -1,19 +1,23 @@
 """``despeck info``: describe a SAR raster before processing it.
 
 Prints size, bands, data type, CRS, pixel size, nodata value and the fraction of
-invalid pixels, the units the scene will be read in (and why), and per band an
-equivalent number of looks estimated on automatically found homogeneous blocks
-(:func:`despeck.speckle.estimate_looks`). Large scenes are described from a
-decimated sample of about a million pixels, which the output says.
+invalid pixels, the units the scene will be read in (and why), and per band the
+number of looks and the speckle correlation at lags 1 and 2 down rows and along
+columns, with how each was obtained (recorded tag, or measured on automatically found
+homogeneous blocks of full-resolution windows; :mod:`despeck.looks`). The invalid
+fraction of large scenes comes from a decimated sample of about a million pixels,
+which the output says.
 """
 
 from __future__ import annotations
 
 import json
+import math
 import sys
 import warnings
 
-from .. import raster, speckle
+from .. import looks as looks_mod
+from .. import raster
 from ..errors import InputError
 
 SAMPLE_PIXELS = 1_000_000
@@ -23,11 +27,10 @@ def add_arguments(parser):
     parser.add_argument("scene", metavar="SCENE", help="raster to describe")
     parser.add_argument("--units", choices=raster.UNITS, default=None,
                         help="units of the values (default: detected, else linear intensity)")
-    parser.add_argument("--window", type=int, default=16, help="block size of the looks estimate (default 16)")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
 
 
-def describe(path, *, units=None, window=16, max_pixels=SAMPLE_PIXELS) -> dict:
+def describe(path, *, units=None, max_pixels=SAMPLE_PIXELS) -> dict:
     """Facts about a scene as a dict (what ``despeck info`` prints)."""
     with raster.open_scene(path, units=units) as scene:
         step = scene.sample_step(max_pixels)
@@ -53,13 +56,15 @@ def describe(path, *, units=None, window=16, max_pixels=SAMPLE_PIXELS) -> dict:
             intensity, valid = scene.sample_image(max_pixels, band=band)
             entry = {"band": band, "description": scene.descriptions[band - 1] if band <= len(scene.descriptions) else None,
                      "invalid_fraction": float(1.0 - valid.mean())}
-            try:
-                enl = speckle.estimate_looks(intensity, valid, window=window)
-                entry["enl"] = enl
-            except InputError as exc:
-                entry["enl"] = None
-                info["notes"].append(f"band {band}: no looks estimate ({exc})")
-                enl = None
+            # The looks and the speckle correlation come from their one owner.
+            looks_info, corr, notes = looks_mod.describe_speckle(scene, band)
+            enl = None if looks_info.source == "assumed" else looks_info.value
+            entry["enl"] = enl
+            entry["looks_source"] = looks_info.source
+            entry["looks_detail"] = looks_info.detail
+            entry["speckle_correlation"] = {"rows_lag1_lag2": list(corr.rows), "cols_lag1_lag2": list(corr.cols),
+                                            "source": corr.source, "detail": corr.detail}
+            info["notes"].extend(f"band {band}: {n}" for n in notes)
             if enl is not None and enl < 0.7:
                 if scene.units == "amplitude":
                     info["notes"].append(f"band {band}: ENL {enl:.2f} < 1 after squaring: the file may hold intensity, not amplitude")
@@ -72,11 +77,13 @@ def describe(path, *, units=None, window=16, max_pixels=SAMPLE_PIXELS) -> dict:
 def run(args) -> int:
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", raster.UnitsWarning)
-        info = describe(args.scene, units=args.units, window=args.window)
+        info = describe(args.scene, units=args.units)
     notes = [str(w.message) for w in caught] + info["notes"]
     if args.json:
         info["notes"] = notes
-        print(json.dumps(info, indent=2))
+        if isinstance(info["nodata"], float) and not math.isfinite(info["nodata"]):
+            info["nodata"] = str(info["nodata"])  # "nan", "inf": JSON numbers cannot hold them
+        print(json.dumps(info, indent=2, allow_nan=False))
         return 0
     sample = "" if info["sample_step"] == 1 else f" (from every {info['sample_step']}th row and column)"
     lines = [
@@ -91,7 +98,12 @@ def run(args) -> int:
     for b in info["band_info"]:
         label = f"band {b['band']}" + (f" ({b['description']})" if b["description"] else "")
         enl = "n/a" if b["enl"] is None else f"{b['enl']:.2f}"
-        lines.append(f"{label:<12} invalid {100 * b['invalid_fraction']:.2f}%{sample}, estimated looks (ENL) {enl}")
+        lines.append(f"{label:<12} invalid {100 * b['invalid_fraction']:.2f}%{sample}, looks {enl} "
+                     f"({b['looks_detail']})")
+        c = b["speckle_correlation"]
+        white = max(c["rows_lag1_lag2"][0], c["cols_lag1_lag2"][0]) < 0.1
+        lines.append(f"{'':<12} speckle correlation at lag 1: {c['rows_lag1_lag2'][0]:.2f} down rows, "
+                     f"{c['cols_lag1_lag2'][0]:.2f} along columns ({'white' if white else 'correlated'}; {c['detail']})")
     print("\n".join(lines))
     for note in notes:
         print(f"despeck: warning: {note}", file=sys.stderr)

@@ -19,7 +19,8 @@ Examples
 from __future__ import annotations
 
 from .registry import create_model, list_models, model_defaults, model_description, register_model
-from .wrapper import DEFAULT_LOG_SCALE, Despeckler
+from .wrapper import CONDITION_CHANNELS, DEFAULT_LOG_SCALE, Despeckler
+from .bundled import BUNDLED_MODELS, bundled_model_path, resolve_model_path
 
 # Importing the family modules registers their variants.
 from . import logcnn, unet  # noqa: E402,F401  isort: skip
@@ -35,6 +36,10 @@ __all__ = [
     "model_description",
     "Despeckler",
     "DEFAULT_LOG_SCALE",
+    "CONDITION_CHANNELS",
+    "BUNDLED_MODELS",
+    "bundled_model_path",
+    "resolve_model_path",
     "LogCNN",
     "UNet",
     "save_model_file",

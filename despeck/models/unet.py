@@ -56,15 +56,16 @@ class UNet(nn.Module):
         one output pixel (computed layer by layer; the tests check it empirically).
     """
 
-    def __init__(self, *, widths=(16, 32, 64)):
+    def __init__(self, *, widths=(16, 32, 64), condition_channels=0):
         super().__init__()
+        self.condition_channels = check_int("condition_channels", condition_channels, 0)
         if isinstance(widths, (int, str)) or len(widths) < 2:
             raise InputError(f"model argument widths must list at least two channel counts, got {widths!r}")
         widths = [check_int("widths", w, 1) for w in widths]
         self.widths = widths
         self.levels = len(widths) - 1
         self.encoders = nn.ModuleList()
-        cin = 1
+        cin = 1 + self.condition_channels
         for w in widths[:-1]:
             self.encoders.append(_block(cin, w))
             cin = w
@@ -106,7 +107,13 @@ class UNet(nn.Module):
             self.head.weight.mul_(0.1)
 
     def forward(self, z: torch.Tensor) -> torch.Tensor:
-        """Map normalised log-intensity ``(N, 1, H, W)`` to its despeckled estimate, same shape."""
+        """Map normalised log-intensity ``(N, 1, H, W)`` to its despeckled estimate, same shape.
+
+        A conditioned network (``condition_channels`` > 0) takes ``(N, 1 + C, H, W)``:
+        the log-intensity plane followed by C constant conditioning planes (FiLM-free
+        conditioning by extra input planes, as noise-level maps are given to
+        denoisers); the output has one plane.
+        """
         h, w = z.shape[-2:]
         m = 2 ** self.levels
         ph, pw = (-h) % m, (-w) % m
@@ -125,10 +132,11 @@ class UNet(nn.Module):
             x = up(x)
             x = dec(torch.cat([x, skips.pop()], dim=1))
         noise = self.head(x)[..., :h, :w]
-        return z - noise
+        return z[:, :1] - noise
 
     def extra_repr(self) -> str:
-        return f"widths={self.widths}, receptive_field={self.receptive_field}"
+        return (f"widths={self.widths}, condition_channels={self.condition_channels}, "
+                f"receptive_field={self.receptive_field}")
 
 
 register_model(
@@ -142,4 +150,16 @@ register_model(
 register_model(
     "unet-m", UNet, widths=[16, 32, 64, 128],
     description="residual U-Net, 3 downsamplings, 16-32-64-128 channels (~470k parameters)",
+)
+register_model(
+    "unet-cond-xs", UNet, widths=[8, 16], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 8-16 channels, for tests",
+)
+register_model(
+    "unet-cond-s", UNet, widths=[16, 32, 64], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 16-32-64 channels (~118k parameters)",
+)
+register_model(
+    "unet-cond-m", UNet, widths=[16, 32, 48, 64], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 3 downsamplings, 16-32-48-64 channels",
 )

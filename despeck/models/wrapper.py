@@ -50,7 +50,7 @@ from torch import nn
 from ..errors import InputError
 from ..speckle import check_looks
 
-__all__ = ["Despeckler", "DEFAULT_LOG_SCALE"]
+__all__ = ["Despeckler", "DEFAULT_LOG_SCALE", "CONDITION_CHANNELS"]
 
 # Two nepers (~8.7 dB) per unit: 1-look speckle has a log standard deviation of
 # pi / sqrt(6) ~ 1.28 and scene contrast is a few nepers, so normalised values stay
@@ -74,6 +74,31 @@ def _looks_value(looks):
             raise InputError(f"looks range must be [min, max] with min <= max, got {looks!r}")
         return [lo, hi]
     return check_looks(looks)
+
+
+#: Conditioning planes of looks-aware networks: the normalised log-speckle standard
+#: deviation ``sqrt(psi_1(L)) / log_scale`` and the lag-1 intensity correlation of the
+#: speckle down rows and along columns.
+CONDITION_CHANNELS = 3
+
+
+def _check_bias_table(table):
+    if table is None:
+        return None
+    try:
+        looks = [float(v) for v in table["looks"]]
+        corr = [float(v) for v in table["corr"]]
+        values = [[float(v) for v in row] for row in table["values"]]
+    except (KeyError, TypeError, ValueError):
+        raise InputError("log_bias_table must hold 'looks', 'corr' and 'values' lists of numbers") from None
+    if (not looks or not corr or len(values) != len(looks) or any(len(r) != len(corr) for r in values)
+            or any(b <= a for a, b in zip(looks, looks[1:])) or any(b <= a for a, b in zip(corr, corr[1:]))
+            or looks[0] <= 0):
+        raise InputError("log_bias_table must have increasing positive looks, increasing corr "
+                         "and a looks x corr grid of values")
+    if not all(math.isfinite(v) and abs(v) < 2.0 for row in values for v in row):
+        raise InputError("log_bias_table values must be finite and below 2 nepers in size")
+    return {"looks": looks, "corr": corr, "values": values}
 
 
 class Despeckler(nn.Module):
@@ -114,7 +139,8 @@ class Despeckler(nn.Module):
     """
 
     def __init__(self, network: nn.Module, *, looks, log_bias: float = 0.0,
-                 log_scale: float = DEFAULT_LOG_SCALE, metadata=None, point_false_alarm=None):
+                 log_scale: float = DEFAULT_LOG_SCALE, metadata=None, point_false_alarm=None,
+                 log_bias_table=None):
         super().__init__()
         rf = getattr(network, "receptive_field", None)
         if isinstance(rf, bool) or not isinstance(rf, int) or rf < 1 or rf % 2 == 0:
@@ -130,6 +156,11 @@ class Despeckler(nn.Module):
         if not (math.isfinite(self.log_scale) and self.log_scale > 0):
             raise InputError(f"log_scale must be a positive number, got {log_scale!r}")
         self.metadata = dict(metadata or {})
+        self.condition_channels = int(getattr(network, "condition_channels", 0) or 0)
+        if self.condition_channels not in (0, CONDITION_CHANNELS):
+            raise InputError(f"network takes {self.condition_channels} conditioning planes; "
+                             f"this despeck supplies 0 or {CONDITION_CHANNELS}")
+        self.log_bias_table = _check_bias_table(log_bias_table)
         self.point_false_alarm = None
         if point_false_alarm is not None:
             p = float(point_false_alarm)
@@ -138,21 +169,76 @@ class Despeckler(nn.Module):
             self.point_false_alarm = p
 
     @property
-    def point_threshold(self):
-        """Speckle level exceeded with probability ``point_false_alarm`` (None when the guard is off)."""
+    def looks_range(self) -> tuple:
+        """``(min, max)`` looks the model was trained for."""
+        return tuple(self.looks) if isinstance(self.looks, list) else (self.looks, self.looks)
+
+    @property
+    def conditioned(self) -> bool:
+        """True when the network takes the scene's looks and speckle correlation as input."""
+        return self.condition_channels > 0
+
+    def point_threshold_for(self, looks=None):
+        """Speckle level exceeded with probability ``point_false_alarm`` at ``looks`` (None when off)."""
         if self.point_false_alarm is None:
             return None
-        L = self.looks[0] if isinstance(self.looks, list) else self.looks
+        L = float(looks) if looks is not None else self.looks_range[0]
         return float(special.gammaincinv(L, 1.0 - self.point_false_alarm) / L)
+
+    @property
+    def point_threshold(self):
+        """Speckle level exceeded with probability ``point_false_alarm`` (None when the guard is off)."""
+        return self.point_threshold_for(None)
+
+    def bias_for(self, looks=None, correlation=None) -> float:
+        """Log bias (nepers) for a scene of ``looks`` and lag-1 ``correlation`` (rows, cols).
+
+        Models with a calibration table (``log_bias_table``: values on a grid of looks and
+        mean lag-1 correlation) interpolate it bilinearly in ``ln L`` and correlation,
+        clamped to the grid; others return their single ``log_bias``.
+        """
+        t = self.log_bias_table
+        if t is None:
+            return self.log_bias
+        L = float(looks) if looks is not None else self.looks_range[0]
+        rho = 0.0 if correlation is None else float(np.mean(np.asarray(correlation, dtype=np.float64)[:2]))
+        gl = np.log(np.asarray(t["looks"], dtype=np.float64))
+        gc = np.asarray(t["corr"], dtype=np.float64)
+        v = np.asarray(t["values"], dtype=np.float64)
+        x = float(np.clip(math.log(max(L, 1e-6)), gl[0], gl[-1]))
+        y = float(np.clip(rho, gc[0], gc[-1]))
+        along_looks = np.array([np.interp(x, gl, v[:, j]) for j in range(v.shape[1])])
+        return float(np.interp(y, gc, along_looks)) if gc.size > 1 else float(along_looks[0])
+
+    def condition(self, n: int, looks=None, correlation=None, *, device=None) -> torch.Tensor:
+        """Conditioning values ``(n, 3)``: log-speckle std of ``looks`` (normalised) and lag-1 correlation.
+
+        ``looks`` is a number or one per sample (default: the model's lowest looks);
+        ``correlation`` a ``(rows, cols)`` pair of lag-1 intensity correlation
+        coefficients or one pair per sample (default: white speckle, 0).
+        """
+        L = torch.as_tensor(self.looks_range[0] if looks is None else looks, dtype=torch.float64)
+        L = L.reshape(-1).expand(n) if L.numel() == 1 else L.reshape(-1)
+        if L.shape[0] != n or not bool(torch.all(L > 0)):
+            raise InputError(f"looks must be positive, one value or one per sample ({n})")
+        rho = torch.zeros(n, 2, dtype=torch.float64) if correlation is None else torch.as_tensor(
+            correlation, dtype=torch.float64).reshape(-1, 2)
+        if rho.shape[0] == 1:
+            rho = rho.expand(n, 2)
+        if rho.shape[0] != n:
+            raise InputError(f"correlation must be a (rows, cols) pair or one pair per sample ({n})")
+        std = torch.sqrt(torch.special.polygamma(1, L)) / self.log_scale
+        return torch.cat([std[:, None], rho.clamp(0.0, 1.0)], dim=1).to(torch.float32).to(device)
 
     @property
     def receptive_field(self) -> int:
         rf = int(self.network.receptive_field)
         return max(rf, POINT_OUTER) if self.point_false_alarm is not None else rf
 
-    def keep_points(self, intensity: torch.Tensor, valid: torch.Tensor, estimate: torch.Tensor) -> torch.Tensor:
+    def keep_points(self, intensity: torch.Tensor, valid: torch.Tensor, estimate: torch.Tensor,
+                    looks=None) -> torch.Tensor:
         """``estimate`` with strong isolated scatterers of ``intensity`` put back (see ``point_false_alarm``)."""
-        t = self.point_threshold
+        t = self.point_threshold_for(looks)
         if t is None:
             return estimate
         x = torch.where(valid, intensity, torch.zeros_like(intensity)).to(torch.float64)
@@ -246,11 +332,24 @@ class Despeckler(nn.Module):
         z = (x - off) / self.log_scale
         return z, off, valid
 
-    def denormalise(self, y: torch.Tensor, offset: torch.Tensor) -> torch.Tensor:
+    def denormalise(self, y: torch.Tensor, offset: torch.Tensor, log_bias=None) -> torch.Tensor:
         """Natural-log intensity estimate ``y * log_scale + offset + log_bias``."""
-        return y * self.log_scale + offset + self.log_bias
+        return y * self.log_scale + offset + (self.log_bias if log_bias is None else log_bias)
 
-    def forward(self, intensity: torch.Tensor, valid=None, log_offset=None) -> torch.Tensor:
+    def run_network(self, z: torch.Tensor, cond=None, *, channels_last: bool = False) -> torch.Tensor:
+        """The network on normalised input ``z`` (N, 1, H, W), with conditioning planes when it takes them."""
+        x = z
+        if self.conditioned:
+            if cond is None:
+                cond = self.condition(z.shape[0], device=z.device)
+            planes = cond.to(z.dtype)[:, :, None, None].expand(-1, -1, z.shape[2], z.shape[3])
+            x = torch.cat([z, planes], dim=1)
+        if channels_last:
+            x = x.contiguous(memory_format=torch.channels_last)
+        return self.network(x)
+
+    def forward(self, intensity: torch.Tensor, valid=None, log_offset=None, looks=None,
+                correlation=None) -> torch.Tensor:
         """Despeckle linear intensity.
 
         Parameters
@@ -263,6 +362,12 @@ class Despeckler(nn.Module):
             Scene normalisation constant (:meth:`scene_log_offset`); tiled inference passes
             the scene's value so every tile is normalised identically. ``None`` uses the
             mean log over each sample's valid pixels.
+        looks : float, optional
+            The scene's looks (default: the model's lowest). Conditioned networks take it
+            as input; it also sets the point-target threshold and the bias calibration.
+        correlation : (float, float), optional
+            Lag-1 intensity correlation of the scene's speckle down rows and along columns
+            (default 0, white); used by conditioned networks and the bias calibration.
 
         Returns
         -------
@@ -270,10 +375,13 @@ class Despeckler(nn.Module):
             Linear intensity estimate, float32.
         """
         z, off, ok = self.normalise(intensity, valid, log_offset)
-        y = self.network(z)
-        out = torch.exp(self.denormalise(y.to(torch.float32), off))
-        return self.keep_points(intensity.to(torch.float32), ok, out)
+        cond = self.condition(z.shape[0], looks, correlation, device=z.device) if self.conditioned else None
+        y = self.run_network(z, cond, channels_last=intensity.is_contiguous(memory_format=torch.channels_last)
+                             and not intensity.is_contiguous())
+        bias = self.bias_for(looks, correlation)
+        out = torch.exp(self.denormalise(y.to(torch.float32), off, bias))
+        return self.keep_points(intensity.to(torch.float32), ok, out, looks)
 
     def extra_repr(self) -> str:
         return (f"looks={self.looks}, log_bias={self.log_bias:.6g}, log_scale={self.log_scale:g}, "
-                f"point_false_alarm={self.point_false_alarm}")
+                f"point_false_alarm={self.point_false_alarm}, conditioned={self.conditioned}")

@@ -56,13 +56,14 @@ __all__ = [
     "config_to_dict",
     "dump_config",
     "parse_duration",
+    "read_yaml",
 ]
 
 LOSSES = ("gamma_nll", "mse_log")
 TARGETS = ("clean", "noisy")
 SCHEDULES = ("plateau", "cosine", "constant")
 PRECISIONS = ("32", "bf16")
-TAPERS = ("hamming", "hann", "none")
+TAPERS = ("hamming", "hann", "kaiser", "none")
 SPLIT_AXES = ("azimuth", "range")
 
 
@@ -105,6 +106,9 @@ class DataConfig:
     band: int = 1
     synthetic_scenes: int = 0
     synthetic_size: int = 512
+    #: radar-like scene families (despeck.scene_families) the procedural scenes cycle
+    #: through; empty: the lowland scenes of despeck.synthetic
+    synthetic_families: list[str] = field(default_factory=list)
     patch_size: int = 64
     batch_size: int = 16
     patches_per_epoch: int = 2048
@@ -141,6 +145,9 @@ class ModelConfig:
     #: keep strong isolated scatterers unfiltered in the exported model (false-alarm rate
     #: of the point test, e.g. 1e-4; null: off); see despeck.models.Despeckler
     point_false_alarm: Optional[float] = 1e-4
+    #: start from the weights of a model file (a path, or "starter" for the bundled model)
+    #: instead of a random initialisation; its architecture must match ``name``/``kwargs``
+    init: Optional[str] = None
 
 
 @dataclass
@@ -153,16 +160,26 @@ class SpeckleConfig:
     with :func:`despeck.speckle.estimate_looks`; the estimates are recorded either way.
 
     ``correlated_fraction`` of the patches get spatially correlated speckle
-    (:func:`despeck.speckle.simulate_correlated_intensity`, whole looks only) with the
-    given ``oversampling`` and spectral ``taper``. ``val_looks`` is the number of looks
-    of the validation speckle (default: the smallest training value).
+    (:func:`despeck.speckle.simulate_correlated_intensity`) with the given
+    ``oversampling`` (a number, or a ``[min, max]`` range drawn independently for rows
+    and columns per patch) and spectral ``taper`` (a name, or a list to draw from).
+    ``val_looks`` is the number of looks of the validation speckle (default: the
+    smallest training value).
     """
 
     looks: Union[float, list[float], str] = 1.0
     val_looks: Optional[float] = None
     correlated_fraction: float = 0.0
-    oversampling: float = 1.25
-    taper: str = "hamming"
+    oversampling: Union[float, list[float]] = 1.25
+    taper: Union[str, list[str]] = "hamming"
+    #: how looks are drawn from a [min, max] range: uniform or log-uniform (more low looks)
+    looks_distribution: str = "uniform"
+    #: conditioned networks: noise added to the looks (relative, log scale) and to the
+    #: correlation they are told, so they tolerate the estimation error of real scenes
+    condition_jitter: float = 0.03
+    #: validation patches drawn with the training mixture of looks and correlation
+    #: (default: white speckle at val_looks)
+    val_mixture: bool = False
 
 
 @dataclass
@@ -289,7 +306,14 @@ def _coerce(tp, value, key):
     elif tp is int:
         if isinstance(value, int) and not isinstance(value, bool):
             return value
+        if isinstance(value, float) and value.is_integer():
+            return int(value)  # e.g. max_steps: 1e4
     elif tp is float:
+        if isinstance(value, str):
+            try:
+                value = float(value)  # a number written as text, e.g. "1e-3"
+            except ValueError:
+                pass
         if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
             return float(value)
     elif tp is str:
@@ -402,6 +426,12 @@ def check_config(config: TrainConfig) -> None:
         _fail("data.patch_size", f"must be at least 8 pixels, got {d.patch_size}")
     if d.synthetic_scenes < 0:
         _fail("data.synthetic_scenes", f"must be >= 0, got {d.synthetic_scenes}")
+    if d.synthetic_families:
+        from ..scene_families import SCENE_FAMILIES
+
+        unknown = [f for f in d.synthetic_families if f not in SCENE_FAMILIES]
+        if unknown:
+            _fail("data.synthetic_families", f"unknown family {unknown[0]!r}; choose from {', '.join(SCENE_FAMILIES)}")
     if d.synthetic_scenes and d.synthetic_size < max(64, d.patch_size):
         _fail("data.synthetic_size", f"must be at least max(64, data.patch_size) = {max(64, d.patch_size)}")
     if not d.train and not d.synthetic_scenes and not d.self_supervised:
@@ -447,13 +477,20 @@ def check_config(config: TrainConfig) -> None:
         _fail("speckle.val_looks", f"must be positive (> 0), got {s.val_looks}")
     if not 0 <= s.correlated_fraction <= 1:
         _fail("speckle.correlated_fraction", f"must be in [0, 1], got {s.correlated_fraction}")
+    if s.looks_distribution not in ("uniform", "log-uniform"):
+        _fail("speckle.looks_distribution", f"must be uniform or log-uniform, got {s.looks_distribution!r}")
+    if not 0 <= s.condition_jitter <= 0.5:
+        _fail("speckle.condition_jitter", f"must be in [0, 0.5], got {s.condition_jitter}")
     if s.correlated_fraction > 0:
-        if s.oversampling < 1:
-            _fail("speckle.oversampling", f"must be >= 1, got {s.oversampling}")
-        if s.taper not in TAPERS:
-            _fail("speckle.taper", f"must be one of {', '.join(TAPERS)}, got {s.taper!r}")
-        if any(round(v) < 1 for v in looks):
-            _fail("speckle.looks", "correlated speckle needs at least one whole look")
+        overs = s.oversampling if isinstance(s.oversampling, list) else [s.oversampling]
+        if len(overs) not in (1, 2) or any(v < 1 for v in overs) or overs[0] > overs[-1]:
+            _fail("speckle.oversampling", f"must be a number >= 1 or a [min, max] range of such, got {s.oversampling}")
+        tapers = s.taper if isinstance(s.taper, list) else [s.taper]
+        bad = [t for t in tapers if t not in TAPERS]
+        if bad or not tapers:
+            _fail("speckle.taper", f"must be one of {', '.join(TAPERS)} (or a list of them), got {s.taper!r}")
+        if any(v < 1 for v in looks):
+            _fail("speckle.looks", "correlated speckle needs at least one look")
 
     lo = config.loss
     if lo.name not in LOSSES:
@@ -531,6 +568,43 @@ def parse_duration(text, key: str = "duration") -> float:
 
 # --------------------------------------------------------------------------- files and overrides
 
+class _YamlLoader(yaml.SafeLoader):
+    """PyYAML's safe loader that also reads YAML 1.2 numbers such as ``1e-3`` as numbers.
+
+    PyYAML follows YAML 1.1, whose float pattern needs a decimal point, so ``1e-3``,
+    ``1E5`` and ``+2e3`` stay strings there; YAML 1.2's core schema (and every other
+    reader users meet) takes them as floats.
+    """
+
+
+# Own copy of the resolver table, so yaml.SafeLoader itself is left unchanged.
+_YamlLoader.yaml_implicit_resolvers = {
+    k: list(v) for k, v in yaml.SafeLoader.yaml_implicit_resolvers.items()
+}
+# YAML 1.2 core schema float (YAML Language Specification 1.2.2, section 10.3.2), the
+# forms without a decimal point that YAML 1.1 leaves out.
+_YamlLoader.add_implicit_resolver(
+    "tag:yaml.org,2002:float",
+    re.compile(r"^[-+]?(?:[0-9][0-9_]*(?:\.[0-9_]*)?|\.[0-9_]+)[eE][-+]?[0-9]+$"),
+    list("-+0123456789."),
+)
+
+
+def read_yaml(text):
+    """Parse YAML ``text`` safely (no tags that build objects), reading ``1e-3`` as a number.
+
+    Raises
+    ------
+    yaml.YAMLError
+        Invalid YAML; nesting deeper than Python's recursion limit is reported as one
+        as well.
+    """
+    try:
+        return yaml.load(text, Loader=_YamlLoader)  # noqa: S506 - a SafeLoader subclass
+    except RecursionError:
+        raise yaml.YAMLError("nesting too deep") from None
+
+
 def apply_overrides(values: dict, overrides) -> dict:
     """Apply ``section.key=value`` strings to a nested mapping; values are parsed as YAML."""
     values = {k: (dict(v) if isinstance(v, dict) else v) for k, v in (values or {}).items()}
@@ -542,7 +616,7 @@ def apply_overrides(values: dict, overrides) -> dict:
         if len(parts) < 2 or not all(parts):
             raise ConfigError(f"--set {item!r}: the key must be section.key, e.g. budget.max_time=2h")
         try:
-            value = yaml.safe_load(raw) if raw.strip() else None
+            value = read_yaml(raw) if raw.strip() else None
         except yaml.YAMLError:
             value = raw
         node = values
@@ -569,7 +643,7 @@ def load_config(path, overrides=()) -> TrainConfig:
     if not path.is_file():
         raise ConfigError(f"config file {path} does not exist")
     try:
-        values = yaml.safe_load(path.read_text(encoding="utf-8"))
+        values = read_yaml(path.read_text(encoding="utf-8"))
     except (yaml.YAMLError, UnicodeDecodeError) as exc:
         first = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         raise ConfigError(f"config file {path} is not valid YAML ({first})") from None

@@ -18,6 +18,7 @@ and their speckle are drawn once from a separate seed and never change.
 
 from __future__ import annotations
 
+import functools
 import glob
 import math
 import warnings
@@ -30,7 +31,7 @@ from scipy import special
 from torch.utils.data import DataLoader, Dataset, Sampler
 
 from ..errors import ConfigError, DespeckError, RasterError
-from ..speckle import gamma_speckle
+from ..speckle import gamma_speckle, intensity_correlation_theory, simulate_correlated_intensity
 from .config import TrainConfig
 from .losses import psnr_db
 
@@ -134,13 +135,71 @@ def _augment(a: np.ndarray, k: int) -> np.ndarray:
     return np.ascontiguousarray(a[:, ::-1] if k >= 4 else a)
 
 
-def _speckle(clean, looks, *, rng, correlated, oversampling, taper):
-    if correlated:
-        from ..speckle import simulate_correlated_intensity
+@dataclass(frozen=True)
+class SpeckleDraw:
+    """The speckle of one sample: looks, and the system response if correlated."""
 
-        return simulate_correlated_intensity(clean, max(1, int(round(looks))), rng=rng,
-                                             oversampling=oversampling, taper=taper).astype(np.float32)
-    return (clean * gamma_speckle(clean.shape, looks, rng=rng)).astype(np.float32)
+    looks: float
+    correlated: bool = False
+    oversampling: tuple = (1.0, 1.0)
+    taper: str = "none"
+
+    def correlation(self) -> tuple:
+        """Theoretical lag-1 intensity correlation (rows, cols) of this speckle (0 for white)."""
+        if not self.correlated:
+            return (0.0, 0.0)
+        return (_lag1(self.oversampling[0], self.taper), _lag1(self.oversampling[1], self.taper))
+
+    def apply(self, clean, rng):
+        """Speckled version of ``clean`` (float32)."""
+        if self.correlated:
+            return simulate_correlated_intensity(clean, self.looks, rng=rng, oversampling=self.oversampling,
+                                                 taper=self.taper).astype(np.float32)
+        return (clean * gamma_speckle(clean.shape, self.looks, rng=rng)).astype(np.float32)
+
+
+@functools.lru_cache(maxsize=4096)
+def _lag1_cached(oversampling: float, taper: str) -> float:
+    return float(intensity_correlation_theory(oversampling=oversampling, taper=taper, lags=(1,))[0])
+
+
+def _lag1(oversampling, taper) -> float:
+    return _lag1_cached(round(float(oversampling), 3), str(taper))
+
+
+def draw_speckle(s, rng) -> SpeckleDraw:
+    """Draw one sample's speckle from the ``speckle`` config section ``s``.
+
+    Looks: fixed, or from the ``[min, max]`` range (uniform or log-uniform); a fraction
+    ``correlated_fraction`` of the samples get correlated speckle, with oversampling
+    drawn independently for rows and columns from the ``oversampling`` range and a
+    taper drawn from the ``taper`` list.
+    """
+    looks = s.looks
+    if isinstance(looks, list) and len(looks) == 2:
+        lo, hi = float(looks[0]), float(looks[1])
+        if s.looks_distribution == "log-uniform" and hi > lo:
+            L = float(math.exp(rng.uniform(math.log(lo), math.log(hi))))
+        else:
+            L = float(rng.uniform(lo, hi))
+    else:
+        L = float(looks[0] if isinstance(looks, list) else looks)
+    if not (s.correlated_fraction > 0 and rng.random() < s.correlated_fraction):
+        return SpeckleDraw(L)
+    overs = s.oversampling if isinstance(s.oversampling, list) else [s.oversampling, s.oversampling]
+    os_r, os_c = (float(rng.uniform(overs[0], overs[-1])) for _ in range(2))
+    tapers = s.taper if isinstance(s.taper, list) else [s.taper]
+    taper = str(tapers[int(rng.integers(len(tapers)))])
+    return SpeckleDraw(max(L, 1.0), True, (os_r, os_c), taper)
+
+
+def told_condition(draw: SpeckleDraw, jitter: float, rng):
+    """The (looks, (rho_rows, rho_cols)) a conditioned network is told for ``draw``, with estimation-like noise."""
+    L = draw.looks * math.exp(jitter * float(rng.standard_normal())) if jitter else draw.looks
+    rho = draw.correlation()
+    if jitter:
+        rho = tuple(min(max(r + jitter * float(rng.standard_normal()), 0.0), 1.0) for r in rho)
+    return float(L), tuple(float(r) for r in rho)
 
 
 def log_speckle_mean(looks) -> float:
@@ -220,21 +279,20 @@ class PatchDataset(EpochPatches):
             t = int(rng.integers(8))
             clean, valid = _augment(clean, t), _augment(valid, t)
         clean = np.where(valid, clean, 0).astype(np.float32)
-        looks = c.speckle.looks
-        looks = float(rng.uniform(looks[0], looks[1])) if isinstance(looks, list) and len(looks) == 2 else float(
-            looks[0] if isinstance(looks, list) else looks)
-        correlated = c.speckle.correlated_fraction > 0 and rng.random() < c.speckle.correlated_fraction
-        if correlated:
-            looks = float(max(1, round(looks)))
-        kw = dict(rng=rng, correlated=correlated, oversampling=c.speckle.oversampling, taper=c.speckle.taper)
-        noisy = _speckle(clean, looks, **kw)
-        target = _speckle(clean, looks, **kw) if c.loss.target == "noisy" else clean
+        draw = draw_speckle(c.speckle, rng)
+        looks = draw.looks
+        noisy = draw.apply(clean, rng)
+        target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
         offset = ref.log_mean + log_speckle_mean(looks) + c.data.offset_jitter * float(rng.standard_normal())
-        return _as_item(noisy, clean, target, valid, looks, offset)
+        told = told_condition(draw, c.speckle.condition_jitter, rng)
+        return _as_item(noisy, clean, target, valid, looks, offset, told)
 
 
-def _as_item(noisy, clean, target, valid, looks, offset):
+def _as_item(noisy, clean, target, valid, looks, offset, told=None):
+    told_looks, told_corr = told if told is not None else (looks, (0.0, 0.0))
     return {
+        "cond_looks": torch.tensor(told_looks, dtype=torch.float32),
+        "cond_corr": torch.tensor(told_corr, dtype=torch.float32),
         "noisy": torch.from_numpy(np.ascontiguousarray(noisy, dtype=np.float32))[None],
         "clean": torch.from_numpy(np.ascontiguousarray(clean, dtype=np.float32))[None],
         "target": torch.from_numpy(np.ascontiguousarray(target, dtype=np.float32))[None],
@@ -274,11 +332,12 @@ class ValidationSet(Dataset):
             r0, c0 = ref.val.position(k - (int(cum[f - 1]) if f else 0))
             valid = ref.valid[r0:r0 + p, c0:c0 + p].copy()
             clean = np.where(valid, ref.intensity[r0:r0 + p, c0:c0 + p], 0).astype(np.float32)
-            noisy = (clean * gamma_speckle(clean.shape, looks, rng=rng)).astype(np.float32)
-            target = ((clean * gamma_speckle(clean.shape, looks, rng=rng)).astype(np.float32)
-                      if c.loss.target == "noisy" else clean)
-            offset = ref.log_mean + log_speckle_mean(looks)
-            items.append(_as_item(noisy, clean, target, valid, looks, offset))
+            draw = draw_speckle(c.speckle, rng) if c.speckle.val_mixture else SpeckleDraw(looks)
+            noisy = draw.apply(clean, rng)
+            target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
+            offset = ref.log_mean + log_speckle_mean(draw.looks)
+            # Validation tells the network the exact condition (no jitter).
+            items.append(_as_item(noisy, clean, target, valid, draw.looks, offset, (draw.looks, draw.correlation())))
         self.items = items
         clean_db = np.concatenate([10 * np.log10(it["clean"][it["valid"]].numpy()) for it in items])
         # One fixed peak for every epoch: the validation references' dB dynamic range.
@@ -378,10 +437,17 @@ class TrainingData(PatchLoaders):
             from ..synthetic import make_scene
 
             n = d.synthetic_scenes + (0 if (train_paths or val_paths) else 1)
+            families = list(d.synthetic_families)
             for i in range(n):
-                scene = np.asarray(make_scene((d.synthetic_size, d.synthetic_size),
-                                              rng=np.random.default_rng([config.trainer.seed, 3, i])),
-                                   dtype=np.float32)
+                rng = np.random.default_rng([config.trainer.seed, 3, i])
+                if families:
+                    from ..scene_families import make_family_scene
+
+                    scene = make_family_scene(families[i % len(families)], (d.synthetic_size, d.synthetic_size),
+                                              rng=rng, split="train")
+                else:
+                    scene = make_scene((d.synthetic_size, d.synthetic_size), rng=rng)
+                scene = np.asarray(scene, dtype=np.float32)
                 valid = np.isfinite(scene) & (scene > 0)
                 # Without files, the extra procedural scene is the validation scene.
                 role = "val" if i == d.synthetic_scenes else "train"
@@ -402,10 +468,14 @@ class TrainingData(PatchLoaders):
         return {
             "references": [r.name for r in self.references],
             "synthetic_scenes": c.data.synthetic_scenes,
+            "synthetic_families": list(c.data.synthetic_families),
             "units": c.data.units or "detected",
             "patch_size": c.data.patch_size,
             "looks": c.speckle.looks,
             "correlated_fraction": c.speckle.correlated_fraction,
+            "oversampling": c.speckle.oversampling,
+            "taper": c.speckle.taper,
+            "looks_distribution": c.speckle.looks_distribution,
             "validation_looks": self.val_set.looks,
         }
 

@@ -71,9 +71,17 @@ class DespeckleModule(pl.LightningModule):
 
     def predict_log(self, batch):
         """Natural-log intensity estimate for a batch (float32, no bias added: ``log_bias`` is 0)."""
-        z, off, _ = self.despeckler.normalise(batch["noisy"], batch["valid"], batch["log_offset"])
-        y = self.network(z.contiguous(memory_format=torch.channels_last))
-        return self.despeckler.denormalise(y.float(), off)
+        d = self.despeckler
+        z, off, _ = d.normalise(batch["noisy"], batch["valid"], batch["log_offset"])
+        cond = None
+        if d.conditioned:
+            n = z.shape[0]
+            looks = batch.get("cond_looks", batch.get("looks"))
+            cond = d.condition(n, None if looks is None else looks.detach().cpu(),
+                               None if batch.get("cond_corr") is None else batch["cond_corr"].detach().cpu(),
+                               device=z.device)
+        y = d.run_network(z, cond, channels_last=True)
+        return d.denormalise(y.float(), off, 0.0)
 
     def training_step(self, batch, batch_idx):
         loss = self.loss_fn(self.predict_log(batch), batch)

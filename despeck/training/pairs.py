@@ -342,12 +342,15 @@ class PairSource:
     train: _PositionTable
     val: _PositionTable
     changed_fraction: float = 0.0
+    #: lag-1 speckle correlation (rows, cols) measured on the first view, for conditioned networks
+    correlation: tuple = (0.0, 0.0)
 
     def describe(self) -> dict:
         d = {
             "files": [str(f) for f in self.files],
             "looks": [round(float(v), 4) for v in self.looks],
             "looks_estimated": [None if v is None else round(float(v), 4) for v in self.looks_estimated],
+            "speckle_correlation_lag1": [round(float(v), 4) for v in self.correlation],
         }
         if self.kind == "pair":
             d["changed_fraction"] = round(self.changed_fraction, 5)
@@ -409,12 +412,23 @@ def _make_source(name, kind, files, views, valid, config: TrainConfig) -> PairSo
                               & _allowed_positions(keep, p, _MIN_KEPT_FRACTION, lo, hi))
 
     changed_fraction = float(changed.sum() / max(valid.sum(), 1))
+    try:
+        # Conditioned networks are told the speckle correlation of what they see; sub-looks
+        # are coarser (more correlated) than the full-resolution scene they will be applied to.
+        from ..looks import measure_scene_correlation
+
+        correlation = measure_scene_correlation(views[0], valid).lag1
+    except InputError:
+        correlation = (0.0, 0.0)
     return PairSource(name, kind, list(files), views, valid, keep, looks, estimated, log_means, val_start,
-                      table(0, val_start), table(val_start, h), changed_fraction)
+                      table(0, val_start), table(val_start, h), changed_fraction, correlation)
 
 
-def _item(noisy, target, valid, keep, looks, offset):
+def _item(noisy, target, valid, keep, looks, offset, cond=None):
+    cond_looks, cond_corr = cond if cond is not None else (looks, (0.0, 0.0))
     return {
+        "cond_looks": torch.tensor(float(cond_looks), dtype=torch.float32),
+        "cond_corr": torch.tensor(tuple(float(v) for v in cond_corr), dtype=torch.float32),
         "noisy": torch.from_numpy(np.ascontiguousarray(noisy, dtype=np.float32))[None],
         "target": torch.from_numpy(np.ascontiguousarray(target, dtype=np.float32))[None],
         "valid": torch.from_numpy(np.ascontiguousarray(valid, dtype=bool))[None],
@@ -445,11 +459,14 @@ class PairPatchDataset(EpochPatches):
         rng, src, r0, c0 = self.draw(key)
         i, j = (int(v) for v in rng.choice(src.views.shape[0], size=2, replace=False))
         noisy, target, valid, keep = _crop(src, r0, c0, c.data.patch_size, i, j)
+        corr = tuple(src.correlation)
         if c.data.augment:
             t = int(rng.integers(8))
             noisy, target, valid, keep = (_augment(a, t) for a in (noisy, target, valid, keep))
+            if t % 2:  # a quarter turn swaps rows and columns
+                corr = corr[::-1]
         offset = src.log_means[i] + c.data.offset_jitter * float(rng.standard_normal())
-        return _item(noisy, target, valid, keep, src.looks[j], offset)
+        return _item(noisy, target, valid, keep, src.looks[j], offset, (src.looks[i], corr))
 
 
 class PairValidationSet(Dataset):
@@ -489,7 +506,8 @@ class PairValidationSet(Dataset):
             r0, c0 = src.val.position(k - (int(cum[f - 1]) if f else 0))
             i, j = (int(v) for v in rng.choice(src.views.shape[0], size=2, replace=False))
             noisy, target, valid, keep = _crop(src, r0, c0, p, i, j)
-            items.append(_item(noisy, target, valid, keep, src.looks[j], src.log_means[i]))
+            items.append(_item(noisy, target, valid, keep, src.looks[j], src.log_means[i],
+                                (src.looks[i], tuple(src.correlation))))
         self.items = items
         self.blocks = []  # (source, row, col, window)
         for src in sources:
@@ -539,8 +557,9 @@ class PairValidationSet(Dataset):
         """
         m = despeckler.receptive_field // 2
         padded = {}
-        inputs, crops, valids, offsets = [], [], [], []
+        inputs, crops, valids, offsets, sources = [], [], [], [], []
         for src, r, col, window in self.blocks:
+            sources.append(src)
             if id(src) not in padded:
                 padded[id(src)] = (np.pad(src.views[0], m, mode="reflect"), np.pad(src.valid, m, mode="reflect"))
             view, valid = padded[id(src)]
@@ -552,14 +571,16 @@ class PairValidationSet(Dataset):
         outputs = [None] * len(crops)
         by_shape = {}
         for k, crop in enumerate(crops):
-            by_shape.setdefault(crop.shape, []).append(k)
+            by_shape.setdefault((crop.shape, id(sources[k])), []).append(k)
         for ks in by_shape.values():
+            src = sources[ks[0]]
             for start in range(0, len(ks), 64):
                 chunk = ks[start:start + 64]
                 x = torch.from_numpy(np.stack([crops[k] for k in chunk])[:, None])
                 v = torch.from_numpy(np.stack([valids[k] for k in chunk])[:, None])
                 off = torch.tensor([offsets[k] for k in chunk], dtype=torch.float32)
-                y = despeckler(x, v, off)[:, 0].double().cpu().numpy()
+                y = despeckler(x, v, off, looks=float(src.looks[0]),
+                               correlation=tuple(src.correlation))[:, 0].double().cpu().numpy()
                 for k, out in zip(chunk, y):
                     outputs[k] = out[m:out.shape[0] - m, m:out.shape[1] - m]
         calibrate, measure = list(range(0, len(outputs), 2)), list(range(1, len(outputs), 2))

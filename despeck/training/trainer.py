@@ -13,6 +13,15 @@ rasters, checkpoint to resume from) before any training starts, sets up the CPU
   checkpoint, so a resumed run honours the original budget;
 * optional early stopping, a tqdm progress bar, and a CSV log ``metrics.csv``.
 
+Every file the trainer writes (checkpoints, ``metrics.csv``, ``config.yaml``, the model)
+goes through a temporary file that is synced and size-checked before it is renamed into
+place, so a full disk or a kill never leaves a half-written file; a write error stops
+training with one line naming the file. SIGINT and SIGTERM stop training with
+:class:`TrainingInterrupted` (its ``exit_code`` is 130 or 143), whose message names the
+last checkpoint; ``resume=True`` continues from it, or starts afresh when the run was
+stopped before its first checkpoint. A loss or weights that become NaN or infinite stop
+training with :class:`TrainingDiverged` at the step where it happened.
+
 At the end the best weights are exported with :func:`despeck.models.save_model_file`;
 its ``training`` metadata says how the model was trained (``mode``: simulated speckle on
 clean references, or ``pairs`` / ``sublooks`` of real data with their files and looks).
@@ -21,9 +30,13 @@ clean references, or ``pairs`` / ``sublooks`` of real data with their files and 
 from __future__ import annotations
 
 import csv
+import functools
+import io
 import math
 import os
+import signal
 import tempfile
+import threading
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -32,11 +45,40 @@ from pathlib import Path
 import lightning.pytorch as pl
 import torch
 
-from ..atomic import publish, sibling_temp
-from ..errors import ConfigError, InputError, ModelFileError
+from ..atomic import publish, sibling_temp, write_problem
+from ..errors import ConfigError, DespeckError, InputError, ModelFileError
 from .config import TrainConfig, config_to_dict, dump_config, parse_duration
 
-__all__ = ["train", "TrainResult", "EpochTimeBudget", "bf16_supported", "usable_cores", "configure_cpu"]
+__all__ = ["train", "TrainResult", "EpochTimeBudget", "bf16_supported", "usable_cores", "configure_cpu",
+           "TrainingInterrupted", "TrainingDiverged", "TrainingWarning"]
+
+
+class TrainingInterrupted(DespeckError):
+    """Training was stopped by a signal (SIGINT: Ctrl-C, or SIGTERM: a scheduler or ``kill``).
+
+    Attributes
+    ----------
+    signum : int
+        The signal.
+    exit_code : int
+        ``128 + signum`` (130 for SIGINT, 143 for SIGTERM), the shell convention.
+    checkpoint : Path or None
+        The last checkpoint, from which ``resume=True`` continues (None if there is none).
+    """
+
+    def __init__(self, message, *, signum, checkpoint=None):
+        super().__init__(message)
+        self.signum = int(signum)
+        self.exit_code = 128 + self.signum
+        self.checkpoint = checkpoint
+
+
+class TrainingDiverged(ConfigError):
+    """The training loss or the weights became NaN or infinite (usually: the learning rate is too high)."""
+
+
+class TrainingWarning(UserWarning):
+    """Something the user should know about a training run that does not stop it."""
 
 
 @dataclass
@@ -139,16 +181,35 @@ class EpochTimeBudget(pl.Callback):
         self.longest_epoch = float(state.get("longest_epoch", 0.0))
 
 
-def _atomic_write_text(path: Path, text: str) -> None:
-    tmp = sibling_temp(path)
+def _atomic_write_bytes(path: Path, data, error=ConfigError, what="file") -> None:
+    """Write ``data`` to ``path`` through a synced, size-checked temporary file; one-line ``error`` on failure."""
+    path = Path(path)
+    tmp = None
     try:
-        tmp.write_text(text, encoding="utf-8")
-        publish(tmp, path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        tmp = sibling_temp(path)
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+        size = os.path.getsize(tmp)
+        if size != len(data):
+            raise OSError(f"only {size} of {len(data)} bytes were written")
+        publish(tmp, path)  # fsync, then rename
+    except OSError as exc:
+        problem = write_problem(path.parent, exc, tmp)
+        reason = problem.text if problem else (exc.strerror or str(exc))
+        raise error(f"cannot write {what} {path}: {reason}") from None
     finally:
-        tmp.unlink(missing_ok=True)
+        if tmp is not None:
+            tmp.unlink(missing_ok=True)
 
 
-def _prepare_output(config: TrainConfig, resume: bool) -> Path:
+def _atomic_write_text(path: Path, text: str) -> None:
+    _atomic_write_bytes(path, text.encode("utf-8"), ConfigError, "training output")
+
+
+def _prepare_output(config: TrainConfig, resume: bool):
+    """The output folder, checked writable, and whether there is a checkpoint to resume from."""
     out = Path(config.output.dir).expanduser()
     try:
         out.mkdir(parents=True, exist_ok=True)
@@ -159,13 +220,25 @@ def _prepare_output(config: TrainConfig, resume: bool) -> Path:
         raise ConfigError(f"config key output.dir: cannot write to {out} ({exc.strerror or exc})") from None
     last = out / "checkpoints" / "last.ckpt"
     if resume and not last.is_file():
-        raise ConfigError(f"config key output.dir: nothing to resume, {last} does not exist")
-    if not resume and (last.exists() or (out / "metrics.csv").exists()):
+        # Killed before its first checkpoint (or never started): there is nothing to
+        # continue, and nothing of value to keep -- start the run afresh.
+        started = (out / "metrics.csv").exists() or (out / "config.yaml").exists()
+        warnings.warn(
+            f"nothing to resume in {out}: "
+            + ("the run stopped before its first checkpoint" if started else "no run was started there")
+            + "; starting afresh", TrainingWarning, stacklevel=3)
+        return out, False
+    if not resume and last.exists():
         raise ConfigError(
             f"config key output.dir: {out} already holds a training run; pass --resume to continue it "
             "or choose another output.dir"
         )
-    return out
+    if not resume and (out / "metrics.csv").exists():
+        raise ConfigError(
+            f"config key output.dir: {out} holds a training run stopped before its first checkpoint; "
+            "pass --resume to start it afresh or choose another output.dir"
+        )
+    return out, resume
 
 
 def read_checkpoint(path) -> dict:
@@ -221,12 +294,12 @@ def _check_same_run(config: TrainConfig, saved_path: Path) -> None:
     """Refuse to resume with settings that would make the result differ from an uninterrupted run."""
     import yaml
 
-    from .config import config_from_dict
+    from .config import config_from_dict, read_yaml
 
     if not saved_path.is_file():
         return
     try:
-        saved = config_to_dict(config_from_dict(yaml.safe_load(saved_path.read_text(encoding="utf-8"))))
+        saved = config_to_dict(config_from_dict(read_yaml(saved_path.read_text(encoding="utf-8"))))
     except (ConfigError, yaml.YAMLError, OSError):
         raise ConfigError(f"cannot resume: the saved run configuration {saved_path} is unreadable") from None
     old, new = _flatten(saved), _flatten(config_to_dict(config))
@@ -256,22 +329,181 @@ def _metrics_rows_until(path: Path, step: int):
     return [rows[0]] + [r for r in rows[1:] if len(r) > i and (not r[i] or float(r[i]) <= step)]
 
 
-def _csv_logger(out: Path, previous_rows, flush_every: int):
-    from lightning.pytorch.loggers import CSVLogger
+class _MetricsLogger(pl.loggers.Logger):
+    """``metrics.csv``: one row per logging call, columns sorted by name (the layout of
+    Lightning's CSVLogger). Every flush rewrites the whole file through a temporary file,
+    so the file on disk is always complete; a resumed run starts from the rows of the run
+    it continues (``previous_rows``: header and rows, as from :func:`_metrics_rows_until`).
+    """
 
-    logger = CSVLogger(save_dir=str(out), name="", version="", flush_logs_every_n_steps=flush_every)
-    writer = logger.experiment  # creating the writer removes an existing metrics.csv ...
-    if previous_rows:
-        # ... so the rows of the run being resumed are written back for it to append to.
-        import io
+    def __init__(self, path: Path, previous_rows=None, flush_every: int = 20):
+        super().__init__()
+        self.path = Path(path)
+        self.flush_every = max(1, int(flush_every))
+        self.rows = []
+        if previous_rows:
+            header = previous_rows[0]
+            self.rows = [dict(zip(header, row)) for row in previous_rows[1:]]
+        self._written = len(self.rows)
 
+    @property
+    def name(self):
+        return ""
+
+    @property
+    def version(self):
+        return ""
+
+    @property
+    def save_dir(self):
+        return str(self.path.parent)
+
+    @property
+    def log_dir(self):
+        return str(self.path.parent)
+
+    def log_hyperparams(self, params, *args, **kwargs):
+        pass  # the resolved config is saved as config.yaml
+
+    def log_metrics(self, metrics, step=None):
+        row = {k: (v.item() if isinstance(v, torch.Tensor) else v) for k, v in metrics.items()}
+        row["step"] = len(self.rows) if step is None else step
+        self.rows.append(row)
+        if (row["step"] + 1) % self.flush_every == 0:
+            self.save()
+
+    def save(self):
+        if not self.rows or self._written == len(self.rows) and self.path.is_file():
+            return
+        keys = sorted(set().union(*self.rows))
         buf = io.StringIO()
-        csv.writer(buf, lineterminator="\n").writerows(previous_rows)
-        _atomic_write_text(Path(writer.metrics_file_path), buf.getvalue())
-        writer.metrics_keys = sorted(previous_rows[0])
-    return logger
+        writer = csv.DictWriter(buf, fieldnames=keys, lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(self.rows)
+        _atomic_write_bytes(self.path, buf.getvalue().encode("utf-8"), ConfigError, "training metrics")
+        self._written = len(self.rows)
+
+    def finalize(self, status):
+        if status == "failed":
+            try:  # keep what can be kept; the error that stopped training is the one to report
+                self.save()
+            except (DespeckError, OSError):
+                pass
+        else:
+            self.save()
 
 
+class _AtomicCheckpointIO(pl.plugins.TorchCheckpointIO):
+    """Lightning checkpoint writer that never leaves a half-written checkpoint.
+
+    Lightning's own writer stages the file in the system temporary folder and moves it,
+    which is neither atomic across file systems nor safe on a full disk; here the
+    checkpoint is written beside its destination, synced, size-checked and renamed.
+    """
+
+    def save_checkpoint(self, checkpoint, path, storage_options=None):
+        buf = io.BytesIO()
+        torch.save(checkpoint, buf)
+        _atomic_write_bytes(Path(path), buf.getbuffer(), ModelFileError, "checkpoint")
+
+
+class _DivergenceGuard(pl.Callback):
+    """Stop at the first training step whose loss or updated weights are NaN or infinite."""
+
+    def __init__(self, lr: float):
+        self.lr = lr
+
+    def on_train_batch_end(self, trainer, pl_module, outputs, batch, batch_idx):
+        loss = outputs.get("loss") if isinstance(outputs, dict) else outputs
+        what = None
+        if isinstance(loss, torch.Tensor) and not bool(torch.isfinite(loss).all()):
+            what = f"the loss became {float(loss.detach().float().reshape(-1)[0])}"
+        elif any(not bool(torch.isfinite(p).all()) for p in pl_module.parameters()):
+            what = "the weights became NaN or infinite"
+        if what:
+            raise TrainingDiverged(
+                f"training diverged at epoch {trainer.current_epoch + 1}, step {trainer.global_step}: {what}; "
+                f"lower optim.lr (now {self.lr:g}) or set optim.grad_clip (e.g. 1.0) and train into a new output.dir"
+            )
+
+
+def _stop_on_signals(fn):
+    """Run ``train`` with SIGINT and SIGTERM turned into :class:`TrainingInterrupted`.
+
+    The signal interrupts whatever runs (checkpoints are written atomically, so none is
+    left half-written); the message names the last checkpoint and how to continue.
+    """
+
+    class _Signalled(BaseException):  # not an Exception: nothing on the way catches it
+        pass
+
+    @functools.wraps(fn)
+    def wrapper(config, *args, **kwargs):
+        if threading.current_thread() is not threading.main_thread():
+            return fn(config, *args, **kwargs)  # handlers can only be installed in the main thread
+        fired = []
+
+        def handler(signum, frame):  # noqa: ARG001
+            if fired:
+                return  # already stopping: let the clean-up finish
+            fired.append(signum)
+            raise _Signalled(signum)
+
+        previous = {s: signal.signal(s, handler) for s in (signal.SIGINT, signal.SIGTERM)}
+        try:
+            return fn(config, *args, **kwargs)
+        except _Signalled as exc:
+            signum = exc.args[0]
+        finally:
+            for s, h in previous.items():
+                signal.signal(s, h)
+        raise _interrupted(signum, Path(config.output.dir).expanduser()) from None
+
+    return wrapper
+
+
+def _interrupted(signum, out: Path) -> TrainingInterrupted:
+    name = signal.Signals(signum).name
+    last = out / "checkpoints" / "last.ckpt"
+    if not last.is_file():
+        return TrainingInterrupted(
+            f"training interrupted by {name} before the first checkpoint; nothing was kept in {out}; "
+            "run the same command with --resume to start it afresh", signum=signum)
+    try:
+        ckpt = read_checkpoint(last)
+        when = f" (epoch {int(ckpt['epoch']) + 1}, step {int(ckpt['global_step'])})"
+    except (ModelFileError, KeyError, TypeError, ValueError):
+        when = ""
+    return TrainingInterrupted(
+        f"training interrupted by {name}; the last checkpoint is {last}{when}; "
+        "run the same command with --resume to continue from it", signum=signum, checkpoint=last)
+
+
+def _init_from_model_file(network, source) -> None:
+    """Copy the weights of model file ``source`` (a path or a bundled name) into ``network``.
+
+    Fine-tuning starts from them; the file's network must be the same architecture with
+    the same arguments (one-line ConfigError naming the key otherwise).
+    """
+    from ..models import load_model_file, resolve_model_path
+
+    path = resolve_model_path(source)
+    try:
+        donor = load_model_file(path)
+    except DespeckError as exc:
+        raise ConfigError(f"config key model.init: {exc}") from None
+    d_net = donor.network
+    if (getattr(d_net, "architecture", None) != network.architecture
+            or getattr(d_net, "architecture_kwargs", None) != network.architecture_kwargs):
+        raise ConfigError(
+            f"config key model.init: {path} holds a {getattr(d_net, 'architecture', '?')} network with "
+            f"{getattr(d_net, 'architecture_kwargs', {})}, but model.name/model.kwargs ask for "
+            f"{network.architecture} with {network.architecture_kwargs}; set model.name to match"
+        )
+    network.load_state_dict(d_net.state_dict())
+
+
+@_stop_on_signals
 def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks=()) -> TrainResult:
     """Train a despeckling network as ``config`` says and export the best model.
 
@@ -282,7 +514,8 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     resume : bool
         Continue the run in ``output.dir`` from ``checkpoints/last.ckpt``; the result
         equals that of an uninterrupted run (within float tolerance), and the time budget
-        counts the time already spent.
+        counts the time already spent. Without a checkpoint (the run was stopped before
+        its first one) the run starts afresh, with a :class:`TrainingWarning`.
     progress : bool, optional
         Show tqdm progress bars (default: ``trainer.progress`` of the config).
     callbacks : sequence of lightning.pytorch.Callback
@@ -295,7 +528,12 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     Raises
     ------
     ConfigError, RasterError, ModelFileError
-        One-line errors, all raised before training starts.
+        One-line errors about the inputs, all raised before training starts; during
+        training, a file that cannot be written (ConfigError or ModelFileError naming it).
+    TrainingDiverged
+        The loss or the weights became NaN or infinite.
+    TrainingInterrupted
+        SIGINT or SIGTERM arrived.
     """
     from lightning.pytorch.callbacks import EarlyStopping, LearningRateMonitor, ModelCheckpoint, TQDMProgressBar
     from ..models import Despeckler, create_model, save_model_file
@@ -303,7 +541,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     from .module import DespeckleModule
 
     progress = config.trainer.progress if progress is None else bool(progress)
-    out = _prepare_output(config, resume)
+    out, resume = _prepare_output(config, resume)
     ckpt_dir = out / "checkpoints"
     last = ckpt_dir / "last.ckpt"
     resume_ckpt = read_checkpoint(last) if resume else None
@@ -321,6 +559,8 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         network = create_model(config.model.name, **config.model.kwargs)
     except InputError as exc:
         raise ConfigError(f"config key model.kwargs: {exc}") from None
+    if config.model.init and resume_ckpt is None:
+        _init_from_model_file(network, config.model.init)
     if resume_ckpt is not None:
         info = resume_ckpt["despeck"]
         if info.get("architecture") != network.architecture or info.get("kwargs") != network.architecture_kwargs:
@@ -346,7 +586,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         dirpath=ckpt_dir, filename="best", monitor="val_loss", mode="min", save_top_k=1,
         save_last=True, enable_version_counter=False,
     )
-    cbs = [checkpoint, LearningRateMonitor(logging_interval="epoch")]
+    cbs = [checkpoint, LearningRateMonitor(logging_interval="epoch"), _DivergenceGuard(config.optim.lr)]
     budget = EpochTimeBudget(max_time) if max_time else None
     if budget is not None:
         cbs.append(budget)
@@ -375,8 +615,11 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         with warnings.catch_warnings():
             # Lightning's notes about deliberate choices (no workers on a small CPU, an
             # existing log folder on resume) are not user errors.
+            # A run stopped before its first validation has no monitored value yet: said
+            # once, in our words, below.
             for message in (".*does not have many workers.*", ".*Experiment logs directory.*",
-                            ".*exists and is not empty.*", ".*Checkpoint directory.*", ".*treespec.*"):
+                            ".*exists and is not empty.*", ".*Checkpoint directory.*", ".*treespec.*",
+                            ".*could not find the monitored key.*"):
                 warnings.filterwarnings("ignore", message=message)
             warnings.filterwarnings("ignore", category=DeprecationWarning, module="lightning")
             trainer = pl.Trainer(
@@ -384,7 +627,8 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
                 precision="bf16-mixed" if config.trainer.precision == "bf16" else "32-true",
                 max_epochs=config.budget.max_epochs if config.budget.max_epochs else -1,
                 max_steps=config.budget.max_steps if config.budget.max_steps else -1,
-                callbacks=cbs, logger=_csv_logger(out, previous, config.trainer.log_every_n_steps),
+                callbacks=cbs, logger=_MetricsLogger(metrics_path, previous, config.trainer.log_every_n_steps),
+                plugins=[_AtomicCheckpointIO()],
                 default_root_dir=str(out),
                 enable_progress_bar=progress, enable_model_summary=progress,
                 num_sanity_val_steps=0, deterministic=True, benchmark=False,
@@ -405,12 +649,26 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     best_path = Path(checkpoint.best_model_path) if checkpoint.best_model_path else last
     if not best_path.is_file():
         raise ModelFileError(f"training ended before the first checkpoint; nothing to export in {ckpt_dir}")
+    if not checkpoint.best_model_path:
+        per_epoch = config.data.patches_per_epoch // config.data.batch_size
+        warnings.warn(
+            f"training stopped at step {trainer.global_step}, before the first validation (an epoch is "
+            f"{per_epoch} steps): the model has no validation measures and no bias correction; "
+            "allow at least one whole epoch", TrainingWarning, stacklevel=2)
     best = read_checkpoint(best_path)
     prefix = "despeckler.network."
     network.load_state_dict({k[len(prefix):]: v for k, v in best["state_dict"].items() if k.startswith(prefix)})
     best_metrics = dict(best["despeck"].get("metrics") or {})
     model = Despeckler(network, looks=looks, log_bias=float(best_metrics.get("val_log_bias", 0.0)),
                        log_scale=config.model.log_scale, point_false_alarm=config.model.point_false_alarm)
+    if model.conditioned and module.loss_fn.name == "mse_log":
+        # A looks-aware model keeps mean backscatter over its whole range of looks and
+        # correlations only with a bias per condition (despeck.training.calibration).
+        from .calibration import calibrate_log_bias_table
+
+        model.log_bias = 0.0
+        model.log_bias_table = calibrate_log_bias_table(model, looks_range=model.looks_range,
+                                                        seed=config.trainer.seed)
     stopped_by = ("time budget" if budget is not None and budget.stopped
                   else "early stopping" if early is not None and early.stopped_epoch
                   else "max_steps" if config.budget.max_steps and trainer.global_step >= config.budget.max_steps

@@ -1,0 +1,28 @@
+"""Model files shipped inside the package (no download ever happens)."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from ..errors import InputError
+
+__all__ = ["BUNDLED_MODELS", "bundled_model_path", "resolve_model_path"]
+
+_WEIGHTS = Path(__file__).resolve().parent.parent / "weights"
+
+#: Name -> file inside ``despeck/weights``.
+BUNDLED_MODELS = {"starter": "starter.safetensors"}
+
+
+def bundled_model_path(name: str = "starter") -> Path:
+    """Path of the bundled model ``name`` (``"starter"``: the default of ``despeck apply``)."""
+    try:
+        return _WEIGHTS / BUNDLED_MODELS[name]
+    except KeyError:
+        raise InputError(f"no bundled model {name!r}; bundled: {', '.join(BUNDLED_MODELS)}") from None
+
+
+def resolve_model_path(value) -> Path:
+    """A bundled model's name (``starter``) or a path to a model file, as a Path."""
+    text = str(value)
+    return bundled_model_path(text) if text in BUNDLED_MODELS else Path(text).expanduser()

@@ -1,0 +1,149 @@
+"""Looks- and correlation-aware models: conditioning, bias table, files, inference and fine-tuning.
+
+Outside references: psi_1 from scipy.special.polygamma; the mean of L-look Gamma speckle is 1
+(Oliver & Quegan 1998, Understanding Synthetic Aperture Radar Images, ch. 4); the Siegert
+relation for the intensity correlation of correlated speckle (Goodman 1985, Statistical Optics).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+import pytest
+import rasterio
+import torch
+from scipy import special
+
+from despeck import speckle
+from despeck.errors import ConfigError, InputError
+from despeck.inference import InferenceWarning, despeckle_array, despeckle_file
+from despeck.models import Despeckler, create_model, load_model_file, save_model_file
+from despeck.training.calibration import calibrate_log_bias_table, system_for_correlation
+
+torch.set_num_threads(1)
+
+
+@pytest.fixture
+def model():
+    torch.manual_seed(0)
+    return Despeckler(create_model("unet-cond-xs"), looks=[1, 16], point_false_alarm=None).eval()
+
+
+def test_condition_values_follow_scipy(model):
+    c = model.condition(3, torch.tensor([1.0, 4.4, 16.0]), [(0.5, 0.1), (0.0, 0.0), (0.7, 0.7)])
+    expected = np.sqrt(special.polygamma(1, [1.0, 4.4, 16.0])) / model.log_scale
+    np.testing.assert_allclose(c[:, 0].numpy(), expected, rtol=1e-6)
+    np.testing.assert_allclose(c[:, 1:].numpy(), [[0.5, 0.1], [0, 0], [0.7, 0.7]], atol=1e-7)
+    with pytest.raises(InputError):
+        model.condition(2, torch.tensor([1.0, -1.0]))
+
+
+def test_bias_table_interpolates_in_log_looks(model):
+    model.log_bias_table = {"looks": [1.0, 4.0], "corr": [0.0, 0.5], "values": [[0.1, 0.3], [0.0, 0.2]]}
+    assert model.bias_for(1.0, (0.0, 0.0)) == pytest.approx(0.1)
+    assert model.bias_for(4.0, (0.5, 0.5)) == pytest.approx(0.2)
+    assert model.bias_for(2.0, (0.0, 0.0)) == pytest.approx(0.05)  # halfway in ln L
+    assert model.bias_for(100.0, (0.9, 0.9)) == pytest.approx(0.2)  # clamped to the grid
+
+
+def test_model_file_round_trip_keeps_conditioning(tmp_path, model):
+    model.log_bias_table = {"looks": [1.0, 16.0], "corr": [0.0], "values": [[0.02], [0.001]]}
+    path = save_model_file(tmp_path / "m.safetensors", model)
+    back = load_model_file(path)
+    assert back.conditioned and back.looks == [1.0, 16.0] and back.log_bias_table == model.log_bias_table
+    x = torch.rand(1, 1, 24, 24) + 0.1
+    with torch.no_grad():
+        torch.testing.assert_close(back(x, looks=3.0, correlation=(0.2, 0.4)), model(x, looks=3.0, correlation=(0.2, 0.4)))
+
+
+def test_bias_table_keeps_mean_backscatter(model):
+    # After calibration the model's output mean on fresh constant speckle is the reflectivity
+    # (mean of unit-mean Gamma speckle is 1); 0.1 dB is the issue's radiometry target.
+    table = calibrate_log_bias_table(model, looks_range=(1, 16), corr_grid=(0.0, 0.5), side=96, patches=4, seed=1)
+    model.log_bias_table = table
+    rng = np.random.default_rng(9)
+    for L, rho in ((1.0, 0.0), (4.0, 0.5)):
+        R = np.full((128, 128), 0.03, np.float32)
+        if rho:
+            os_, taper = system_for_correlation(rho)
+            x = np.stack([speckle.simulate_correlated_intensity(R, L, rng=rng, oversampling=os_, taper=taper)
+                          for _ in range(6)])
+        else:
+            x = R * speckle.gamma_speckle((6, 128, 128), L, rng=rng)
+        with torch.no_grad():
+            out = model(torch.from_numpy(x)[:, None], log_offset=math.log(0.03) + speckle.log_intensity_mean(L),
+                        looks=L, correlation=(rho, rho))
+        core = out[:, 0, 16:-16, 16:-16].double().mean().item()
+        assert abs(10 * math.log10(core / 0.03)) < 0.1
+
+
+def test_system_for_correlation_reaches_the_target():
+    for rho in (0.1, 0.3, 0.6):
+        os_, taper = system_for_correlation(rho)
+        assert speckle.intensity_correlation_theory(oversampling=os_, taper=taper, lags=(1,))[0] == pytest.approx(rho, abs=1e-3)
+
+
+def test_array_inference_estimates_the_condition(model):
+    R = np.full((256, 256), 0.1, np.float32)
+    image = speckle.simulate_correlated_intensity(R, 4.0, rng=2, oversampling=1.25, taper="hamming")
+    from despeck.looks import describe_array
+
+    info, corr, _ = describe_array(image)
+    default = despeckle_array(image, model, progress=False, threads=1)
+    given = despeckle_array(image, model, progress=False, threads=1, looks=info.value, correlation=corr.lag1)
+    np.testing.assert_allclose(default, given, rtol=1e-6)
+    other = despeckle_array(image, model, progress=False, threads=1, looks=1.0, correlation=(0.0, 0.0))
+    assert np.abs(other - default).max() > 0  # the condition reaches the network
+
+
+def test_looks_outside_the_models_range_warn(model):
+    narrow = Despeckler(model.network, looks=[1, 2])
+    image = 0.1 * speckle.gamma_speckle((128, 128), 10.0, rng=3)
+    with pytest.warns(InferenceWarning, match="outside the 1-2 looks"):
+        despeckle_array(image, narrow, progress=False, threads=1)
+
+
+def test_file_output_records_the_input_condition(tmp_path, model):
+    src = tmp_path / "in.tif"
+    data = (0.05 * speckle.gamma_speckle((128, 160), 3.0, rng=4)).astype(np.float32)
+    with rasterio.open(src, "w", driver="GTiff", width=160, height=128, count=1, dtype="float32") as dst:
+        dst.write(data, 1)
+        dst.update_tags(looks="3")
+    out = tmp_path / "out.tif"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        despeckle_file(src, out, model, progress=False, threads=1)
+    with rasterio.open(out) as ds:
+        tags = ds.tags()
+    assert tags["input_looks"] == "3" and tags["input_looks_source"] == "tag"
+    assert tags["input_speckle_correlation_source"] == "measured"
+    rows = [float(v) for v in tags["input_speckle_correlation_rows"].split(",")]
+    assert rows[0] < 0.15  # white speckle: Siegert relation gives 0 for an unfiltered field
+
+
+def test_fine_tune_starts_from_a_model_file(tmp_path, model):
+    from despeck.training import load_config
+    from despeck.training.trainer import train
+
+    donor = save_model_file(tmp_path / "donor.safetensors", model)
+    cfg_text = f"""
+data: {{synthetic_scenes: 1, synthetic_size: 96, patch_size: 32, batch_size: 4, patches_per_epoch: 8, val_patches: 4}}
+model: {{name: unet-cond-xs, init: {donor}}}
+speckle: {{looks: [1, 4]}}
+budget: {{max_steps: 1}}
+trainer: {{threads: 1, progress: false}}
+output: {{dir: {tmp_path / 'run'}}}
+"""
+    (tmp_path / "c.yaml").write_text(cfg_text)
+    cfg = load_config(tmp_path / "c.yaml")
+    cfg.optim.lr = 1e-12  # one step that cannot move the weights: they must be the donor's
+    result = train(cfg)
+    tuned = load_model_file(result.model_path)
+    for (k, a), b in zip(model.network.state_dict().items(), tuned.network.state_dict().values()):
+        torch.testing.assert_close(a, b, atol=1e-6, rtol=0, msg=k)
+    bad = cfg_text.replace("unet-cond-xs", "unet-xs")
+    (tmp_path / "bad.yaml").write_text(bad.replace(str(tmp_path / "run"), str(tmp_path / "run2")))
+    with pytest.raises(ConfigError, match="model.init"):
+        train(load_config(tmp_path / "bad.yaml"))

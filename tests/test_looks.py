@@ -1,0 +1,149 @@
+"""The looks and speckle-correlation owner (despeck.looks) and the physics it rests on.
+
+Outside references:
+- Log-speckle mean psi(L) - ln L: scipy.special.digamma and numerical integration of the
+  Gamma(L, 1/L) density with scipy.integrate.quad (Oliver & Quegan 1998, Understanding
+  Synthetic Aperture Radar Images, Artech House, ch. 4).
+- Intensity correlation of correlated speckle: |rho_z(k)|^2 with rho_z the normalised
+  autocorrelation of the complex point-spread function (Siegert relation; Goodman 1985,
+  Statistical Optics, Wiley), computed here directly from the PSF.
+- ENL of a weighted sum of independent exponential looks: (sum w)^2 / sum w^2
+  (Oliver & Quegan 1998, ch. 4).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import integrate, special, stats
+
+from despeck import looks, speckle
+from despeck.errors import InputError
+
+
+@pytest.mark.parametrize("L", [1.0, 2.5, 4.4, 10.0])
+def test_log_speckle_mean_follows_non_integer_looks(L):
+    # E[ln n] for n ~ Gamma(L, 1/L), by quadrature of the density (outside: scipy.stats)
+    density = stats.gamma(a=L, scale=1.0 / L)
+    numeric, _ = integrate.quad(lambda x: math.log(x) * density.pdf(x), 0, np.inf, limit=200)
+    assert speckle.log_intensity_mean(L) == pytest.approx(special.digamma(L) - math.log(L), abs=1e-12)
+    assert speckle.log_intensity_mean(L) == pytest.approx(numeric, abs=1e-6)
+
+
+@pytest.mark.parametrize("L", [1.0, 2.5, 4.4, 7.3])
+def test_look_weights_give_the_requested_enl(L):
+    w = speckle.look_weights(L)
+    assert w.sum() == pytest.approx(1.0)
+    assert w.sum() ** 2 / np.sum(w ** 2) == pytest.approx(L, rel=1e-9)  # Oliver & Quegan 1998
+
+
+def _psf_lag_correlation(psf, lag, axis):
+    """|rho_z(lag)|^2 straight from the complex PSF (Siegert relation, Goodman 1985)."""
+    shifted = np.roll(psf, -lag, axis=axis)
+    if axis == 0:
+        shifted[-lag:, :] = 0
+    else:
+        shifted[:, -lag:] = 0
+    rho = np.sum(psf * np.conj(shifted)) / np.sum(np.abs(psf) ** 2)
+    return abs(rho) ** 2
+
+
+@pytest.mark.parametrize("oversampling,taper", [(1.25, "hamming"), (1.6, "kaiser"), (1.4, "none"), ((1.0, 1.4), "hamming")])
+def test_correlation_theory_matches_the_psf(oversampling, taper):
+    psf = speckle.system_psf(oversampling=oversampling, taper=taper, size=129)
+    osr, osc = (oversampling, oversampling) if np.isscalar(oversampling) else oversampling
+    for axis, os_ in ((0, osr), (1, osc)):
+        theory = speckle.intensity_correlation_theory(oversampling=os_, taper=taper, lags=(1, 2))
+        direct = [_psf_lag_correlation(psf, k, axis) for k in (1, 2)]
+        np.testing.assert_allclose(theory, direct, atol=0.01)
+
+
+@pytest.mark.parametrize("L", [1, 4.4])
+@pytest.mark.parametrize("oversampling,taper", [(1.0, "none"), (1.25, "hamming"), ((1.0, 1.5), "kaiser")])
+def test_measured_correlation_matches_theory(L, oversampling, taper):
+    R = np.full((512, 512), 0.05, dtype=np.float32)
+    image = speckle.simulate_correlated_intensity(R, L, rng=11, oversampling=oversampling, taper=taper)
+    corr = looks.measure_scene_correlation(image)
+    osr, osc = (oversampling, oversampling) if np.isscalar(oversampling) else oversampling
+    th_r = speckle.intensity_correlation_theory(oversampling=osr, taper=taper)
+    th_c = speckle.intensity_correlation_theory(oversampling=osc, taper=taper)
+    # tolerance: block-mean subtraction and block ranking bias the estimate low by ~0.01-0.02
+    # (measured here), sampling noise ~0.01 on 2.6e5 pixels (from the block count)
+    np.testing.assert_allclose(corr.rows, th_r, atol=0.035)
+    np.testing.assert_allclose(corr.cols, th_c, atol=0.035)
+
+
+@pytest.mark.parametrize("L", [1.0, 2.5, 4.4, 10.0])
+@pytest.mark.parametrize("correlated", [False, True])
+def test_estimated_looks_within_tolerance(L, correlated):
+    R = np.full((512, 512), 0.1, dtype=np.float32)
+    # a scene with structure too: half the image is a textured (K-distributed) area
+    texture = stats.gamma(a=3.0, scale=1 / 3.0).rvs(size=(512, 256), random_state=3).astype(np.float32)
+    R[:, 256:] *= texture
+    if correlated:
+        image = speckle.simulate_correlated_intensity(R, L, rng=5, oversampling=1.25, taper="hamming")
+    else:
+        image = R * speckle.gamma_speckle(R.shape, L, rng=5)
+    info = looks.resolve_looks(None, intensity=image)
+    assert info.source == "estimate"
+    # 10 %: the tolerance the issue asks of the estimator (chosen by the project, not a published value)
+    assert info.value == pytest.approx(L, rel=0.10)
+
+
+def test_resolve_order_option_tag_estimate():
+    image = np.full((256, 256), 1.0, np.float32) * speckle.gamma_speckle((256, 256), 3.0, rng=0)
+    assert looks.resolve_looks("2.5", tags={"looks": "4"}, intensity=image) == looks.LooksInfo(2.5, "option", "given by --looks")
+    assert looks.resolve_looks(None, tags={"LOOKS": "4"}, intensity=image).source == "tag"
+    assert looks.resolve_looks("auto", tags={}, intensity=image).source == "estimate"
+
+
+def test_unestimable_scene_names_the_option():
+    with pytest.raises(InputError, match="--looks"):
+        looks.resolve_looks(None, intensity=np.ones((20, 20), np.float32))
+    with pytest.raises(InputError, match="--looks"):
+        looks.resolve_looks(None)
+    with pytest.raises(InputError, match="--looks"):
+        looks.resolve_looks("many")
+    info, corr, notes = looks.describe_array(np.ones((20, 20), np.float32) * 2)
+    assert info.source == "assumed" and corr == looks.WHITE and len(notes) == 2
+
+
+def test_tags_round_trip():
+    info = looks.LooksInfo(4.4, "estimate", "x")
+    corr = looks.SpeckleCorrelation((0.52, 0.06), (0.31, 0.01), "measured")
+    tags = looks.speckle_tags(info, corr)
+    assert looks.looks_from_tags(tags) == pytest.approx(4.4)
+    back = looks.correlation_from_tags(tags)
+    assert back.rows == pytest.approx((0.52, 0.06)) and back.cols == pytest.approx((0.31, 0.01))
+    assert looks.correlation_from_tags({"speckle_correlation_rows": "nan,1"}) is None
+
+
+def test_log_iqr_estimate_ignores_bright_points():
+    # 1-look speckle with 1 % of pixels replaced by strong point scatterers (+20 dB):
+    # 1/CV^2 collapses, the quartiles of ln I barely move (Gamma quartiles via scipy.stats).
+    rng = np.random.default_rng(4)
+    image = speckle.gamma_speckle((512, 512), 4.0, rng=rng)
+    points = rng.random(image.shape) < 0.01
+    image[points] = 100.0
+    assert speckle.estimate_looks(image) < 2.0
+    value, blocks = speckle.estimate_looks_log_iqr(image)
+    assert value == pytest.approx(4.0, rel=0.15) and blocks >= 8
+
+
+@pytest.mark.parametrize("L", [1.0, 3.0, 12.0])
+def test_log_iqr_inversion(L):
+    q25, q75 = stats.gamma.ppf([0.25, 0.75], L, scale=1 / L)
+    assert speckle.log_intensity_iqr(L) == pytest.approx(math.log(q75 / q25))
+    assert speckle.looks_from_log_iqr(math.log(q75 / q25)) == pytest.approx(L, rel=1e-4)
+
+
+def test_textureless_guess_is_announced():
+    # a scene of pure strong texture (K-distributed with 0.5 texture looks): estimate < 1 and a note says so
+    rng = np.random.default_rng(8)
+    texture = rng.gamma(0.5, 2.0, (256, 256))
+    image = (texture * speckle.gamma_speckle((256, 256), 4.0, rng=rng)).astype(np.float32)
+    info, corr, notes = looks.describe_array(image)
+    assert info.value < 0.8
+    assert any("below one" in n and "--looks" in n for n in notes)
