@@ -147,3 +147,30 @@ def test_textureless_guess_is_announced():
     info, corr, notes = looks.describe_array(image)
     assert info.value < 0.8
     assert any("below one" in n and "--looks" in n for n in notes)
+
+
+def test_simulate_records_looks_and_correlation_that_info_reads_back(tmp_path, capsys):
+    import rasterio
+
+    from despeck.cli import main
+
+    clean = tmp_path / "clean.tif"
+    with rasterio.open(clean, "w", driver="GTiff", width=200, height=160, count=1, dtype="float32") as dst:
+        dst.write(np.full((160, 200), 0.05, np.float32), 1)
+    out = tmp_path / "s.tif"
+    assert main(["simulate", str(clean), str(out), "--looks", "4.4", "--correlated", "--seed", "3", "--quiet"]) == 0
+    with rasterio.open(out) as ds:
+        tags = ds.tags()
+    assert looks.looks_from_tags(tags) == pytest.approx(4.4)
+    corr = looks.correlation_from_tags(tags)
+    assert corr.rows[0] == pytest.approx(speckle.intensity_correlation_theory(oversampling=1.25)[0], abs=1e-3)
+    capsys.readouterr()
+    assert main(["info", str(out)]) == 0
+    text = capsys.readouterr().out
+    assert "looks 4.40 (recorded in the file's 'looks' tag)" in text and "correlated" in text
+    # filtering it records the input's looks, not a looks tag the output no longer has
+    filtered = tmp_path / "f.tif"
+    assert main(["filter", "lee", str(out), str(filtered)]) == 0
+    with rasterio.open(filtered) as ds:
+        ftags = ds.tags()
+    assert ftags["input_looks"] == "4.4" and ftags["input_looks_source"] == "tag"

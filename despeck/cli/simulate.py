@@ -20,7 +20,7 @@ from ..errors import InputError
 def add_arguments(parser):
     parser.add_argument("clean", metavar="CLEAN", help="clean reference raster (reflectivity)")
     parser.add_argument("output", metavar="OUT", help="speckled GeoTIFF to write")
-    parser.add_argument("--looks", "-L", type=float, required=True, help="number of looks L > 0 (whole with --correlated)")
+    parser.add_argument("--looks", "-L", type=float, required=True, help="number of looks L > 0 (at least 1 with --correlated; fractional values weight the looks)")
     parser.add_argument("--correlated", action="store_true",
                         help="spatially correlated speckle from a band-limited, tapered system response")
     parser.add_argument("--oversampling", type=float, default=1.25,
@@ -42,8 +42,8 @@ def _raise_on_term(signum, frame):  # noqa: ARG001
 
 def run(args) -> int:
     looks = speckle.check_looks(args.looks, "--looks")
-    if args.correlated and looks != round(looks):
-        raise InputError(f"--looks must be a whole number with --correlated (single looks are averaged), got {args.looks:g}")
+    if args.correlated and looks < 1:
+        raise InputError(f"--looks must be at least 1 with --correlated (single looks are summed), got {args.looks:g}")
     if args.seed is not None and args.seed < 0:
         raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
     seed = args.seed
@@ -58,8 +58,17 @@ def run(args) -> int:
 
     kind = "correlated" if args.correlated else "white"
     tags = {"speckle": f"{kind}, looks={args.looks:g}, seed={seed}"}
+    # The looks and the speckle correlation as despeck.looks reads them back (theory of
+    # the simulated system; 0 for white speckle).
+    from ..looks import LooksInfo, SpeckleCorrelation, speckle_tags
+
     if args.correlated:
         tags["speckle"] += f", oversampling={args.oversampling:g}, taper={args.taper}"
+        lag = tuple(speckle.intensity_correlation_theory(oversampling=args.oversampling, taper=args.taper))
+        corr = SpeckleCorrelation(lag, lag, "simulated", "of the simulated system")
+    else:
+        corr = SpeckleCorrelation((0.0, 0.0), (0.0, 0.0), "simulated", "white speckle")
+    tags.update(speckle_tags(LooksInfo(float(args.looks), "simulated"), corr))
     # SIGTERM becomes KeyboardInterrupt, so the writer removes its temporary file and claim.
     previous = signal.signal(signal.SIGTERM, _raise_on_term)
     try:
