@@ -305,3 +305,81 @@ def test_gdal_block_cache_is_capped(tmp_path, rng, monkeypatch):
     with rasterio.Env(GDAL_CACHEMAX=200 * 2**20):  # a size the caller chose is respected
         raster.open_scene(src).close()
         assert int(get_gdal_config("GDAL_CACHEMAX")) == 200 * 2**20
+
+
+# --------------------------------------------------------------------------- units: hints and statistics
+
+def _one_look_intensity(rng, shape=(256, 256)):
+    """Unit-mean 1-look intensity speckle on a two-level scene (two homogeneous fields)."""
+    reflectivity = np.full(shape, 0.2)
+    reflectivity[:, shape[1] // 2:] = 0.05
+    # Exponential (1-look) intensity drawn by scipy, not by despeck (Oliver & Quegan 1998).
+    from scipy import stats
+
+    return reflectivity * stats.expon.rvs(size=shape, random_state=rng)
+
+
+def test_unit_hints_read_words_not_substrings():
+    assert raster.unit_hints(("Sigma0_VV_db",))[0] == "db"
+    assert raster.unit_hints(("Amplitude_VV",))[0] == "amplitude"
+    assert raster.unit_hints(("HH magnitude",))[0] == "amplitude"
+    assert raster.unit_hints(("sigma0 VV",))[0] == "intensity"
+    assert raster.unit_hints((), (), {"UNITS": "power"}) == ("intensity", "tag UNITS='power'")
+    # "amp" inside "sample" or "timestamp" is no hint; neither is a scale factor's key
+    assert raster.unit_hints(("sample timestamp",), (), {"AMPLITUDE_SCALE": "2"}) == (None, "")
+    assert raster.unit_hints(("amplitude",), (), {"UNITS": "intensity"})[0] == "conflict"
+
+
+def test_units_evidence_tells_intensity_from_amplitude_on_speckle(rng):
+    # On homogeneous areas 1-look intensity is exponential (CV 1) and 1-look amplitude
+    # Rayleigh (CV sqrt(4/pi - 1) = 0.5227); Oliver & Quegan 1998. The evidence is
+    # the log-variance against trigamma(1/CV^2), so it must call each one right, and
+    # leave 4-look amplitude (close to Gamma in shape) undecided rather than guess.
+    from scipy import stats
+
+    intensity = _one_look_intensity(rng)
+    e_int = raster.units_evidence(intensity)
+    e_amp = raster.units_evidence(np.sqrt(intensity))
+    assert e_int.vote == "intensity" and abs(e_int.ratio_intensity - 1) < 0.1
+    assert e_amp.vote == "amplitude" and abs(e_amp.ratio_amplitude - 1) < 0.1
+    # amplitudes read as intensity: 1 / CV^2 = 1 / (4/pi - 1) = 3.66 "looks" (Oliver & Quegan 1998)
+    assert abs(e_amp.looks_as_intensity - 1 / (4 / np.pi - 1)) < 0.4
+    four_look_amplitude = np.sqrt(stats.gamma.rvs(4, scale=0.25, size=(256, 256), random_state=rng))
+    assert raster.units_evidence(four_look_amplitude).vote is None
+    # a clean (unspeckled) scene holds no evidence either way
+    assert not raster.units_evidence(np.full((256, 256), 0.3)).speckled
+
+
+def test_amplitude_described_band_is_read_as_amplitude(tmp_path, rng):
+    # A float GeoTIFF of 1-look amplitude whose band description says "amplitude" and
+    # that has no unit metadata used to be read as intensity (ENL 3.66 instead of 1).
+    intensity = _one_look_intensity(rng)
+    src = make_tif(tmp_path / "amp.tif", np.sqrt(intensity), descriptions=("amplitude VV",))
+    with raster.open_scene(src) as reader:
+        assert reader.units == "amplitude" and reader.units_decision.detected
+        assert "agree" in reader.units_decision.reason
+        read, _ = reader.read()
+    np.testing.assert_allclose(read, intensity, rtol=1e-5)
+    # Without any metadata the statistics alone decide, and say so in one line.
+    bare = make_tif(tmp_path / "bare.tif", np.sqrt(intensity))
+    with pytest.warns(raster.UnitsWarning, match=r"read as amplitude.*--units") as record:
+        with raster.open_scene(bare) as reader:
+            assert reader.units == "amplitude"
+    assert all("\n" not in str(w.message) for w in record)
+
+
+def test_units_hint_and_statistics_disagreeing_is_said(tmp_path, rng):
+    intensity = _one_look_intensity(rng)
+    src = make_tif(tmp_path / "odd.tif", intensity, descriptions=("Amplitude_HH",))
+    with pytest.warns(raster.UnitsWarning, match=r"says amplitude but the values are distributed like intensity.*--units"):
+        with raster.open_scene(src) as reader:
+            assert reader.units == "amplitude"  # the file's own word wins, with the warning
+    with raster.open_scene(src, units="intensity") as reader:  # the option settles it, silently
+        assert reader.units == "intensity" and not reader.units_decision.warnings
+    from scipy import stats
+
+    four_look_amplitude = np.sqrt(stats.gamma.rvs(4, scale=0.25, size=(256, 256), random_state=rng))
+    unsure = make_tif(tmp_path / "unsure.tif", four_look_amplitude)
+    with pytest.warns(raster.UnitsWarning, match=r"cannot tell intensity from amplitude.*--units"):
+        with raster.open_scene(unsure) as reader:
+            assert reader.units == "intensity"

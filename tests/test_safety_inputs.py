@@ -161,3 +161,18 @@ def test_apply_does_not_pass_on_rasterio_notes(tmp_path, capsys):
     code, _, err = run(["apply", src, "--model", model, "--quiet"], capsys)
     assert code == 0, err
     assert "geotransform" not in err and all(ln.startswith("despeck: warning: ") for ln in err.splitlines())
+
+
+# --------------------------------------------------------------------------- units
+
+def test_info_reads_a_band_described_as_amplitude_as_amplitude(tmp_path, capsys):
+    # 1-look amplitude with the description "amplitude" and no unit metadata: read as
+    # intensity it looks like 1 / (4/pi - 1) = 3.66 looks; read right it is 1 look
+    # (Oliver & Quegan 1998).
+    intensity = one_look_intensity(4)
+    src = write_tif(tmp_path / "amp.tif", np.sqrt(intensity), descriptions=("amplitude",))
+    code, out, _ = run(["info", src, "--json"], capsys)
+    assert code == 0
+    info = json.loads(out)
+    assert info["units"] == "amplitude" and info["units_detected"]
+    assert 0.85 < info["band_info"][0]["enl"] < 1.15
