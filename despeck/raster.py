@@ -963,10 +963,13 @@ class SceneReader:
         for r in rows:
             for c in cols:
                 w = Window(c, r, side_c, side_r)
-                raw = ds.read(1, window=w)
-                bad = _nodata_mask(raw, ds.nodatavals[0])
-                if 1 in self._masked_bands:
-                    bad |= ds.read_masks(1, window=w) == 0
+                try:
+                    raw = ds.read(1, window=w)
+                    bad = _nodata_mask(raw, ds.nodatavals[0])
+                    if 1 in self._masked_bands:
+                        bad |= ds.read_masks(1, window=w) == 0
+                except (RasterioError, OSError) as exc:
+                    raise self._read_error(exc, w) from None
                 values = raw.astype(np.float64)
                 values[bad | ~np.isfinite(values)] = np.nan
                 images.append(values)
