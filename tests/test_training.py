@@ -22,7 +22,7 @@ from despeck.synthetic import make_scene
 from despeck.training import apply_overrides, config_from_dict, dump_config, load_config, parse_duration, train
 from despeck.training.data import TrainingData
 from despeck.training.losses import DespeckleLoss, gamma_nll, log_mse
-from despeck.training.trainer import EpochTimeBudget
+from despeck.training.trainer import EpochTimeBudget, TrainingWarning
 
 torch.set_num_threads(2)
 TINY = Path(__file__).resolve().parents[1] / "configs" / "tiny.yaml"
@@ -160,8 +160,10 @@ def test_bad_inputs_fail_before_training(tmp_path, references):
     (tmp_path / "plain_file").write_text("x")
     with pytest.raises(ConfigError, match="output.dir: cannot write"):
         train(load_config(TINY, [f"output.dir={tmp_path / 'plain_file' / 'sub'}"]), progress=False)
-    with pytest.raises(ConfigError, match="nothing to resume"):
-        run(f"data.train=[{references}]", resume=True)
+    # Resuming where nothing was started starts afresh (saying so); the bad input is still refused.
+    with pytest.warns(TrainingWarning, match="nothing to resume"), \
+            pytest.raises(ConfigError, match="holds no raster files"):
+        run(f"data.train=[{tmp_path / 'empty'}]", resume=True)
     assert not (tmp_path / "out" / "metrics.csv").exists()  # nothing ever started
 
 

@@ -1,15 +1,24 @@
 """``despeck train``: train a despeckling network from a YAML configuration.
 
 Thin: parses options, loads and checks the config (with ``--set`` overrides), runs
-:func:`despeck.training.train` and prints where the results went.
+:func:`despeck.training.train` and prints where the results went. Warnings are shown as
+one line each (``despeck: warning: ...``), once. SIGINT and SIGTERM end the command with
+status 130 and 143 and one line naming the last checkpoint.
 """
 
 from __future__ import annotations
 
 import json
+import sys
+import warnings
+
+EPILOG = ("exit status: 0 when the model file is written; 2 on an error (one line: bad config, "
+          "unwritable output, diverged training); 130 on SIGINT (Ctrl-C) and 143 on SIGTERM, after "
+          "naming the last checkpoint: the same command with --resume continues from it")
 
 
 def add_arguments(parser) -> None:
+    parser.epilog = EPILOG
     parser.add_argument("--config", required=True, metavar="FILE", help="YAML training configuration")
     parser.add_argument(
         "--set", dest="overrides", action="append", default=[], metavar="KEY=VALUE",
@@ -20,11 +29,31 @@ def add_arguments(parser) -> None:
     parser.add_argument("--quiet", action="store_true", help="no progress bars or model summary")
 
 
+def _one_line_warnings():
+    shown = set()
+
+    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
+        # Library warnings come with source lines and advice for developers: first line only, once.
+        text = (str(message).strip().splitlines() or [category.__name__])[0]
+        if text not in shown:
+            shown.add(text)
+            print(f"despeck: warning: {text}", file=sys.stderr)
+
+    return show
+
+
 def run(args) -> int:
     from ..training import load_config, train
+    from ..training.trainer import TrainingInterrupted
 
     config = load_config(args.config, args.overrides)
-    result = train(config, resume=args.resume, progress=False if args.quiet else None)
+    with warnings.catch_warnings():
+        warnings.showwarning = _one_line_warnings()
+        try:
+            result = train(config, resume=args.resume, progress=False if args.quiet else None)
+        except TrainingInterrupted as exc:
+            print(f"despeck: {exc}", file=sys.stderr)
+            return exc.exit_code
     shown = {k: round(v, 4) if isinstance(v, float) else v for k, v in result.best_metrics.items()}
     print(f"model: {result.model_path}")
     print(f"metrics: {result.metrics_path}  config: {result.config_path}")
