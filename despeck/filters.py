@@ -38,6 +38,7 @@ import numpy as np
 from scipy import ndimage, optimize, special
 
 from .bm3d_log import DEFAULT_SEARCH_WINDOW, bm3d_log
+from .bm3d_log import require as require_bm3d
 from .errors import InputError
 from .speckle import check_looks
 
@@ -1295,6 +1296,8 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
         done = [_band_settings(name, reader, b, looks, options, in_path) for b in bands]
         # plans first: a bad option or looks value fails before any file exists
         plans = [_PLANS[name](e["looks"], window, **e["options"]) if name in _PLANS else None for e in done]
+        if name == "bm3d-log":
+            require_bm3d()  # its optional package, before any progress bar or file
         bar = tqdm(total=h * len(bands), unit="row", desc=f"{name} {in_path.name}", disable=not progress, leave=False)
         with raster.open_output(out_path, like=reader, units=out_units, band_count=len(bands),
                                 overwrite=overwrite) as writer:
@@ -1308,6 +1311,8 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
                     bar.update(h)
                     continue
                 _filter_strips(plan, reader, writer, entry["band"], k, workers, bar)
+            # The output is no longer L-look speckle: record the input's looks under input_*.
+            writer.update_tags(input_looks=f"{float(done[0]['looks']):.4g}", input_looks_source=done[0]["looks_source"])
         bar.close()
     first = done[0]
     return {
@@ -1339,23 +1344,27 @@ def _bands_to_filter(reader, band, in_path) -> list:
 
 def _band_settings(name, reader, band, looks, options, in_path) -> dict:
     """Looks (given or estimated) and scene-level options of one band."""
-    from .speckle import estimate_looks
+    from . import looks as looks_mod
 
     looks_estimated = looks is None
     options = dict(options)
-    if looks_estimated or (name == "improved-sigma" and options.get("point_threshold") is None):
+    where = f"{in_path}" if reader.band_count == 1 else f"{in_path} band {band}"
+    looks_source = "option"
+    if looks_estimated:
+        # The looks of a scene have one owner: the file's 'looks' tag, else an estimate
+        # on full-resolution windows (despeck.looks).
+        sample = (None, None) if looks_mod.looks_from_tags(reader.tags) else looks_mod.read_sample(reader, band)
+        try:
+            info = looks_mod.resolve_looks(None, tags=reader.tags, intensity=sample[0], valid=sample[1],
+                                           name="--looks")
+        except InputError as exc:
+            raise InputError(f"{where}: {exc}") from None
+        looks, looks_source = info.value, info.source
+    if name == "improved-sigma" and options.get("point_threshold") is None:
         sample, sample_valid = reader.sample_image(SAMPLE_PIXELS, band=band)
-        where = f"{in_path}" if reader.band_count == 1 else f"{in_path} band {band}"
-        if looks_estimated:
-            try:
-                looks = estimate_looks(sample, sample_valid)
-            except InputError as exc:
-                raise InputError(f"{where}: cannot estimate the number of looks ({exc}); give looks") from None
-            if not math.isfinite(looks):
-                raise InputError(f"{where}: the scene looks constant, cannot estimate the number of looks; give looks")
-        if name == "improved-sigma" and options.get("point_threshold") is None:
-            options["point_threshold"] = _scene_percentile(sample.astype(np.float64), sample_valid)
-    return {"band": band, "looks": float(looks), "looks_estimated": bool(looks_estimated), "options": options}
+        options["point_threshold"] = _scene_percentile(sample.astype(np.float64), sample_valid)
+    return {"band": band, "looks": float(looks), "looks_estimated": bool(looks_estimated),
+            "looks_source": looks_source, "options": options}
 
 
 def _filter_strips(plan, reader, writer, band, out_band, workers, bar):
