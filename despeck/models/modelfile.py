@@ -35,7 +35,7 @@ from pathlib import Path
 
 import torch
 
-from ..atomic import publish, sibling_temp
+from ..atomic import publish, sibling_temp, write_problem
 from ..errors import DespeckError, InputError, ModelFileError
 from .registry import create_model, list_models, weight_shapes
 from .wrapper import Despeckler
@@ -139,21 +139,23 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
     folder = path.parent if str(path.parent) else Path(".")
     if not folder.is_dir():
         raise ModelFileError(f"cannot write model file {path}: folder {folder} does not exist")
+    def failed(exc, partial=None):
+        problem = write_problem(folder, exc, partial)
+        return ModelFileError(f"cannot write model file {path}: {problem.text if problem else exc.strerror or exc}")
+
     try:
         tmp = sibling_temp(path)
     except OSError as exc:
-        raise ModelFileError(f"cannot write model file {path}: {exc.strerror or exc}") from None
+        raise failed(exc) from None
     try:
         data = save(tensors, metadata={_HEADER_KEY: json.dumps(header, sort_keys=True)})
         with open(tmp, "wb") as f:
             f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
         if os.path.getsize(tmp) != len(data):
-            raise OSError(f"only {os.path.getsize(tmp)} of {len(data)} bytes reached the disk")
-        publish(tmp, path)
+            raise OSError(f"only {os.path.getsize(tmp)} of {len(data)} bytes were written")
+        publish(tmp, path)  # fsync, then rename
     except OSError as exc:
-        raise ModelFileError(f"cannot write model file {path}: {exc.strerror or exc}") from None
+        raise failed(exc, tmp) from None
     finally:
         if os.path.exists(tmp):
             os.unlink(tmp)
