@@ -1107,6 +1107,14 @@ def _decode_threads():
     return rasterio.Env(GDAL_NUM_THREADS="ALL_CPUS")
 
 
+#: Metadata tags describing the speckle of a file's pixels; output writers do not copy
+#: them from the input (despeck.looks writes the ones that hold for the output).
+SPECKLE_TAGS = frozenset({
+    "looks", "looks_source", "enl", "number_of_looks", "speckle",
+    "speckle_correlation_rows", "speckle_correlation_cols", "speckle_correlation_source",
+})
+
+
 class SceneWriter:
     """A GeoTIFF being written, in ``units``, georeferenced like a source scene.
 
@@ -1189,7 +1197,10 @@ class SceneWriter:
                 if b <= len(descriptions) and descriptions[b - 1]:
                     self._ds.set_band_description(b, descriptions[b - 1])
                 self._ds.set_band_unit(b, _UNIT_LABELS[self.units])
-            tags = dict(getattr(like, "tags", {}) or {})
+            # Tags that describe the speckle of the source pixels no longer hold for new
+            # pixels (a filtered scene is not L-look speckle); writers record their own.
+            tags = {k: v for k, v in dict(getattr(like, "tags", {}) or {}).items()
+                    if str(k).strip().lower() not in SPECKLE_TAGS}
             if tags:
                 self._ds.update_tags(**tags)
         except BaseException as exc:

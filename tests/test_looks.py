@@ -174,3 +174,4 @@ def test_simulate_records_looks_and_correlation_that_info_reads_back(tmp_path, c
     with rasterio.open(filtered) as ds:
         ftags = ds.tags()
     assert ftags["input_looks"] == "4.4" and ftags["input_looks_source"] == "tag"
+    assert "looks" not in ftags and "speckle" not in ftags  # they described the input's speckle
