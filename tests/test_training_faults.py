@@ -199,3 +199,14 @@ def test_library_warnings_are_one_line(tmp_path, capsys):
                    "steps): the model has no validation measures and no bias correction; allow at least one "
                    "whole epoch\n")
     assert math.isfinite(load_model_file(out / "model.safetensors").log_bias)
+
+
+def test_no_library_adverts_with_progress(tmp_path, caplog):
+    # With progress shown, Lightning's own notes stay, its adverts for other products
+    # ("Tip: ... try installing litlogger") do not.
+    args = [a for a in _args(tmp_path / "run", "budget.max_epochs=1") if a != "--quiet"]
+    with caplog.at_level("INFO"):
+        assert cli_main(args) == 0
+    notes = [r.getMessage() for r in caplog.records if r.name.startswith("lightning")]
+    assert any("GPU available" in n for n in notes)  # Lightning's notes are shown at all
+    assert not any("Tip:" in n or "litlogger" in n or "litmodels" in n for n in notes), notes

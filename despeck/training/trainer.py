@@ -32,6 +32,7 @@ from __future__ import annotations
 import csv
 import functools
 import io
+import logging
 import math
 import os
 import signal
@@ -407,6 +408,13 @@ class _AtomicCheckpointIO(pl.plugins.TorchCheckpointIO):
         _atomic_write_bytes(Path(path), buf.getbuffer(), ModelFileError, "checkpoint")
 
 
+class _NoAdverts(logging.Filter):
+    """Drop Lightning's "Tip: try installing ..." notes for other products from its log."""
+
+    def filter(self, record):
+        return not record.getMessage().lstrip().startswith("\N{ELECTRIC LIGHT BULB}")
+
+
 class _DivergenceGuard(pl.Callback):
     """Stop at the first training step whose loss or updated weights are NaN or infinite."""
 
@@ -604,13 +612,14 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     metrics_path = out / "metrics.csv"
     previous = _metrics_rows_until(metrics_path, int(resume_ckpt["global_step"])) if resume_ckpt else None
 
-    import logging
-
     lightning_log = logging.getLogger("lightning.pytorch")
     previous_level = lightning_log.level
     previous_deterministic = torch.are_deterministic_algorithms_enabled()
     if not progress:
         lightning_log.setLevel(logging.WARNING)  # quiet: no device notes or "fit stopped"
+    no_adverts = _NoAdverts()
+    notes_log = logging.getLogger("lightning.pytorch.utilities.rank_zero")  # where Lightning's notes are logged
+    notes_log.addFilter(no_adverts)
     try:
         with warnings.catch_warnings():
             # Lightning's notes about deliberate choices (no workers on a small CPU, an
@@ -640,6 +649,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
                         ckpt_path=str(last) if resume else None)
     finally:
         lightning_log.setLevel(previous_level)
+        notes_log.removeFilter(no_adverts)
         # Lightning switched on deterministic algorithms for the whole process; give the
         # caller back its own setting.
         torch.use_deterministic_algorithms(previous_deterministic)
