@@ -344,3 +344,23 @@ def test_shipped_pairs_config_points_at_the_sample_dates():
     assert config.data.self_supervised and config.loss.target == "noisy"
     for path in config.data.pairs[0]:
         assert Path(path).is_file() and Path(path).name.startswith("oskarvel_date")
+
+
+@pytest.mark.parametrize("oversampling,taper", [(1.3, "hamming"), (1.6, "kaiser")])
+def test_change_test_holds_its_false_alarm_on_correlated_speckle(oversampling, taper):
+    # An unchanged pair of correlated 1-look speckle: with the measured correlation the
+    # window sums count independent samples (Siegert relation, Goodman 1985) and the
+    # flagged share stays near the stated 1 % (a 3x margin: the F law is approximate for
+    # a correlated sum; project tolerance). Without it, far more is flagged.
+    from despeck.looks import measure_scene_correlation
+    from despeck.speckle import simulate_correlated_intensity
+    from despeck.training.pairs import change_mask
+
+    R = np.full((384, 384), 0.05, np.float32)
+    a = simulate_correlated_intensity(R, 1, rng=1, oversampling=oversampling, taper=taper)
+    b = simulate_correlated_intensity(R, 1, rng=2, oversampling=oversampling, taper=taper)
+    corr = measure_scene_correlation(a)
+    naive = change_mask(a, b, false_alarm=0.01, grow=0).mean()
+    fixed = change_mask(a, b, false_alarm=0.01, grow=0, correlation=(corr.rows, corr.cols)).mean()
+    assert fixed < 0.03
+    assert naive > 3 * fixed
