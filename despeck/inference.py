@@ -446,7 +446,9 @@ def condition_for_model(model, info, corr, name="scene"):
     """``(looks, correlation, notes)`` to pass to ``model`` for a scene of ``info`` looks and ``corr`` correlation.
 
     Looks outside the model's trained range are clamped to it (a conditioned network
-    does not extrapolate) and the note says so; correlation is passed as measured.
+    does not extrapolate) and the note says so. The correlation is passed when it is
+    reliable (:attr:`despeck.looks.SpeckleCorrelation.reliable`); otherwise a model that
+    can run blind (``correlation_unknown``) is not told it.
     Models that are not looks-aware get the looks only (for the point-target test).
     """
     notes = []
@@ -461,6 +463,11 @@ def condition_for_model(model, info, corr, name="scene"):
         L = clamped
     if not getattr(model, "conditioned", False):
         return L, None, notes
+    if not corr.reliable:
+        if getattr(model, "correlation_unknown", False):
+            return L, None, notes  # the model runs without being told the correlation
+        notes.append(f"{name}: the measured speckle correlation looks like texture ({corr.describe()}); "
+                     "this model needs it, so it was used as measured")
     return L, corr.lag1, notes
 
 

@@ -100,9 +100,32 @@ class SpeckleCorrelation:
     def lag1(self) -> tuple:
         return float(self.rows[0]), float(self.cols[0])
 
+    @property
+    def reliable(self) -> bool:
+        """Whether the values can be told to a network as the speckle's correlation.
+
+        Recorded or given values are. A measurement is when, on both axes, it reads
+        either white (lag 1 below 0.06) or like a sensor's speckle: lag 1 of at least
+        0.15 and lag 2 at most half of lag 1 plus 0.03 (system responses decorrelate
+        within two pixels: lag 2 / lag 1 <= 0.33 for oversampling up to 1.6 with the
+        usual tapers, :func:`despeck.speckle.intensity_correlation_theory`). Texture left
+        in the homogeneous blocks decays slowly (lag 2 close to lag 1) or reads as weak
+        correlation; such a measurement is not trusted, and looks-aware models then
+        run without being told the correlation.
+        """
+        if self.source != "measured":
+            return self.source != "assumed"
+        for r1, r2 in (self.rows, self.cols):
+            white = r1 < 0.06
+            sensor = r1 >= 0.15 and r2 <= 0.5 * r1 + 0.03
+            if not (white or sensor):
+                return False
+        return True
+
     def describe(self) -> str:
+        trust = "" if self.reliable else "; not trusted: texture-like"
         return (f"lag-1 correlation {self.rows[0]:.2f} down rows, {self.cols[0]:.2f} along columns "
-                f"(lag 2: {self.rows[1]:.2f}, {self.cols[1]:.2f}; {self.detail or self.source})")
+                f"(lag 2: {self.rows[1]:.2f}, {self.cols[1]:.2f}; {self.detail or self.source}{trust})")
 
 
 WHITE = SpeckleCorrelation((0.0, 0.0), (0.0, 0.0), "assumed", "white speckle assumed")
@@ -345,5 +368,5 @@ def speckle_tags(info: LooksInfo | None = None, corr: SpeckleCorrelation | None 
     if corr is not None:
         tags[f"{prefix}speckle_correlation_rows"] = f"{corr.rows[0]:.4f},{corr.rows[1]:.4f}"
         tags[f"{prefix}speckle_correlation_cols"] = f"{corr.cols[0]:.4f},{corr.cols[1]:.4f}"
-        tags[f"{prefix}speckle_correlation_source"] = corr.source
+        tags[f"{prefix}speckle_correlation_source"] = corr.source if corr.reliable else f"{corr.source}, not trusted"
     return tags

@@ -147,3 +147,23 @@ output: {{dir: {tmp_path / 'run'}}}
     (tmp_path / "bad.yaml").write_text(bad.replace(str(tmp_path / "run"), str(tmp_path / "run2")))
     with pytest.raises(ConfigError, match="model.init"):
         train(load_config(tmp_path / "bad.yaml"))
+
+
+def test_blind_mode_when_the_correlation_is_not_trusted(model):
+    from despeck.looks import SpeckleCorrelation
+    from despeck.inference import condition_for_model
+    from despeck.looks import LooksInfo
+
+    model.correlation_unknown = True
+    sensor = SpeckleCorrelation((0.55, 0.08), (0.52, 0.06), "measured")      # Hamming, oversampling 1.25 (theory 0.55, 0.08)
+    texture = SpeckleCorrelation((0.30, 0.27), (0.10, 0.05), "measured")     # slowly decaying: texture, not a system response
+    white = SpeckleCorrelation((0.01, 0.0), (0.02, 0.01), "measured")
+    assert sensor.reliable and white.reliable and not texture.reliable
+    info = LooksInfo(4.0, "estimate")
+    assert condition_for_model(model, info, sensor)[1] == sensor.lag1
+    assert condition_for_model(model, info, texture)[1] is None
+    c = model.condition(1, 4.0, None)
+    assert c[0, 1].item() == -1.0 and c[0, 2].item() == -1.0  # the planes say "not known"
+    model.log_bias_table = {"looks": [1.0, 16.0], "corr": [-1.0, 0.0, 0.5], "values": [[0.3, 0.1, 0.2], [0.3, 0.1, 0.2]]}
+    assert model.bias_for(4.0, None) == pytest.approx(0.3)
+    assert model.bias_for(4.0, (0.25, 0.25)) == pytest.approx(0.15)

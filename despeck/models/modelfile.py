@@ -118,6 +118,7 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
         normalisation["log_bias_table"] = despeckler.log_bias_table
     else:
         normalisation.pop("log_bias_table", None)
+    normalisation["correlation_unknown"] = bool(despeckler.correlation_unknown)
     header = {
         "format": FORMAT_NAME,
         "format_version": FORMAT_VERSION,
@@ -317,6 +318,7 @@ def load_model_file(path) -> Despeckler:
             log_scale=norm.get("log_scale"),
             point_false_alarm=norm.get("point_false_alarm"),
             log_bias_table=norm.get("log_bias_table"),
+            correlation_unknown=bool(norm.get("correlation_unknown", False)),
         )
     except DespeckError as exc:
         raise ModelFileError(f"{path} describes a model this despeck cannot build: {exc}") from None

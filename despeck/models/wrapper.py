@@ -50,7 +50,7 @@ from torch import nn
 from ..errors import InputError
 from ..speckle import check_looks
 
-__all__ = ["Despeckler", "DEFAULT_LOG_SCALE", "CONDITION_CHANNELS"]
+__all__ = ["Despeckler", "DEFAULT_LOG_SCALE", "CONDITION_CHANNELS", "UNKNOWN_CORRELATION"]
 
 # Two nepers (~8.7 dB) per unit: 1-look speckle has a log standard deviation of
 # pi / sqrt(6) ~ 1.28 and scene contrast is a few nepers, so normalised values stay
@@ -80,6 +80,8 @@ def _looks_value(looks):
 #: deviation ``sqrt(psi_1(L)) / log_scale`` and the lag-1 intensity correlation of the
 #: speckle down rows and along columns.
 CONDITION_CHANNELS = 3
+#: Value of the correlation planes when the scene's correlation is not known reliably.
+UNKNOWN_CORRELATION = -1.0
 
 
 def _check_bias_table(table):
@@ -140,7 +142,7 @@ class Despeckler(nn.Module):
 
     def __init__(self, network: nn.Module, *, looks, log_bias: float = 0.0,
                  log_scale: float = DEFAULT_LOG_SCALE, metadata=None, point_false_alarm=None,
-                 log_bias_table=None):
+                 log_bias_table=None, correlation_unknown: bool = False):
         super().__init__()
         rf = getattr(network, "receptive_field", None)
         if isinstance(rf, bool) or not isinstance(rf, int) or rf < 1 or rf % 2 == 0:
@@ -161,6 +163,10 @@ class Despeckler(nn.Module):
             raise InputError(f"network takes {self.condition_channels} conditioning planes; "
                              f"this despeck supplies 0 or {CONDITION_CHANNELS}")
         self.log_bias_table = _check_bias_table(log_bias_table)
+        #: True when the network was also trained without being told the correlation
+        #: (planes at UNKNOWN_CORRELATION); it then runs blind when the scene's
+        #: correlation is not known reliably.
+        self.correlation_unknown = bool(correlation_unknown)
         self.point_false_alarm = None
         if point_false_alarm is not None:
             p = float(point_false_alarm)
@@ -201,34 +207,47 @@ class Despeckler(nn.Module):
         if t is None:
             return self.log_bias
         L = float(looks) if looks is not None else self.looks_range[0]
-        rho = 0.0 if correlation is None else float(np.mean(np.asarray(correlation, dtype=np.float64)[:2]))
+        if correlation is None:
+            rho = UNKNOWN_CORRELATION if self.correlation_unknown else 0.0
+        else:
+            rho = float(np.mean(np.asarray(correlation, dtype=np.float64)[:2]))
         gl = np.log(np.asarray(t["looks"], dtype=np.float64))
         gc = np.asarray(t["corr"], dtype=np.float64)
         v = np.asarray(t["values"], dtype=np.float64)
         x = float(np.clip(math.log(max(L, 1e-6)), gl[0], gl[-1]))
-        y = float(np.clip(rho, gc[0], gc[-1]))
         along_looks = np.array([np.interp(x, gl, v[:, j]) for j in range(v.shape[1])])
-        return float(np.interp(y, gc, along_looks)) if gc.size > 1 else float(along_looks[0])
+        known = gc >= 0
+        if rho < 0 and not known[0]:
+            return float(along_looks[0])  # the calibration of the blind (unknown correlation) mode
+        gk, ak = gc[known], along_looks[known]
+        y = float(np.clip(rho, gk[0], gk[-1]))
+        return float(np.interp(y, gk, ak)) if gk.size > 1 else float(ak[0])
 
     def condition(self, n: int, looks=None, correlation=None, *, device=None) -> torch.Tensor:
         """Conditioning values ``(n, 3)``: log-speckle std of ``looks`` (normalised) and lag-1 correlation.
 
         ``looks`` is a number or one per sample (default: the model's lowest looks);
         ``correlation`` a ``(rows, cols)`` pair of lag-1 intensity correlation
-        coefficients or one pair per sample (default: white speckle, 0).
+        coefficients or one pair per sample (default: not known, ``UNKNOWN_CORRELATION``,
+        for models trained to run blind, else white speckle, 0).
         """
         L = torch.as_tensor(self.looks_range[0] if looks is None else looks, dtype=torch.float64)
         L = L.reshape(-1).expand(n) if L.numel() == 1 else L.reshape(-1)
         if L.shape[0] != n or not bool(torch.all(L > 0)):
             raise InputError(f"looks must be positive, one value or one per sample ({n})")
-        rho = torch.zeros(n, 2, dtype=torch.float64) if correlation is None else torch.as_tensor(
-            correlation, dtype=torch.float64).reshape(-1, 2)
+        if correlation is None:
+            fill = UNKNOWN_CORRELATION if self.correlation_unknown else 0.0
+            rho = torch.full((n, 2), fill, dtype=torch.float64)
+        else:
+            rho = torch.as_tensor(correlation, dtype=torch.float64).reshape(-1, 2)
         if rho.shape[0] == 1:
             rho = rho.expand(n, 2)
         if rho.shape[0] != n:
             raise InputError(f"correlation must be a (rows, cols) pair or one pair per sample ({n})")
         std = torch.sqrt(torch.special.polygamma(1, L)) / self.log_scale
-        return torch.cat([std[:, None], rho.clamp(0.0, 1.0)], dim=1).to(torch.float32).to(device)
+        # Negative values mean "not known" (UNKNOWN_CORRELATION); known ones lie in [0, 1].
+        rho = torch.where(rho < 0, torch.full_like(rho, UNKNOWN_CORRELATION), rho.clamp(0.0, 1.0))
+        return torch.cat([std[:, None], rho], dim=1).to(torch.float32).to(device)
 
     @property
     def receptive_field(self) -> int:

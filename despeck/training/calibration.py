@@ -24,6 +24,7 @@ import numpy as np
 import torch
 from scipy import optimize
 
+from ..models.wrapper import UNKNOWN_CORRELATION
 from ..speckle import gamma_speckle, intensity_correlation_theory, log_intensity_mean, simulate_correlated_intensity
 
 __all__ = ["system_for_correlation", "calibrate_log_bias_table", "DEFAULT_CORR_GRID"]
@@ -74,6 +75,10 @@ def calibrate_log_bias_table(despeckler, *, looks_range, corr_grid=DEFAULT_CORR_
     lo, hi = float(looks_range[0]), float(looks_range[1])
     looks_grid = _looks_grid(lo, hi)
     corr_grid = [float(c) for c in corr_grid]
+    if getattr(despeckler, "correlation_unknown", False) and corr_grid[0] >= 0:
+        # The blind mode (correlation not told) is calibrated on a mix of white and
+        # correlated (lag-1 0.5) speckle, half the patches each.
+        corr_grid = [UNKNOWN_CORRELATION] + corr_grid
     rng = np.random.default_rng([int(seed), 77])
     margin = max(despeckler.receptive_field // 2, 8)
     saved_bias, saved_table = despeckler.log_bias, despeckler.log_bias_table
@@ -87,7 +92,14 @@ def calibrate_log_bias_table(despeckler, *, looks_range, corr_grid=DEFAULT_CORR_
                 row = []
                 for rho in corr_grid:
                     clean = np.ones((side, side), dtype=np.float32)
-                    if rho > 0:
+                    if rho < 0:
+                        os_, taper = system_for_correlation(0.5)
+                        half = patches // 2
+                        noisy = np.concatenate([
+                            gamma_speckle((patches - half, side, side), L, rng=rng),
+                            np.stack([simulate_correlated_intensity(clean, L, rng=rng, oversampling=os_, taper=taper)
+                                      for _ in range(half)]) if half else np.zeros((0, side, side), np.float32)])
+                    elif rho > 0:
                         os_, taper = system_for_correlation(rho)
                         noisy = np.stack([simulate_correlated_intensity(clean, L, rng=rng, oversampling=os_, taper=taper)
                                           for _ in range(patches)])

@@ -177,6 +177,10 @@ class SpeckleConfig:
     #: conditioned networks: noise added to the looks (relative, log scale) and to the
     #: correlation they are told, so they tolerate the estimation error of real scenes
     condition_jitter: float = 0.03
+    #: conditioned networks: share of patches whose correlation is withheld (told
+    #: "unknown"), so the model can run blind where a scene's correlation cannot be
+    #: measured reliably
+    condition_dropout: float = 0.0
     #: validation patches drawn with the training mixture of looks and correlation
     #: (default: white speckle at val_looks)
     val_mixture: bool = False
@@ -479,6 +483,8 @@ def check_config(config: TrainConfig) -> None:
         _fail("speckle.correlated_fraction", f"must be in [0, 1], got {s.correlated_fraction}")
     if s.looks_distribution not in ("uniform", "log-uniform"):
         _fail("speckle.looks_distribution", f"must be uniform or log-uniform, got {s.looks_distribution!r}")
+    if not 0 <= s.condition_dropout <= 1:
+        _fail("speckle.condition_dropout", f"must be in [0, 1], got {s.condition_dropout}")
     if not 0 <= s.condition_jitter <= 0.5:
         _fail("speckle.condition_jitter", f"must be in [0, 0.5], got {s.condition_jitter}")
     if s.correlated_fraction > 0:

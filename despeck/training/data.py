@@ -193,12 +193,20 @@ def draw_speckle(s, rng) -> SpeckleDraw:
     return SpeckleDraw(max(L, 1.0), True, (os_r, os_c), taper)
 
 
-def told_condition(draw: SpeckleDraw, jitter: float, rng):
-    """The (looks, (rho_rows, rho_cols)) a conditioned network is told for ``draw``, with estimation-like noise."""
+def told_condition(draw: SpeckleDraw, jitter: float, rng, dropout: float = 0.0):
+    """The (looks, (rho_rows, rho_cols)) a conditioned network is told for ``draw``.
+
+    With estimation-like noise ``jitter``; with probability ``dropout`` the correlation
+    is withheld (``UNKNOWN_CORRELATION``), so the network learns to run blind too.
+    """
+    from ..models.wrapper import UNKNOWN_CORRELATION
+
     L = draw.looks * math.exp(jitter * float(rng.standard_normal())) if jitter else draw.looks
     rho = draw.correlation()
     if jitter:
         rho = tuple(min(max(r + jitter * float(rng.standard_normal()), 0.0), 1.0) for r in rho)
+    if dropout and rng.random() < dropout:
+        rho = (UNKNOWN_CORRELATION, UNKNOWN_CORRELATION)
     return float(L), tuple(float(r) for r in rho)
 
 
@@ -284,7 +292,7 @@ class PatchDataset(EpochPatches):
         noisy = draw.apply(clean, rng)
         target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
         offset = ref.log_mean + log_speckle_mean(looks) + c.data.offset_jitter * float(rng.standard_normal())
-        told = told_condition(draw, c.speckle.condition_jitter, rng)
+        told = told_condition(draw, c.speckle.condition_jitter, rng, c.speckle.condition_dropout)
         return _as_item(noisy, clean, target, valid, looks, offset, told)
 
 
@@ -336,8 +344,14 @@ class ValidationSet(Dataset):
             noisy = draw.apply(clean, rng)
             target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
             offset = ref.log_mean + log_speckle_mean(draw.looks)
-            # Validation tells the network the exact condition (no jitter).
-            items.append(_as_item(noisy, clean, target, valid, draw.looks, offset, (draw.looks, draw.correlation())))
+            # Validation tells the network the exact condition (no jitter); with dropout,
+            # every other patch withholds the correlation as inference may have to.
+            told = (draw.looks, draw.correlation())
+            if c.speckle.condition_dropout and len(items) % 2:
+                from ..models.wrapper import UNKNOWN_CORRELATION
+
+                told = (draw.looks, (UNKNOWN_CORRELATION, UNKNOWN_CORRELATION))
+            items.append(_as_item(noisy, clean, target, valid, draw.looks, offset, told))
         self.items = items
         clean_db = np.concatenate([10 * np.log10(it["clean"][it["valid"]].numpy()) for it in items])
         # One fixed peak for every epoch: the validation references' dB dynamic range.

@@ -677,6 +677,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         from .calibration import calibrate_log_bias_table
 
         model.log_bias = 0.0
+        model.correlation_unknown = config.speckle.condition_dropout > 0
         model.log_bias_table = calibrate_log_bias_table(model, looks_range=model.looks_range,
                                                         seed=config.trainer.seed)
     stopped_by = ("time budget" if budget is not None and budget.stopped
