@@ -347,13 +347,13 @@ def trained_model(model_path, seconds, threads):
 def bench_bf16(size, repeats, threads, model_path, train_seconds):
     from skimage.metrics import peak_signal_noise_ratio
 
-    from despeck import inference, speckle, synthetic
+    from despeck import cpu, inference, speckle, synthetic
 
     model, described = trained_model(model_path, train_seconds, threads)
     rng = np.random.default_rng(7)
     clean = synthetic.make_scene((size, size), rng=rng)
     noisy = speckle.simulate_intensity(clean, 1, rng=rng)
-    supported = inference.bf16_supported()
+    supported = cpu.bf16_supported()
     ref_db = 10 * np.log10(clean)
     data_range = float(ref_db.max() - ref_db.min())
     result = {"scene": f"{size}x{size}", "model": described, "bf16_supported": supported,
@@ -401,7 +401,7 @@ def main(argv=None):
     mem_sizes = (1024, 4096) if args.quick else (4096, 16384)
     bf16_size = 512 if args.quick else 2048
 
-    from despeck.inference import bf16_supported
+    from despeck.cpu import bf16_supported
 
     OUT_DIR.mkdir(exist_ok=True)
     report = {

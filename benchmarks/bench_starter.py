@@ -64,7 +64,6 @@ import json
 import math
 import os
 import pathlib
-import platform
 import sys
 import time
 
@@ -75,6 +74,7 @@ ROOT = pathlib.Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "scripts"))
 
 from despeck import bm3d_log, filters, metrics  # noqa: E402
+from despeck.cpu import cpu_description  # noqa: E402
 from despeck.inference import despeckle_array  # noqa: E402
 from despeck.models import load_model_file  # noqa: E402
 from despeck.speckle import psf_intensity_kernel, simulate_correlated_intensity, simulate_intensity  # noqa: E402
@@ -215,23 +215,8 @@ def verdict(model, best):
 # --------------------------------------------------------------------------- machine
 
 def cpu_info():
-    info = {"machine": platform.machine(), "model": None, "flags": {}}
-    try:
-        text = pathlib.Path("/proc/cpuinfo").read_text()
-    except OSError:
-        return info
-    flags = set()
-    for line in text.splitlines():
-        key, _, value = line.partition(":")
-        if key.strip() == "model name" and info["model"] is None:
-            info["model"] = value.strip()
-        if key.strip() == "flags" and not flags:
-            flags = set(value.split())
-    info["flags"] = {f: f in flags for f in ("avx2", "avx512f", "avx512_bf16", "amx_tile", "amx_bf16", "amx_int8")}
-    try:
-        info["cores_available"] = len(os.sched_getaffinity(0))
-    except AttributeError:
-        info["cores_available"] = os.cpu_count()
+    """The CPU (:func:`despeck.cpu.cpu_description`) and the load average at this moment."""
+    info = cpu_description()
     try:  # other work on the machine slows every timing here
         info["load_average"] = [round(v, 2) for v in os.getloadavg()]
     except OSError:

@@ -44,9 +44,10 @@ import time
 import numpy as np
 import torch
 
+from despeck.cpu import bf16_supported, usable_cores
 from despeck.models import Despeckler, create_model
 from despeck.training.losses import DespeckleLoss
-from despeck.training.trainer import bf16_supported, configure_cpu, usable_cores
+from despeck.training.trainer import configure_cpu
 
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 ARCHITECTURES = ["logcnn-s", "logcnn-m", "unet-s", "unet-m"]

@@ -28,7 +28,6 @@ from __future__ import annotations
 
 import inspect
 import math
-import os
 import pathlib
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -39,6 +38,7 @@ from scipy import ndimage, optimize, special
 
 from .bm3d_log import DEFAULT_SEARCH_WINDOW, bm3d_log
 from .bm3d_log import require as require_bm3d
+from .cpu import usable_cores
 from .errors import InputError
 from .speckle import check_looks
 
@@ -115,10 +115,7 @@ def _check_positive(value, name: str) -> float:
 
 def _check_workers(workers) -> int:
     if workers is None:
-        try:
-            return max(1, len(os.sched_getaffinity(0)))
-        except AttributeError:  # pragma: no cover - not Linux
-            return max(1, os.cpu_count() or 1)
+        return usable_cores()
     try:
         w = int(workers)
     except (TypeError, ValueError):

@@ -39,6 +39,7 @@ import numpy as np
 import torch
 from tqdm.auto import tqdm
 
+from .cpu import bf16_supported, usable_cores  # bf16_supported re-exported: callers know it here
 from .errors import InputError
 from .tiling import TileGrid, default_tiling
 
@@ -203,38 +204,6 @@ def max_overlap(model) -> int:
     rf = _check_model(model)
     _, d_overlap = default_tiling(rf, _size_multiple(model))
     return int(max(4 * d_overlap, 256))
-
-
-def bf16_supported() -> bool:
-    """Whether this CPU has native bfloat16 arithmetic (AVX512-BF16 or AMX-BF16).
-
-    Reads the CPU flags (``/proc/cpuinfo`` on Linux) and asks oneDNN as well; without
-    native instructions bf16 is emulated and slower than float32.
-    """
-    flags = set()
-    try:
-        with open("/proc/cpuinfo", encoding="ascii", errors="ignore") as fh:
-            for line in fh:
-                if line.startswith("flags"):
-                    flags.update(line.split(":", 1)[1].split())
-                    break
-    except OSError:
-        pass
-    native = bool(flags & {"avx512_bf16", "amx_bf16"})
-    if not flags:
-        # No cpuinfo (not Linux): trust oneDNN's own check.
-        try:
-            native = bool(torch.ops.mkldnn._is_mkldnn_bf16_supported())
-        except Exception:  # noqa: BLE001 - private API may vanish
-            native = False
-    return native
-
-
-def _default_threads() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # pragma: no cover - not Linux
-        return os.cpu_count() or 1
 
 
 def _scene_offset(model, sample):
@@ -420,7 +389,7 @@ def _make_bar(total_pixels, desc, progress):
 
 
 def _settings(model, threads, bf16, batch_size, grid):
-    threads = _positive_int("threads", threads) or _default_threads()
+    threads = _positive_int("threads", threads) or usable_cores()
     use_bf16 = bool(bf16)
     if use_bf16 and not bf16_supported():
         warnings.warn(
@@ -753,7 +722,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
     _check_model(model)
     check_output_path(out_path, [in_path], overwrite=overwrite)
     # despeck.raster caps GDAL's block cache, so written blocks do not pile up in memory.
-    with _gdal_threads(_positive_int("threads", threads) or _default_threads()), \
+    with _gdal_threads(_positive_int("threads", threads) or usable_cores()), \
             open_scene(in_path, units=units) as reader:
         for note in model_mismatch_notes(model, reader):
             warnings.warn(note, InferenceWarning, stacklevel=2)

@@ -47,6 +47,7 @@ import lightning.pytorch as pl
 import torch
 
 from ..atomic import publish, sibling_temp, write_problem
+from ..cpu import bf16_supported, usable_cores  # re-exported: callers and tests know them here
 from ..errors import ConfigError, DespeckError, InputError, ModelFileError
 from .config import TrainConfig, config_to_dict, dump_config, parse_duration
 
@@ -95,27 +96,6 @@ class TrainResult:
     epochs: int = 0
     steps: int = 0
     stopped_by: str = ""
-
-
-def usable_cores() -> int:
-    """CPU cores this process may run on (affinity-aware where the OS tells)."""
-    try:
-        return max(1, len(os.sched_getaffinity(0)))
-    except AttributeError:  # pragma: no cover - not Linux
-        return max(1, os.cpu_count() or 1)
-
-
-def bf16_supported() -> bool:
-    """Whether the CPU has native bfloat16 arithmetic (AVX512-BF16 or AMX-BF16 on x86, BF16 on Arm)."""
-    try:
-        text = Path("/proc/cpuinfo").read_text()
-    except OSError:
-        return False
-    flags = set()
-    for line in text.splitlines():
-        if line.startswith(("flags", "Features")):
-            flags.update(line.split(":", 1)[1].split())
-    return bool(flags & {"avx512_bf16", "amx_bf16", "bf16"})
 
 
 def configure_cpu(threads=None) -> int:
