@@ -27,11 +27,10 @@ from pathlib import Path
 
 import numpy as np
 import torch
-from scipy import special
 from torch.utils.data import DataLoader, Dataset, Sampler
 
 from ..errors import ConfigError, DespeckError, RasterError
-from ..speckle import gamma_speckle, intensity_correlation_theory, simulate_correlated_intensity
+from ..speckle import gamma_speckle, intensity_correlation_theory, log_intensity_mean, simulate_correlated_intensity
 from .config import TrainConfig
 from .losses import psnr_db
 
@@ -210,11 +209,6 @@ def told_condition(draw: SpeckleDraw, jitter: float, rng, dropout: float = 0.0):
     return float(L), tuple(float(r) for r in rho)
 
 
-def log_speckle_mean(looks) -> float:
-    """``psi(L) - ln L``, the mean log of unit-mean L-look speckle (docs/methods.md, section Speckle statistics)."""
-    return float(special.digamma(looks) - math.log(looks))
-
-
 class EpochSampler(Sampler):
     """Yields ``(epoch, index)`` keys; Lightning calls :meth:`set_epoch` before each epoch."""
 
@@ -291,7 +285,7 @@ class PatchDataset(EpochPatches):
         looks = draw.looks
         noisy = draw.apply(clean, rng)
         target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
-        offset = ref.log_mean + log_speckle_mean(looks) + c.data.offset_jitter * float(rng.standard_normal())
+        offset = ref.log_mean + log_intensity_mean(looks) + c.data.offset_jitter * float(rng.standard_normal())
         told = told_condition(draw, c.speckle.condition_jitter, rng, c.speckle.condition_dropout)
         return _as_item(noisy, clean, target, valid, looks, offset, told)
 
@@ -343,7 +337,7 @@ class ValidationSet(Dataset):
             draw = draw_speckle(c.speckle, rng) if c.speckle.val_mixture else SpeckleDraw(looks)
             noisy = draw.apply(clean, rng)
             target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
-            offset = ref.log_mean + log_speckle_mean(draw.looks)
+            offset = ref.log_mean + log_intensity_mean(draw.looks)
             # Validation tells the network the exact condition (no jitter); with dropout,
             # every other patch withholds the correlation as inference may have to.
             told = (draw.looks, draw.correlation())
@@ -365,7 +359,7 @@ class ValidationSet(Dataset):
         self.homogeneous = {
             "noisy": torch.from_numpy(noisy),
             "valid": torch.ones(4, 1, side, side, dtype=torch.bool),
-            "log_offset": torch.full((4,), level + log_speckle_mean(looks), dtype=torch.float32),
+            "log_offset": torch.full((4,), level + log_intensity_mean(looks), dtype=torch.float32),
             "reflectivity": reflectivity,
         }
         self.noisy_psnr_db = float(np.mean([
