@@ -1226,14 +1226,16 @@ def _check_options(name, options):
 # --------------------------------------------------------------------------- files
 
 def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=None, out_units=None,
-                  overwrite=False, progress=True, workers=None, band=None, **options):
+                  overwrite=False, progress=True, workers=None, band=None, cog=False, **options):
     """Filter the SAR bands of a raster file strip by strip and write a GeoTIFF like the input.
 
     Strips of full rows are read with a halo of the method's reach, filtered and
     written; the result is bit-identical to filtering the whole scene in memory
     (with the same scene-level values). Invalid input pixels are nodata in the output.
     Every SAR band is filtered (each with its own looks estimate and scene-level
-    values) into an output with as many bands, unless ``band`` picks one.
+    values) into an output with as many bands, unless ``band`` picks one. The output
+    records what made it (:mod:`despeck.provenance`: method, window and options, despeck
+    version, date) and the input's looks (``input_looks``).
 
     Parameters
     ----------
@@ -1260,6 +1262,8 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
         Threads used on each strip batch.
     band : int, optional
         Filter only this SAR band (from 1) into a one-band output; default every band.
+    cog : bool
+        Write a Cloud-Optimised GeoTIFF with overviews (:func:`despeck.raster.open_output`).
     **options
         Method-specific options (see :func:`filter_options`).
 
@@ -1275,6 +1279,7 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
     from tqdm.auto import tqdm
 
     from . import raster
+    from .provenance import provenance_tags
 
     name = str(method).strip().lower()
     get_filter(name)
@@ -1297,7 +1302,8 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
             require_bm3d()  # its optional package, before any progress bar or file
         bar = tqdm(total=h * len(bands), unit="row", desc=f"{name} {in_path.name}", disable=not progress, leave=False)
         with raster.open_output(out_path, like=reader, units=out_units, band_count=len(bands),
-                                overwrite=overwrite) as writer:
+                                overwrite=overwrite, cog=cog) as writer:
+            writer.update_tags(**provenance_tags(name, options={"window": window, **options}))
             for k, (entry, plan) in enumerate(zip(done, plans), start=1):
                 description = reader.descriptions[entry["band"] - 1] if entry["band"] <= len(reader.descriptions) else None
                 if description or entry["band"] != k:  # output band k is input band entry["band"]

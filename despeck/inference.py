@@ -666,12 +666,14 @@ class _BlockWriter:
 
 def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, overwrite=False, tile=None,
                    overlap=None, batch_size=None, threads=None, bf16=False, channels_last=None,
-                   progress=True, looks=None) -> pathlib.Path:
+                   progress=True, looks=None, cog=False) -> pathlib.Path:
     """Despeckle a raster file band by band and write a GeoTIFF.
 
     The output keeps the input's size, CRS, transform, nodata, band descriptions and
     tags and is written to a temporary file in the destination folder, renamed only
-    when complete: an interrupted run leaves nothing at ``out_path``.
+    when complete: an interrupted run leaves nothing at ``out_path``. It also records
+    what made it (:mod:`despeck.provenance`): the despeck version, the model file's
+    name and SHA-256, the tiling used and the date.
 
     Parameters
     ----------
@@ -696,6 +698,8 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
         estimated (:func:`despeck.looks.describe_speckle`). The speckle correlation is
         taken from the file's tags or measured. Both are recorded in the output's tags
         (``input_looks``, ``input_speckle_correlation_rows``/``_cols`` and their sources).
+    cog : bool
+        Write a Cloud-Optimised GeoTIFF with overviews (:func:`despeck.raster.open_output`).
 
     Returns
     -------
@@ -717,6 +721,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
     from rasterio.windows import Window
 
     from .looks import describe_speckle, speckle_tags
+    from .provenance import model_provenance, provenance_tags, tiling_text
     from .raster import check_output_path, open_output, open_scene
 
     _check_model(model)
@@ -732,12 +737,14 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
         was_training = model.training
         model.eval()
         try:
-            with open_output(out_path, reader, units=out_units, overwrite=overwrite) as writer:
+            with open_output(out_path, reader, units=out_units, overwrite=overwrite, cog=cog) as writer:
                 block = writer.block_windows()[0]
                 block_shape = (int(block.height), int(block.width))
                 with warnings.catch_warnings():
                     warnings.simplefilter("ignore", InferenceWarning)  # already shown above
                     grid = resolve_tiling(shape, model, tile=tile, overlap=overlap, row_stride=block_shape[0])
+                method, model_sha = model_provenance(model)
+                writer.update_tags(**provenance_tags(method, model_sha256=model_sha, tiling=tiling_text(grid)))
                 threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
                 # Read in chunks of about 64 rows: GDAL's cache keeps the rest of a taller
                 # block row, and the input buffer stays one tile plus one chunk high.

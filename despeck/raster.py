@@ -32,6 +32,7 @@ from rasterio.windows import Window
 
 from .atomic import OutputBusyError, claim_output, folder_is_full, publish, sibling_temp, write_problem
 from .errors import InputError, RasterError
+from .provenance import without_provenance
 
 __all__ = [
     "UNITS",
@@ -1136,8 +1137,9 @@ class SceneWriter:
     width, height, band_count : int
     """
 
-    def __init__(self, path, like, *, units=None, band_count=None, overwrite=False, dtype="float32"):
+    def __init__(self, path, like, *, units=None, band_count=None, overwrite=False, dtype="float32", cog=False):
         limit_gdal_cache()
+        self.cog = bool(cog)
         like_path = getattr(like, "path", None)
         self.path = check_output_path(path, [like_path] if like_path else [], overwrite=overwrite)
         if units is None:
@@ -1198,8 +1200,9 @@ class SceneWriter:
                     self._ds.set_band_description(b, descriptions[b - 1])
                 self._ds.set_band_unit(b, _UNIT_LABELS[self.units])
             # Tags that describe the speckle of the source pixels no longer hold for new
-            # pixels (a filtered scene is not L-look speckle); writers record their own.
-            tags = {k: v for k, v in dict(getattr(like, "tags", {}) or {}).items()
+            # pixels (a filtered scene is not L-look speckle), nor does the source's record
+            # of what made it (despeck.provenance); writers record their own.
+            tags = {k: v for k, v in without_provenance(getattr(like, "tags", {})).items()
                     if str(k).strip().lower() not in SPECKLE_TAGS}
             if tags:
                 self._ds.update_tags(**tags)
@@ -1284,29 +1287,72 @@ class SceneWriter:
             if commit:
                 try:
                     self._verify()
-                    publish(self._tmp, self.path)
+                    if self.cog:
+                        self._publish_cog()
+                    else:
+                        publish(self._tmp, self.path)
                 except (RasterioError, OSError) as exc:
                     if isinstance(exc, RasterError):
                         raise
                     raise _write_error(self.path, exc, partial=self._tmp) from None
                 published = True
         finally:
-            if not published:
+            if not published or self.cog:
                 self._tmp.unlink(missing_ok=True)
             self._claim.release()
 
-    def _verify(self):
-        """Check the closed temporary file: size, data type, every block present and decodable.
+    def _publish_cog(self):
+        """Translate the verified tiled file into a Cloud-Optimised GeoTIFF, verify it, rename it.
+
+        GDAL's COG driver (``rasterio.shutil.copy(..., driver="COG")``) builds the
+        overviews itself (``OVERVIEWS=IGNORE_EXISTING``: halving until the image fits in
+        one 512-pixel tile) by averaging the valid pixels (``OVERVIEW_RESAMPLING=AVERAGE``,
+        nodata excluded; in linear units this is a multilook) and lays the file out with
+        every directory before the pixel data. The copy is made into a second temporary
+        file beside the destination; it must report ``LAYOUT=COG`` and pass the same
+        block-by-block check as the tiled file before it is renamed into place.
+        """
+        import rasterio.shutil
+
+        cog_tmp = None
+        try:
+            cog_tmp = sibling_temp(self.path)
+            options = dict(
+                COMPRESS="DEFLATE", PREDICTOR="FLOATING_POINT", OVERVIEW_COMPRESS="DEFLATE",
+                OVERVIEW_PREDICTOR="FLOATING_POINT", BLOCKSIZE=str(OUTPUT_TILE), BIGTIFF="IF_SAFER",
+                OVERVIEWS="IGNORE_EXISTING", OVERVIEW_RESAMPLING="AVERAGE",
+            )
+            with _decode_threads():
+                rasterio.shutil.copy(str(self._tmp), str(cog_tmp), driver="COG", **options)
+            with rasterio.open(cog_tmp) as ds:
+                layout = (ds.tags(ns="IMAGE_STRUCTURE") or {}).get("LAYOUT", "")
+            if layout.upper() != "COG":
+                raise _write_error(self.path, partial=cog_tmp,
+                                   what=f"GDAL's COG driver wrote a file without the COG layout ({layout or 'none'})")
+            self._verify(cog_tmp)
+            publish(cog_tmp, self.path)
+            cog_tmp = None
+        except (RasterioError, OSError) as exc:
+            if isinstance(exc, RasterError):
+                raise
+            raise _write_error(self.path, exc, partial=cog_tmp, what="cannot write the Cloud-Optimised GeoTIFF") from None
+        finally:
+            if cog_tmp is not None:
+                cog_tmp.unlink(missing_ok=True)
+
+    def _verify(self, tmp=None):
+        """Check a closed temporary file: size, data type, every block present and decodable.
 
         Each block's byte range (from the TIFF tile offsets and sizes) must lie inside
         the file, and every block row is read and decoded by GDAL (in full-width strips,
-        so memory stays at one row of blocks).
+        so memory stays at one row of blocks). ``tmp`` defaults to the tiled temporary file.
         """
-        size = os.path.getsize(self._tmp)
-        with _decode_threads(), rasterio.open(self._tmp) as ds:
+        tmp = self._tmp if tmp is None else tmp
+        size = os.path.getsize(tmp)
+        with _decode_threads(), rasterio.open(tmp) as ds:
             if (ds.width, ds.height, ds.count) != (self.width, self.height, self.band_count) or \
                     ds.dtypes[0] != self.dtype:
-                raise _write_error(self.path, partial=self._tmp, what="the written file has the wrong size or type")
+                raise _write_error(self.path, partial=tmp, what="the written file has the wrong size or type")
             bh, bw = (int(v) for v in ds.block_shapes[0])
             buf = np.empty((bh, self.width), dtype=self.dtype)
             for b in range(1, self.band_count + 1):
@@ -1316,7 +1362,7 @@ class SceneWriter:
                         nbytes = ds.get_tag_item(f"BLOCK_SIZE_{j}_{i}", "TIFF", bidx=b)
                         if not offset or not nbytes or int(offset) + int(nbytes) > size:
                             raise _write_error(
-                                self.path, partial=self._tmp,
+                                self.path, partial=tmp,
                                 what=f"the written file is incomplete (block {i},{j} of band {b} is missing or cut off)",
                             )
                     r0 = i * bh
@@ -1325,7 +1371,7 @@ class SceneWriter:
                         ds.read(b, window=Window(0, r0, self.width, n), out=buf[:n])
                     except (RasterioError, OSError) as exc:
                         raise _write_error(
-                            self.path, exc, partial=self._tmp,
+                            self.path, exc, partial=tmp,
                             what=f"the written file does not read back (rows {r0}-{r0 + n - 1} of band {b})",
                         ) from None
 
@@ -1348,7 +1394,8 @@ class SceneWriter:
             pass
 
 
-def open_output(path, like, *, units=None, band_count=None, overwrite=False, dtype="float32") -> SceneWriter:
+def open_output(path, like, *, units=None, band_count=None, overwrite=False, dtype="float32",
+                cog=False) -> SceneWriter:
     """Create an output GeoTIFF georeferenced like ``like``; see :class:`SceneWriter`.
 
     Parameters
@@ -1364,6 +1411,9 @@ def open_output(path, like, *, units=None, band_count=None, overwrite=False, dty
     overwrite : bool
         Replace an existing output (never an input).
     dtype : {'float32', 'float64'}
+    cog : bool
+        Publish a Cloud-Optimised GeoTIFF with overviews, made from the finished tiled
+        file by GDAL's COG driver (see :meth:`SceneWriter._publish_cog`).
 
     Notes
     -----
@@ -1371,7 +1421,7 @@ def open_output(path, like, *, units=None, band_count=None, overwrite=False, dty
     BigTIFF when the file could exceed 4 GB. The source's nodata value is kept if no
     valid output value can equal it (e.g. 0 for linear units), else NaN is used.
     """
-    return SceneWriter(path, like, units=units, band_count=band_count, overwrite=overwrite, dtype=dtype)
+    return SceneWriter(path, like, units=units, band_count=band_count, overwrite=overwrite, dtype=dtype, cog=cog)
 
 
 # --------------------------------------------------------------------------- whole arrays
@@ -1468,7 +1518,7 @@ def read_with_halo(reader: SceneReader, window, halo: int, band=1):
 
 
 def process_file(in_path, out_path, func, *, halo=0, units=None, out_units=None, overwrite=False,
-                 progress=True, description="processing", tags=None) -> pathlib.Path:
+                 progress=True, description="processing", tags=None, cog=False) -> pathlib.Path:
     """Stream a scene through ``func`` tile by tile and write the result like the input.
 
     For each SAR band and each 512 x 512 tile of the output,
@@ -1495,6 +1545,8 @@ def process_file(in_path, out_path, func, *, halo=0, units=None, out_units=None,
         Label of the progress bar.
     tags : dict, optional
         Metadata tags to add to the output.
+    cog : bool
+        Write a Cloud-Optimised GeoTIFF with overviews (see :func:`open_output`).
     """
     from tqdm import tqdm
 
@@ -1502,7 +1554,7 @@ def process_file(in_path, out_path, func, *, halo=0, units=None, out_units=None,
     if halo < 0:
         raise InputError(f"halo must be >= 0, got {halo}")
     with open_scene(in_path, units=units) as reader:
-        with open_output(out_path, reader, units=out_units, overwrite=overwrite) as writer:
+        with open_output(out_path, reader, units=out_units, overwrite=overwrite, cog=cog) as writer:
             if tags:
                 writer.update_tags(**tags)
             windows = writer.block_windows()

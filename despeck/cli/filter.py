@@ -27,6 +27,8 @@ def add_arguments(parser):
                         help="units of the input (default: detected, else linear intensity)")
     parser.add_argument("--out-units", choices=("intensity", "amplitude", "db"),
                         help="units of the output (default: the input's; intensity for complex input)")
+    parser.add_argument("--cog", action="store_true",
+                        help="write a Cloud-Optimised GeoTIFF with overviews (GDAL's COG driver)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar or summary")
     parser.add_argument("--overwrite", action="store_true", help="replace an existing output (never the input)")
 
@@ -50,7 +52,7 @@ def run(args) -> int:
     info = filter_raster(
         args.method, args.input, args.output, looks=args.looks, window=args.window, units=args.units,
         out_units=args.out_units, overwrite=args.overwrite, progress=not args.quiet, band=args.band,
-        **parse_options(args.option),
+        cog=getattr(args, "cog", False), **parse_options(args.option),
     )
     if not args.quiet:
         for entry in info["bands"]:

@@ -33,6 +33,8 @@ def add_arguments(parser):
     parser.add_argument("--out-units", choices=raster.OUTPUT_UNITS, default=None,
                         help="units of the output (default: those of CLEAN)")
     parser.add_argument("--overwrite", action="store_true", help="replace OUT if it exists (never CLEAN)")
+    parser.add_argument("--cog", action="store_true",
+                        help="write a Cloud-Optimised GeoTIFF with overviews (GDAL's COG driver)")
     parser.add_argument("--quiet", "-q", action="store_true", help="no progress bar or summary")
 
 
@@ -69,6 +71,12 @@ def run(args) -> int:
     else:
         corr = SpeckleCorrelation((0.0, 0.0), (0.0, 0.0), "simulated", "white speckle")
     tags.update(speckle_tags(LooksInfo(float(args.looks), "simulated"), corr))
+    from ..provenance import provenance_tags
+
+    settings = {"speckle": kind, "looks": f"{args.looks:g}", "seed": seed}
+    if args.correlated:
+        settings.update(oversampling=f"{args.oversampling:g}", taper=args.taper)
+    tags.update(provenance_tags("simulate", options=settings))
     # SIGTERM becomes KeyboardInterrupt, so the writer removes its temporary file and claim.
     previous = signal.signal(signal.SIGTERM, _raise_on_term)
     try:
@@ -77,6 +85,7 @@ def run(args) -> int:
             path = raster.process_file(
                 args.clean, args.output, apply, halo=field.halo, units=args.units, out_units=args.out_units,
                 overwrite=args.overwrite, progress=not args.quiet, description="simulate", tags=tags,
+                cog=getattr(args, "cog", False),
             )
     finally:
         signal.signal(signal.SIGTERM, previous)

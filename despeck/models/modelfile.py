@@ -37,6 +37,7 @@ import torch
 
 from ..atomic import publish, sibling_temp, write_problem
 from ..errors import DespeckError, InputError, ModelFileError
+from ..provenance import file_sha256
 from .registry import create_model, list_models, weight_shapes
 from .wrapper import Despeckler
 
@@ -284,7 +285,9 @@ def load_model_file(path) -> Despeckler:
     """Load a model file written by :func:`save_model_file`; the result is in eval mode.
 
     Only tensors and a JSON header are read; the network is rebuilt from the registry
-    by name, so loading never executes code from the file.
+    by name, so loading never executes code from the file. The result carries the
+    file's name and SHA-256 as ``source_file`` and ``source_sha256`` (recorded in the
+    outputs it makes, :mod:`despeck.provenance`).
 
     Raises
     ------
@@ -343,5 +346,12 @@ def load_model_file(path) -> Despeckler:
     reserved = {"format", "format_version", "architecture", "looks", "normalisation"}
     despeckler.metadata = {k: v for k, v in header.items() if k not in reserved}
     despeckler.metadata["normalisation"] = norm
+    # What outputs record as their maker (despeck.provenance); not model metadata, so a
+    # model saved again does not carry the old file's name and hash.
+    despeckler.source_file = path.name
+    try:
+        despeckler.source_sha256 = file_sha256(path)
+    except OSError as exc:
+        raise ModelFileError(f"{path} cannot be read again to compute its SHA-256 ({exc.strerror or exc})") from None
     despeckler.eval()
     return despeckler
