@@ -37,6 +37,23 @@ def test_psnr_and_ssim_equal_scikit_image(rng):
     assert metrics.ssim(a, b, data_range=30) == pytest.approx(structural_similarity(a, b, data_range=30), abs=1e-10)
 
 
+def test_masked_psnr_and_ssim_equal_scikit_image_on_the_valid_part(rng):
+    # With an invalid strip of columns, the masked measures keep exactly the pixels and
+    # the 7 x 7 windows scikit-image's defaults keep on the valid sub-image (scikit-image,
+    # van der Walt et al. 2014, peak_signal_noise_ratio / structural_similarity).
+    a = rng.random((48, 57)) * 30 - 25
+    b = a + rng.normal(0, 2, a.shape)
+    valid = np.ones(a.shape, bool)
+    valid[:, :9] = False
+    a_bad, b_bad = a.copy(), b.copy()
+    a_bad[~valid], b_bad[~valid] = np.nan, 1e6  # whatever lies there must not count
+    sub_a, sub_b = a[:, 9:], b[:, 9:]
+    assert metrics.psnr(a_bad, b_bad, data_range=30, valid=valid) == pytest.approx(
+        peak_signal_noise_ratio(sub_a, sub_b, data_range=30), abs=1e-10)
+    assert metrics.ssim(a_bad, b_bad, data_range=30, valid=valid) == pytest.approx(
+        structural_similarity(sub_a, sub_b, data_range=30), abs=1e-10)
+
+
 def test_fidelity_in_db_and_amplitude_matches_scikit_image_with_stated_ranges(rng):
     clean, noisy, _ = speckled_parcels(rng, looks=4, shape=(64, 64))
     out = filters.boxcar(noisy, looks=4, window=5)

@@ -13,15 +13,18 @@ import rasterio
 import torch
 import yaml
 from affine import Affine
-from scipy import optimize, special, stats
+from scipy import ndimage, optimize, special, stats
+from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 
+from despeck import metrics
 from despeck.cli import main as cli_main
 from despeck.errors import ConfigError, ModelFileError, RasterError
-from despeck.models import load_model_file
+from despeck.models import create_model, load_model_file
 from despeck.synthetic import make_scene
 from despeck.training import apply_overrides, config_from_dict, dump_config, load_config, parse_duration, train
 from despeck.training.data import TrainingData
-from despeck.training.losses import DespeckleLoss, gamma_nll, log_mse
+from despeck.training.losses import DespeckleLoss, gamma_nll, log_mse, validation_fidelity
+from despeck.training.module import DespeckleModule
 from despeck.training.trainer import EpochTimeBudget, TrainingWarning
 
 torch.set_num_threads(2)
@@ -132,6 +135,56 @@ def test_looks_range_is_drawn_per_patch(references):
     config = load_config(TINY, [f"data.train=[{references}]", "data.synthetic_scenes=0", "speckle.looks=[1, 4]"])
     looks = np.array([TrainingData(config).train_set[(0, i)]["looks"].item() for i in range(30)])
     assert looks.min() >= 1 and looks.max() <= 4 and looks.std() > 0.3
+
+
+def test_validation_psnr_and_ssim_are_the_benchmarks_measures(references, monkeypatch):
+    # Training logs and benchmark reports use one measure: despeck.metrics.fidelity_db on
+    # dB images clipped to the validation references' 1st-99.9th percentiles (numpy's
+    # percentile below), equal to scikit-image's peak_signal_noise_ratio/structural_similarity
+    # (van der Walt et al. 2014) on those clipped images where every pixel is valid.
+    config = load_config(TINY, [f"data.train=[{references}]", "data.synthetic_scenes=0", "data.val_patches=6"])
+    val = TrainingData(config).val_set
+    low, high = val.db_range
+    pooled = np.concatenate([it["clean"][it["valid"]].numpy() for it in val.items]).astype(np.float64)
+    assert (low, high) == pytest.approx(tuple(np.percentile(10 * np.log10(pooled), [1.0, 99.9])), abs=1e-9)
+    clean = torch.stack([it["clean"] for it in val.items])
+    valid = torch.stack([it["valid"] for it in val.items])
+    estimate = torch.from_numpy(ndimage.uniform_filter(torch.stack([it["noisy"] for it in val.items]).numpy(),
+                                                       size=(1, 1, 5, 5)))
+    expected = []
+    for c, e, v in zip(clean[:, 0].numpy(), estimate[:, 0].numpy(), valid[:, 0].numpy()):
+        psnr, ssim = validation_fidelity(c, e, v, val.db_range)
+        fd = metrics.fidelity(c, e, v, db_range=val.db_range)
+        assert (psnr, ssim) == (fd["psnr_db"], fd["ssim_db"])
+        assert v.all()  # tiny config: min_valid_fraction 1
+        rd, ed = _db_clipped(c, val.db_range), _db_clipped(e, val.db_range)
+        assert psnr == pytest.approx(peak_signal_noise_ratio(rd, ed, data_range=high - low), abs=1e-9)
+        assert ssim == pytest.approx(structural_similarity(rd, ed, data_range=high - low), abs=1e-9)
+        expected.append(psnr)
+    # With nodata in a patch, only the valid pixels count (scikit-image on those pixels).
+    v = valid[0, 0].numpy().copy()
+    v[:, :5] = False
+    masked = validation_fidelity(clean[0, 0].numpy(), estimate[0, 0].numpy(), v, val.db_range)[0]
+    assert masked == pytest.approx(peak_signal_noise_ratio(_db_clipped(clean[0, 0], val.db_range)[v],
+                                                           _db_clipped(estimate[0, 0], val.db_range)[v],
+                                                           data_range=high - low), abs=1e-9)
+    # The logged columns: val_psnr_db averages the patches' measures; the noisy input's own
+    # PSNR is measured the same way.
+    module = DespeckleModule(create_model(config.model.name), looks=1.0, log_scale=config.model.log_scale,
+                             loss=config.loss, optim=config.optim, validation=val)
+    monkeypatch.setattr(module, "log", lambda *args, **kwargs: None)  # no trainer to log to
+    module.on_validation_epoch_start()
+    module._val_batches.append((clean, estimate, valid))
+    module.on_validation_epoch_end()
+    assert module.val_metrics["val_psnr_db"] == pytest.approx(np.mean(expected), rel=1e-12)
+    noisy = [metrics.fidelity(it["clean"][0].numpy(), it["noisy"][0].numpy(), it["valid"][0].numpy(),
+                              db_range=val.db_range)["psnr_db"] for it in val.items]
+    assert module.val_metrics["val_psnr_noisy_db"] == pytest.approx(np.mean(noisy), rel=1e-12)
+
+
+def _db_clipped(intensity, db_range):
+    """``10 log10`` image clipped to ``db_range``, as the benchmarks compare images."""
+    return np.clip(10 * np.log10(np.asarray(intensity, dtype=np.float64)), *db_range)
 
 
 def test_bad_inputs_fail_before_training(tmp_path, references):

@@ -30,9 +30,10 @@ import torch
 from torch.utils.data import DataLoader, Dataset, Sampler
 
 from ..errors import ConfigError, DespeckError, RasterError
+from ..metrics import reference_db_range
 from ..speckle import gamma_speckle, intensity_correlation_theory, log_intensity_mean, simulate_correlated_intensity
 from .config import TrainConfig
-from .losses import psnr_db
+from .losses import validation_fidelity
 
 __all__ = ["Reference", "PatchDataset", "EpochSampler", "ValidationSet", "TrainingData", "resolve_raster_paths"]
 
@@ -310,7 +311,8 @@ class ValidationSet(Dataset):
     Also holds four homogeneous patches (constant reflectivity at the references' typical
     level, speckled with ``val_looks``) for the mean calibration, ENL and radiometric-bias
     columns, the
-    fixed PSNR/SSIM data range (dB) and the noisy input's own PSNR for comparison.
+    fixed dB range of PSNR/SSIM (``db_range``, :func:`despeck.metrics.reference_db_range`
+    of the validation patches' clean pixels) and the noisy input's own PSNR for comparison.
     """
 
     def __init__(self, references, config: TrainConfig):
@@ -347,9 +349,10 @@ class ValidationSet(Dataset):
                 told = (draw.looks, (UNKNOWN_CORRELATION, UNKNOWN_CORRELATION))
             items.append(_as_item(noisy, clean, target, valid, draw.looks, offset, told))
         self.items = items
-        clean_db = np.concatenate([10 * np.log10(it["clean"][it["valid"]].numpy()) for it in items])
-        # One fixed peak for every epoch: the validation references' dB dynamic range.
-        self.data_range_db = float(max(clean_db.max() - clean_db.min(), 1.0))
+        # One fixed dB range for every epoch, taken from the validation references as the
+        # benchmarks take it from a scene's reference (at least 1 dB wide).
+        low, high = reference_db_range(np.concatenate([it["clean"][it["valid"]].numpy() for it in items]))
+        self.db_range = (low, max(high, low + 1.0))
         level = float(np.mean([r.log_mean for r in refs]))
         side = max(2 * p, 128)
         reflectivity = math.exp(level)
@@ -362,8 +365,9 @@ class ValidationSet(Dataset):
             "log_offset": torch.full((4,), level + log_intensity_mean(looks), dtype=torch.float32),
             "reflectivity": reflectivity,
         }
-        self.noisy_psnr_db = float(np.mean([
-            psnr_db(it["clean"][0].numpy(), it["noisy"][0].numpy(), it["valid"][0].numpy(), self.data_range_db)
+        self.noisy_psnr_db = float(np.nanmean([
+            validation_fidelity(it["clean"][0].numpy(), it["noisy"][0].numpy(), it["valid"][0].numpy(),
+                                self.db_range)[0]
             for it in items
         ]))
 

@@ -20,8 +20,10 @@ weights (0 leaves a pixel out, e.g. a pixel that changed between the two dates o
 pair; see :mod:`despeck.training.pairs`). A batch with a ``weight`` entry uses it,
 otherwise its ``valid`` mask.
 
-Validation PSNR and SSIM are computed on ``10 log10`` intensities (the dB domain) with
-scikit-image and a fixed ``data_range`` in dB.
+Validation PSNR and SSIM are the benchmarks' own dB-domain measures
+(:func:`despeck.metrics.fidelity_db`: ``10 log10`` intensities clipped to one fixed dB
+range, the validation references' 1st to 99.9th percentiles, with the same masking), so
+training logs and benchmark reports compare.
 
 References
 ----------
@@ -42,6 +44,7 @@ import torch
 from torch import nn
 
 from ..errors import InputError
+from ..metrics import fidelity_db
 
 __all__ = [
     "gamma_nll",
@@ -49,8 +52,7 @@ __all__ = [
     "total_variation",
     "log_target",
     "DespeckleLoss",
-    "psnr_db",
-    "ssim_db",
+    "validation_fidelity",
 ]
 
 # exp(d) with d above this would overflow float32 gradients; targets that bright relative
@@ -144,40 +146,21 @@ class DespeckleLoss(nn.Module):
         }
 
 
-def _db(x):
-    return 10.0 * np.log10(np.maximum(np.asarray(x, dtype=np.float64), np.finfo(np.float32).tiny))
+def validation_fidelity(clean, estimate, valid, db_range) -> tuple[float, float]:
+    """dB-domain PSNR and SSIM of one validation patch, measured as the benchmarks measure a scene.
 
+    :func:`despeck.metrics.fidelity_db` with the validation set's fixed ``db_range``
+    (``(low, high)`` in dB): pixels valid and positive in both images, dB values clipped
+    to the range, peak ``high - low``, SSIM over the 7 x 7 windows of valid pixels. A
+    patch that cannot be measured (no valid pixel, no whole valid SSIM window) gives
+    NaN for both, which the epoch's mean leaves out.
 
-def psnr_db(clean, estimate, valid, data_range_db) -> float:
-    """PSNR (dB) between ``10 log10`` images over valid pixels, peak = ``data_range_db``.
-
-    Uses :func:`skimage.metrics.peak_signal_noise_ratio`; the domain is dB intensity.
+    Returns
+    -------
+    (psnr_db, ssim_db)
     """
-    from skimage.metrics import peak_signal_noise_ratio
-
-    valid = np.asarray(valid, dtype=bool)
-    a, b = _db(clean)[valid], _db(estimate)[valid]
-    if a.size == 0:
-        return math.nan
-    if np.array_equal(a, b):
-        return math.inf
-    return float(peak_signal_noise_ratio(a, b, data_range=data_range_db))
-
-
-def ssim_db(clean, estimate, valid, data_range_db) -> float:
-    """SSIM between ``10 log10`` images (:func:`skimage.metrics.structural_similarity`).
-
-    Invalid pixels take the same value (the clean valid mean) in both images so they add no error.
-    """
-    from skimage.metrics import structural_similarity
-
-    valid = np.asarray(valid, dtype=bool)
-    a = _db(clean)
-    fill = a[valid].mean() if valid.any() else 0.0
-    a = np.where(valid, a, fill)
-    b = np.where(valid, _db(estimate), fill)
-    side = min(a.shape)
-    win = min(7, side if side % 2 else side - 1)
-    if win < 3:
-        return math.nan
-    return float(structural_similarity(a, b, data_range=data_range_db, win_size=win))
+    try:
+        measured = fidelity_db(clean, estimate, valid, db_range=db_range)
+    except InputError:
+        return math.nan, math.nan
+    return float(measured["psnr_db"]), float(measured["ssim_db"])

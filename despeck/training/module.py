@@ -22,7 +22,7 @@ import torch
 from ..models import Despeckler
 from ..speckle import enl_intensity
 from .config import LossConfig, OptimConfig
-from .losses import DespeckleLoss, psnr_db, ssim_db
+from .losses import DespeckleLoss, validation_fidelity
 
 __all__ = ["DespeckleModule", "CHECKPOINT_FORMAT", "CHECKPOINT_VERSION"]
 
@@ -108,12 +108,12 @@ class DespeckleModule(pl.LightningModule):
             return
         if self.validation is None or not self._val_batches:
             return
-        rng_db = self.validation.data_range_db
         psnr, ssim = [], []
         for clean, est, valid in self._val_batches:
             for c, e, v in zip(clean[:, 0].numpy(), est[:, 0].numpy(), valid[:, 0].numpy()):
-                psnr.append(psnr_db(c, e, v, rng_db))
-                ssim.append(ssim_db(c, e, v, rng_db))
+                p, s = validation_fidelity(c, e, v, self.validation.db_range)
+                psnr.append(p)
+                ssim.append(s)
         self._val_batches = []
         h = self.validation.homogeneous
         with torch.no_grad():
