@@ -7,8 +7,10 @@ interrupted batch run restarts where it stopped. An input that cannot be read or
 output that cannot be written fails that file only (one line each, a summary at the
 end, exit status 2); an output folder that can take no file (read-only, full) stops
 every later output into it at once. Several ``apply`` runs may share a batch: an
-output another run is writing is skipped (``--busy``). The work itself is
-:func:`despeck.inference.despeckle_file`.
+output another run is writing is skipped (``--busy``), and one another run finished
+meanwhile is skipped as well (checked when the output is claimed, not only at the
+start). ``--shard K/N`` gives a job array's task K its part of the sorted inputs. The
+work itself is :func:`despeck.inference.despeckle_file`.
 """
 
 from __future__ import annotations
@@ -61,7 +63,37 @@ def add_arguments(parser):
     parser.add_argument("--busy", choices=("skip", "fail"), default="skip",
                         help="an output another despeck process is writing at the same time: skip it with a "
                              "warning (default; exit status 0) or count it as failed")
+    parser.add_argument("--shard", metavar="K/N",
+                        help="process only part K of N (1 <= K <= N) of the inputs, for job arrays: the inputs are "
+                             "sorted by path, duplicates removed, and the file at position i (from 0) goes to part "
+                             "i %% N + 1; every file belongs to exactly one part")
+    parser.add_argument("--cog", action="store_true",
+                        help="write Cloud-Optimised GeoTIFFs with overviews (GDAL's COG driver)")
     parser.add_argument("--quiet", action="store_true", help="no progress bars or per-file lines")
+
+
+def parse_shard(text) -> tuple[int, int]:
+    """``"K/N"`` -> ``(K, N)`` with whole numbers ``1 <= K <= N``; InputError otherwise."""
+    parts = str(text).strip().split("/")
+    try:
+        if len(parts) != 2:
+            raise ValueError
+        k, n = (int(p.strip()) for p in parts)
+    except ValueError:
+        raise InputError(f"--shard expects K/N with whole numbers (e.g. 2/8), got {text!r}") from None
+    if n < 1 or not 1 <= k <= n:
+        raise InputError(f"--shard K/N needs 1 <= K <= N, got {text!r}")
+    return k, n
+
+
+def shard(items, k, n) -> list:
+    """Part ``k`` of ``n`` (1-based) of ``items``: sorted by path, duplicates removed, every ``n``-th from ``k - 1``.
+
+    The parts of ``k = 1 .. n`` hold every item exactly once, and the same items
+    give the same parts on every machine (the order of the arguments does not matter).
+    """
+    ordered = sorted({str(p): p for p in items}.items())
+    return [p for i, (_, p) in enumerate(ordered) if i % n == k - 1]
 
 
 def starter_model_path() -> pathlib.Path:
@@ -157,8 +189,17 @@ def run(args) -> int:
     os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     from ..inference import resolve_tiling
 
+    part = parse_shard(args.shard) if getattr(args, "shard", None) is not None else None
     inputs = expand_inputs(args.inputs)
+    # Outputs are planned on the whole list, so every shard refuses the same clashes.
     outputs = plan_outputs(inputs, out=args.out, out_dir=args.out_dir, suffix=args.suffix)
+    if part is not None:
+        output_of = {str(src): dst for src, dst in zip(inputs, outputs)}
+        total = len(inputs)
+        inputs = shard(inputs, *part)
+        outputs = [output_of[str(src)] for src in inputs]
+        if not args.quiet:
+            print(f"shard {part[0]}/{part[1]}: {len(inputs)} of {total} input(s)")
     if args.threads is not None and args.threads < 1:
         raise InputError(f"--threads must be at least 1, got {args.threads}")
     model = load_model(args.model)
@@ -226,7 +267,7 @@ def _run_all(args, inputs, outputs, model) -> dict:
             despeckle_file(
                 src, dst, model, units=args.units, out_units=args.out_units, overwrite=args.overwrite,
                 tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=args.bf16,
-                progress=not args.quiet, looks=getattr(args, "looks", None),
+                progress=not args.quiet, looks=getattr(args, "looks", None), cog=getattr(args, "cog", False),
             )
         except OutputBusyError as exc:
             if args.busy == "fail":
