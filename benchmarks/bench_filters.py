@@ -49,7 +49,7 @@ def naive_per_pixel(name, image, looks, options):
     """The filter computed one pixel at a time from that pixel's own padded neighbourhood."""
     window = filters.DEFAULT_WINDOWS[name]
     plan = filters._PLANS[name](looks, window, **options)
-    img, valid = filters._as_image(image, None)
+    img, valid = filters.as_image(image)
     out = np.empty(image.shape, dtype=np.float32)
     h = plan.halo
     padded, ok = filters._pad_block(img, valid, 0, img.shape[0], h)

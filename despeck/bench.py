@@ -57,8 +57,8 @@ from .errors import ConfigError, DespeckError, InputError, RasterError
 from .looks import estimate_scene_looks
 from .speckle import check_looks
 
-__all__ = ["BenchScene", "Method", "parse_method", "load_scene_list", "run_benchmark", "DEFAULT_METHODS", "CAUTIONS",
-           "REPORT_MARKER"]
+__all__ = ["BenchScene", "Method", "parse_method", "parse_option_value", "load_scene_list", "run_benchmark",
+           "DEFAULT_METHODS", "CAUTIONS", "REPORT_MARKER"]
 
 #: Methods run when none are given: every classical filter with its default window
 #: (bm3d-log only when its optional package is installed).
@@ -123,8 +123,15 @@ class Method:
     path: pathlib.Path | None = None
 
 
-def _parse_value(text):
-    t = text.strip()
+def parse_option_value(text):
+    """A filter option's value written as text (a method specification, ``--option KEY=VALUE``).
+
+    ``true``/``yes`` and ``false``/``no`` give booleans, ``none``/``null`` None
+    (case-insensitive), an integer or decimal number gives an int or a float, and
+    anything else stays the (stripped) string; :func:`despeck.filters.filter_options`
+    then decides whether it is allowed.
+    """
+    t = str(text).strip()
     low = t.lower()
     if low in ("true", "yes"):
         return True
@@ -180,7 +187,7 @@ def parse_method(spec, base=None) -> Method:
             key, eq, value = item.partition("=")
             if not eq or not key.strip():
                 raise InputError(f"method {text!r}: options are key=value separated by commas, got {item!r}")
-            options[key.strip().replace("-", "_")] = _parse_value(value)
+            options[key.strip().replace("-", "_")] = parse_option_value(value)
     window = options.pop("window", None)
     looks = options.pop("looks", None)
     window = filters.check_window(window if window is not None else filters.DEFAULT_WINDOWS[name], f"method {text!r}: window")
@@ -356,7 +363,7 @@ def _load_scene_checked(scene: BenchScene, index: int, where: str) -> _Loaded:
         name = scene.name or pathlib.Path(scene.image).stem
         source = str(scene.image)
     else:
-        intensity, valid = filters._as_image(scene.image, scene.valid)
+        intensity, valid = filters.as_image(scene.image, scene.valid)
         intensity = intensity.astype(np.float32)
         name = scene.name or f"scene {index + 1}"
         source = "array"

@@ -48,6 +48,7 @@ __all__ = [
     "get_filter",
     "filter_options",
     "check_window",
+    "as_image",
     "boxcar",
     "lee",
     "kuan",
@@ -125,8 +126,28 @@ def _check_workers(workers) -> int:
     return w
 
 
-def _as_image(intensity, mask):
-    """Float64 image with zeros where invalid, and the validity mask."""
+def as_image(intensity, mask=None):
+    """Check an intensity image and return it as the filters see it.
+
+    Parameters
+    ----------
+    intensity : array_like
+        2-D, non-empty, real linear intensity.
+    mask : array_like of bool, optional
+        Same shape; False leaves a pixel out.
+
+    Returns
+    -------
+    image : ndarray of float64
+        The intensity with zeros where invalid.
+    valid : ndarray of bool
+        Finite, positive and inside ``mask``.
+
+    Raises
+    ------
+    InputError
+        For a non-2-D, empty or complex image, or a mask of another shape.
+    """
     a = np.asarray(intensity)
     if a.ndim != 2:
         raise InputError(f"intensity must be a 2-D image, got shape {a.shape}")
@@ -271,7 +292,7 @@ def _calibration_factor(core_and_mask, halo, looks, key):
 
 
 def _apply(plan: _Plan, intensity, mask, workers):
-    img, valid = _as_image(intensity, mask)
+    img, valid = as_image(intensity, mask)
     return _run(plan, img, valid, intensity, workers)
 
 
@@ -1022,7 +1043,7 @@ def improved_sigma(intensity, *, looks, window=None, mask=None, workers=None, xi
     Improved sigma filter for speckle filtering of SAR imagery. IEEE TGRS 47(1),
     202-213. doi:10.1109/TGRS.2008.2002881
     """
-    img, valid = _as_image(intensity, mask)
+    img, valid = as_image(intensity, mask)
     if point_threshold is None:
         point_threshold = _scene_percentile(img, valid)
     plan = _plan_improved_sigma(looks, _window("improved-sigma", window), xi=xi, point_threshold=point_threshold,

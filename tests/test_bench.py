@@ -138,6 +138,19 @@ def test_model_file_method(scene, tmp_path):
         bench.parse_method("model:nowhere.safetensors")
 
 
+@pytest.mark.parametrize("text, value", [
+    (" true", True), ("Yes", True), ("false", False), ("NO", False), ("null", None), ("None", None),
+    ("3", 3), ("-2", -2), ("2.5", 2.5), ("1e-3", 1e-3), (" hamming ", "hamming"),
+])
+def test_option_values_from_text(text, value):
+    # YAML 1.1's boolean and null words and Python's int/float literals (common practice);
+    # the same parser serves method specifications and `despeck filter --option`.
+    parsed = bench.parse_option_value(text)
+    assert parsed == value and type(parsed) is type(value)
+    if type(value) in (int, float) and value > 0:
+        assert bench.parse_method(f"frost:damping={text}").options["damping"] == value
+
+
 def test_cli_bench_single_scene(scene, tmp_path, capsys):
     clean, noisy, layout = scene
     img = _tif(tmp_path / "noisy.tif", noisy)

@@ -35,14 +35,14 @@ def add_arguments(parser):
 
 def parse_options(items) -> dict:
     """``['key=value', ...]`` -> dict with numbers and booleans converted."""
-    from ..bench import _parse_value
+    from ..bench import parse_option_value
 
     options = {}
     for item in items or ():
         key, eq, value = str(item).partition("=")
         if not eq or not key.strip():
             raise InputError(f"--option expects KEY=VALUE, got {item!r}")
-        options[key.strip().replace("-", "_")] = _parse_value(value)
+        options[key.strip().replace("-", "_")] = parse_option_value(value)
     return options
 
 
