@@ -35,7 +35,8 @@ from ..speckle import gamma_speckle, intensity_correlation_theory, log_intensity
 from .config import TrainConfig
 from .losses import validation_fidelity
 
-__all__ = ["Reference", "PatchDataset", "EpochSampler", "ValidationSet", "TrainingData", "resolve_raster_paths"]
+__all__ = ["Reference", "PatchDataset", "EpochSampler", "ValidationSet", "TrainingData", "resolve_raster_paths",
+           "allowed_positions", "PositionTable", "augment"]
 
 RASTER_SUFFIXES = {".tif", ".tiff", ".vrt", ".img", ".jp2", ".png", ".jpg", ".jpeg", ".bmp", ".nc", ".hdf", ".h5"}
 
@@ -67,8 +68,12 @@ def resolve_raster_paths(entries, key: str) -> list[Path]:
     return unique
 
 
-def _allowed_positions(valid: np.ndarray, patch: int, min_fraction: float, row_lo: int, row_hi: int) -> np.ndarray:
-    """Boolean map of top-left corners whose patch lies in rows [row_lo, row_hi) and is valid enough."""
+def allowed_positions(valid: np.ndarray, patch: int, min_fraction: float, row_lo: int, row_hi: int) -> np.ndarray:
+    """Boolean map of top-left corners whose ``patch`` square lies in rows [row_lo, row_hi) and is valid enough.
+
+    A corner is allowed when at least ``min_fraction`` of its square is ``valid``; shape
+    ``(H - patch + 1, W - patch + 1)`` (empty when the image is smaller than a patch).
+    """
     h, w = valid.shape
     out = np.zeros((max(h - patch + 1, 0), max(w - patch + 1, 0)), dtype=bool)
     if row_hi - row_lo < patch or w < patch:
@@ -84,8 +89,12 @@ def _allowed_positions(valid: np.ndarray, patch: int, min_fraction: float, row_l
     return ok
 
 
-class _PositionTable:
-    """Uniform sampling of allowed top-left positions without listing them all."""
+class PositionTable:
+    """Uniform sampling of allowed top-left positions without listing them all.
+
+    ``total`` is the number of allowed positions; ``position(k)`` gives the ``k``-th
+    (row, column) in row-major order, ``0 <= k < total``.
+    """
 
     def __init__(self, allowed: np.ndarray):
         self.allowed = allowed
@@ -107,8 +116,8 @@ class Reference:
     intensity: np.ndarray
     valid: np.ndarray
     log_mean: float
-    train: _PositionTable
-    val: _PositionTable
+    train: PositionTable
+    val: PositionTable
 
 
 def _make_reference(name, intensity, valid, patch, min_fraction, val_rows, role):
@@ -120,17 +129,21 @@ def _make_reference(name, intensity, valid, patch, min_fraction, val_rows, role)
     log_mean = float(np.mean(np.log(intensity[valid].astype(np.float64))))
     if role == "train":
         train_hi = h - val_rows if val_rows else h
-        train = _PositionTable(_allowed_positions(valid, patch, min_fraction, 0, train_hi))
-        val = _PositionTable(_allowed_positions(valid, patch, min_fraction, train_hi, h) if val_rows
+        train = PositionTable(allowed_positions(valid, patch, min_fraction, 0, train_hi))
+        val = PositionTable(allowed_positions(valid, patch, min_fraction, train_hi, h) if val_rows
                              else np.zeros((0, 0), bool))
     else:
-        train = _PositionTable(np.zeros((0, 0), bool))
-        val = _PositionTable(_allowed_positions(valid, patch, min_fraction, 0, h))
+        train = PositionTable(np.zeros((0, 0), bool))
+        val = PositionTable(allowed_positions(valid, patch, min_fraction, 0, h))
     return Reference(name, intensity, valid, log_mean, train, val)
 
 
-def _augment(a: np.ndarray, k: int) -> np.ndarray:
-    # The eight symmetries of the square: rot90 by k % 4, then a flip for k >= 4.
+def augment(a: np.ndarray, k: int) -> np.ndarray:
+    """The ``k``-th of the eight symmetries of the square (``0 <= k < 8``) applied to ``a``.
+
+    A rotation by ``k % 4`` quarter turns, then a left-right flip for ``k >= 4``; a
+    contiguous copy, so patches and masks transformed alike stay aligned.
+    """
     a = np.rot90(a, k % 4)
     return np.ascontiguousarray(a[:, ::-1] if k >= 4 else a)
 
@@ -280,7 +293,7 @@ class PatchDataset(EpochPatches):
         valid = ref.valid[r0:r0 + p, c0:c0 + p]
         if c.data.augment:
             t = int(rng.integers(8))
-            clean, valid = _augment(clean, t), _augment(valid, t)
+            clean, valid = augment(clean, t), augment(valid, t)
         clean = np.where(valid, clean, 0).astype(np.float32)
         draw = draw_speckle(c.speckle, rng)
         looks = draw.looks

@@ -47,7 +47,7 @@ from torch.utils.data import Dataset
 from ..errors import ConfigError, DespeckError, InputError, RasterError
 from ..speckle import enl_intensity, estimate_looks, homogeneous_blocks, split_sublooks
 from .config import TrainConfig
-from .data import EpochPatches, PatchLoaders, _allowed_positions, _augment, _PositionTable, resolve_raster_paths
+from .data import EpochPatches, PatchLoaders, PositionTable, allowed_positions, augment, resolve_raster_paths
 
 __all__ = [
     "change_mask",
@@ -368,8 +368,8 @@ class PairSource:
     looks_estimated: list
     log_means: np.ndarray
     val_start: int
-    train: _PositionTable
-    val: _PositionTable
+    train: PositionTable
+    val: PositionTable
     changed_fraction: float = 0.0
     #: lag-1 speckle correlation (rows, cols) measured on the first view, for conditioned networks
     correlation: tuple = (0.0, 0.0)
@@ -448,8 +448,8 @@ def _make_source(name, kind, files, views, valid, config: TrainConfig) -> PairSo
     val_start = h - val_rows
 
     def table(lo, hi):
-        return _PositionTable(_allowed_positions(valid, p, d.min_valid_fraction, lo, hi)
-                              & _allowed_positions(keep, p, _MIN_KEPT_FRACTION, lo, hi))
+        return PositionTable(allowed_positions(valid, p, d.min_valid_fraction, lo, hi)
+                             & allowed_positions(keep, p, _MIN_KEPT_FRACTION, lo, hi))
 
     changed_fraction = float(changed.sum() / max(valid.sum(), 1))
     return PairSource(name, kind, list(files), views, valid, keep, looks, estimated, log_means, val_start,
@@ -494,7 +494,7 @@ class PairPatchDataset(EpochPatches):
         corr = tuple(src.correlation)
         if c.data.augment:
             t = int(rng.integers(8))
-            noisy, target, valid, keep = (_augment(a, t) for a in (noisy, target, valid, keep))
+            noisy, target, valid, keep = (augment(a, t) for a in (noisy, target, valid, keep))
             if t % 2:  # a quarter turn swaps rows and columns
                 corr = corr[::-1]
         offset = src.log_means[i] + c.data.offset_jitter * float(rng.standard_normal())
