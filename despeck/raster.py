@@ -106,6 +106,53 @@ def limit_gdal_cache(megabytes=None) -> None:
     set_gdal_config("GDAL_CACHEMAX", cap)
 
 
+_NATIVE_PRINTERS_QUIET = False
+
+
+def quiet_native_error_printers() -> bool:
+    """Stop GDAL's and libtiff's C-level default error printers writing raw lines to stderr.
+
+    rasterio routes GDAL errors of the calling thread through Python (they become
+    exceptions and despeck's one-line messages), but GDAL's compression worker threads
+    (``GDAL_NUM_THREADS``) and libtiff's own default handler print straight to the
+    terminal, e.g. ``_tiffWriteProc: File too large.`` before despeck's message on a full
+    disk. Those failures are still caught (every written file is read back before it is
+    published), so the process-wide fallbacks are made quiet: GDAL's global handler
+    becomes ``CPLQuietErrorHandler`` (rasterio's per-thread handlers are untouched) and
+    libtiff's default error and warning handlers are removed. Works with the libraries
+    bundled in rasterio's wheels; elsewhere it does nothing and returns False.
+    """
+    global _NATIVE_PRINTERS_QUIET
+    if _NATIVE_PRINTERS_QUIET:
+        return True
+    import ctypes
+    import glob
+
+    import rasterio
+
+    libdir = os.path.join(os.path.dirname(rasterio.__file__), os.pardir, "rasterio.libs")
+    done = False
+    try:
+        for path in glob.glob(os.path.join(libdir, "libgdal-*.so*")):
+            gdal = ctypes.CDLL(path)
+            gdal.CPLSetErrorHandler.restype = ctypes.c_void_p
+            gdal.CPLSetErrorHandler.argtypes = [ctypes.c_void_p]
+            gdal.CPLSetErrorHandler(ctypes.cast(gdal.CPLQuietErrorHandler, ctypes.c_void_p).value)
+            done = True
+        for path in glob.glob(os.path.join(libdir, "libtiff-*.so*")):
+            tiff = ctypes.CDLL(path)
+            for name in ("TIFFSetErrorHandler", "TIFFSetWarningHandler"):
+                fn = getattr(tiff, name)
+                fn.restype = ctypes.c_void_p
+                fn.argtypes = [ctypes.c_void_p]
+                fn(None)
+            done = True
+    except (OSError, AttributeError):  # pragma: no cover - other GDAL builds
+        return False
+    _NATIVE_PRINTERS_QUIET = done
+    return done
+
+
 class UnitsWarning(UserWarning):
     """The data do not look like the units they were declared (or assumed) to be in."""
 
@@ -1139,6 +1186,7 @@ class SceneWriter:
 
     def __init__(self, path, like, *, units=None, band_count=None, overwrite=False, dtype="float32", cog=False):
         limit_gdal_cache()
+        quiet_native_error_printers()  # write errors surface as one despeck line, not raw C output
         self.cog = bool(cog)
         like_path = getattr(like, "path", None)
         self.path = check_output_path(path, [like_path] if like_path else [], overwrite=overwrite)

@@ -111,6 +111,8 @@ def test_simulate_over_file_size_limit_fails_and_publishes_nothing(tmp_path):
                   env={"GDAL_NUM_THREADS": "2"})
     line = _assert_one_line(result, out)
     assert "file size limit" in line
+    # ...and nothing else: no raw lines from GDAL's worker threads or libtiff's own printer
+    assert [ln for ln in result.stderr.splitlines() if ln.strip()] == [line], result.stderr
     assert not out.exists() and _leftovers(tmp_path) == []
     # Without the limit the same command works, and a rerun is not fooled by anything left behind.
     assert _cli(["simulate", clean, out, "--looks", 1, "--seed", 1, "--quiet"]).returncode == 0
@@ -125,6 +127,7 @@ def test_apply_over_file_size_limit_fails_and_publishes_nothing(tmp_path):
     result = _cli(["apply", src, "--model", model, "--out", out, "--threads", 2, "--quiet"], limit=1 << 17)
     line = _assert_one_line(result, out)
     assert "file size limit" in line
+    assert [ln for ln in result.stderr.splitlines() if ln.strip()] == [line], result.stderr
     assert not out.exists() and _leftovers(tmp_path) == []  # so a rerun does not skip the scene as done
 
 
