@@ -283,7 +283,7 @@ def test_a_failed_swap_keeps_the_old_report(scene, tmp_path, monkeypatch):
     def disk_full(tmp, path):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(bench, "publish", disk_full)
+    monkeypatch.setattr(bench.report, "publish", disk_full)  # the report folder is published by despeck.bench.report
     with pytest.raises(InputError, match="rep: cannot write the report .No space left on device"):
         bench.run_benchmark([s], ["boxcar"], rep, progress=False, overwrite=True)
     assert _tree(rep) == before
