@@ -118,7 +118,7 @@ ORIGIN = (731000.0, 5204000.0)  # invented local grid, not a real projection
 GRID = CRS.from_wkt('LOCAL_CS["Ormsund Mire survey grid (fictional)",UNIT["metre",1],'
                     'AXIS["Easting",EAST],AXIS["Northing",NORTH]]')
 MARKER = ".bench_finetune"
-# The pairs' change test (despeck.training.pairs.change_mask) assumes uncorrelated speckle:
+# The pairs' change test (despeck.change.change_mask) assumes uncorrelated speckle:
 # on this site's correlated speckle its default rate 0.01 flags about 45 % of the unchanged
 # pair (40 % on a constant scene); at 1e-6 about 2.5 % (see the module notes).
 CHANGE_FALSE_ALARM = 1e-6

@@ -21,7 +21,8 @@ from despeck.speckle import enl_intensity, simulate_correlated_slc
 from despeck.synthetic import make_scene
 from despeck.training import config_from_dict, load_config, train
 from despeck.training.losses import DespeckleLoss, gamma_nll, log_mse
-from despeck.training.pairs import PairTrainingData, change_mask, change_thresholds
+from despeck.change import change_mask, change_thresholds
+from despeck.training.pairs import PairTrainingData
 
 torch.set_num_threads(1)
 PAIRS_CONFIG = Path(__file__).resolve().parents[1] / "configs" / "pairs.yaml"
@@ -354,7 +355,7 @@ def test_change_test_holds_its_false_alarm_on_correlated_speckle(oversampling, t
     # a correlated sum; project tolerance). Without it, far more is flagged.
     from despeck.looks import measure_scene_correlation
     from despeck.speckle import simulate_correlated_intensity
-    from despeck.training.pairs import change_mask
+    from despeck.change import change_mask
 
     R = np.full((384, 384), 0.05, np.float32)
     a = simulate_correlated_intensity(R, 1, rng=1, oversampling=oversampling, taper=taper)
