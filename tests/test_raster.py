@@ -188,6 +188,29 @@ def test_complex_and_iq_files(tmp_path, rng):
         assert ds.count == 1 and ds.descriptions == (None,)  # "I" does not describe an intensity
 
 
+def test_read_complex_keeps_the_phase(tmp_path, rng):
+    # Reference: rasterio/GDAL reading the same file back (the samples as written).
+    z = (rng.standard_normal((30, 50)) + 1j * rng.standard_normal((30, 50))) * 100
+    zi = (np.round(z.real) + 1j * np.round(z.imag)).astype(np.complex64)
+    zi[0, :5] = 0  # zero samples carry no intensity: invalid
+    cint = make_tif(tmp_path / "slc.tif", zi[None], dtype="complex_int16")
+    iq = make_tif(tmp_path / "iq.tif", np.stack([zi.real, zi.imag]), dtype="int16", descriptions=("I", "Q"))
+    with rasterio.open(cint) as ds:
+        expected = ds.read(1).astype(np.complex64)
+    for path in (cint, iq):
+        with raster.open_scene(path) as reader:
+            samples, valid = reader.read_complex()
+            part, part_valid = reader.read_complex(Window(10, 5, 20, 10))
+        assert samples.dtype == np.complex64
+        np.testing.assert_array_equal(samples, expected)
+        np.testing.assert_array_equal(valid, expected != 0)
+        np.testing.assert_array_equal(part, expected[5:15, 10:30])
+        np.testing.assert_array_equal(part_valid, valid[5:15, 10:30])
+    real = make_tif(tmp_path / "real.tif", np.abs(zi) ** 2 + 1)
+    with raster.open_scene(real) as reader, pytest.raises(InputError, match="real samples"):
+        reader.read_complex()
+
+
 # --------------------------------------------------------------------------- windows
 
 def test_block_and_row_windows_cover_scene(tmp_path, rng):

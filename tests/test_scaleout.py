@@ -132,7 +132,7 @@ def test_output_finished_by_another_run_meanwhile_is_skipped_when_claimed(tmp_pa
     model = _model_file(tmp_path / "m.safetensors")
     out = tmp_path / "out"
     late = out / "scene_01_despeckled.tif"
-    real_claim = raster.claim_output
+    real_claim = raster.writer.claim_output
     finished_elsewhere = b"written by another machine"
 
     def claim(path):
@@ -142,7 +142,7 @@ def test_output_finished_by_another_run_meanwhile_is_skipped_when_claimed(tmp_pa
             late.write_bytes(finished_elsewhere)
         return real_claim(path)
 
-    monkeypatch.setattr(raster, "claim_output", claim)
+    monkeypatch.setattr(raster.writer, "claim_output", claim)  # the writer claims its output
     assert main(["apply", *map(str, inputs), "--model", str(model), "--out-dir", str(out), "--threads", "1"]) == 0
     stdout = capsys.readouterr().out
     assert "written meanwhile by another process, skipped" in stdout

@@ -137,8 +137,6 @@ def read_slc_sublooks(path, count, *, axis="azimuth", oversampling=1.0, taper=No
     RasterError
         Unreadable file.
     """
-    from rasterio.windows import Window
-
     from ..raster import open_scene
 
     try:
@@ -150,16 +148,11 @@ def read_slc_sublooks(path, count, *, axis="azimuth", oversampling=1.0, taper=No
                         f"config key data.slc: {path} holds real data ({reader.units}), not complex samples; "
                         "sub-looks need a single-look complex file (complex data type or I/Q bands)"
                     )
-                # raster.py converts to intensity on read; the phase is needed here, so the
-                # raw samples and their nodata mask are taken from the reader directly.
-                raw, bad = reader._raw(Window(0, 0, reader.width, reader.height), reader._check_band(band))
+                z, valid = reader.read_complex(band=band)  # the samples, phase kept
     except DespeckError:
         raise
     except (OSError, ValueError) as exc:
         raise RasterError(f"{path}: cannot read ({exc})") from None
-    z = raw.astype(np.complex64) if np.iscomplexobj(raw) else (raw[0] + 1j * raw[1]).astype(np.complex64)
-    valid = ~bad & np.isfinite(z.real) & np.isfinite(z.imag) & (np.abs(z) > 0)
-    z = np.where(valid, z, np.complex64(0))
     try:
         looks = split_sublooks(z, count, axis=axis, oversampling=oversampling, taper=taper, centre=centre)
     except InputError as exc:
