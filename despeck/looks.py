@@ -131,16 +131,6 @@ class SpeckleCorrelation:
 WHITE = SpeckleCorrelation((0.0, 0.0), (0.0, 0.0), "assumed", "white speckle assumed")
 
 
-def _as_float(value, name):
-    try:
-        v = float(value)
-    except (TypeError, ValueError):
-        raise InputError(f"{name} must be a number, got {value!r}") from None
-    if not math.isfinite(v):
-        raise InputError(f"{name} must be finite, got {value!r}")
-    return v
-
-
 def scene_windows(height: int, width: int, *, side: int = WINDOW_SIDE, max_windows: int = MAX_WINDOWS):
     """Top-left corners ``(row, col)`` and size of full-resolution windows spread over a scene.
 
@@ -228,10 +218,9 @@ def looks_from_tags(tags):
     if value is None:
         return None
     try:
-        v = float(value)
-    except (TypeError, ValueError):
-        return None
-    return v if math.isfinite(v) and v > 0 else None
+        return speckle.check_looks(value)
+    except InputError:
+        return None  # not a number of looks: as if not recorded
 
 
 def correlation_from_tags(tags):
@@ -270,7 +259,7 @@ def resolve_looks(option=None, *, tags=None, intensity=None, valid=None, name="-
         message says what is missing and names the option that settles it.
     """
     if option is not None and not (isinstance(option, str) and option.strip().lower() == "auto"):
-        value = speckle.check_looks(_as_float(option, name), name)
+        value = speckle.check_looks(option, name)
         return LooksInfo(value, "option", f"given by {name}")
     tagged = looks_from_tags(tags)
     if tagged is not None:

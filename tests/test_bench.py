@@ -83,6 +83,22 @@ def test_scene_list_with_files_estimated_looks_and_automatic_areas(scene, tmp_pa
     assert [r["method"] for r in result["results"]] == ["input (unfiltered)", "boxcar", "kuan:window=5"]
 
 
+def test_bench_takes_the_looks_recorded_by_simulate(scene, tmp_path):
+    # One owner for a scene's looks (despeck.looks: option, else tag, else estimate): a file
+    # written by `despeck simulate --looks 4` records its looks, and bench reports that value
+    # (the simulated truth) instead of an estimate; a given value still comes first.
+    clean, _, _ = scene
+    _tif(tmp_path / "clean.tif", clean)
+    assert main(["simulate", str(tmp_path / "clean.tif"), str(tmp_path / "l4.tif"), "--looks", "4", "--seed", "2",
+                 "--quiet"]) == 0
+    s = bench.BenchScene(image=tmp_path / "l4.tif", areas=[], points=[])
+    recorded = bench.run_benchmark([s], ["boxcar"], tmp_path / "rep", progress=False)["scenes"][0]
+    assert recorded["looks_source"] == "recorded" and recorded["looks"] == 4.0
+    s.looks = 2
+    given = bench.run_benchmark([s], ["boxcar"], tmp_path / "rep2", progress=False)["scenes"][0]
+    assert given["looks_source"] == "given" and given["looks"] == 2.0
+
+
 def test_bad_reference_and_areas_write_nothing(scene, tmp_path):
     clean, noisy, _ = scene
     img = _tif(tmp_path / "noisy.tif", noisy)

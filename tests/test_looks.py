@@ -110,6 +110,23 @@ def test_unestimable_scene_names_the_option():
     assert info.source == "assumed" and corr == looks.WHITE and len(notes) == 2
 
 
+@pytest.mark.parametrize("bad", [0, -1, "-2", float("nan"), float("inf"), "many", [1]])
+def test_one_rule_for_a_number_of_looks(bad):
+    # A number of looks is positive and finite (the Gamma(L, 1/L) speckle law needs L > 0;
+    # Oliver & Quegan 1998, ch. 4). speckle.check_looks is the one rule: a user's option, a
+    # recorded tag and a model's [min, max] range all go through it and refuse the same values.
+    with pytest.raises(InputError, match="looks must be a positive number"):
+        speckle.check_looks(bad)
+    with pytest.raises(InputError, match="^--looks must be a positive number"):
+        looks.resolve_looks(bad)
+    assert looks.looks_from_tags({"looks": str(bad)}) is None
+    with pytest.raises(InputError, match="looks must be"):
+        speckle.check_looks_range([1.0, bad])
+    assert speckle.check_looks_range("4.4") == 4.4 and speckle.check_looks_range((1, 4)) == [1.0, 4.0]
+    with pytest.raises(InputError, match=r"min <= max"):
+        speckle.check_looks_range([4, 1])
+
+
 def test_tags_round_trip():
     info = looks.LooksInfo(4.4, "estimate", "x")
     corr = looks.SpeckleCorrelation((0.52, 0.06), (0.31, 0.01), "measured")

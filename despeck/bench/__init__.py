@@ -23,7 +23,7 @@ Scene list files (YAML or JSON, paths relative to the file)::
         image: polder_1look.tif
         reference: polder_clean.tif   # optional clean reflectivity, same grid
         reference_units: intensity    # optional, default detected (independent of units)
-        looks: 1                      # optional, default estimated from the scene
+        looks: 1                      # optional, default the file's looks tag, else estimated
         units: intensity              # optional, default detected
         areas: [[10, 10, 60, 60]]     # optional: boxes (row0, col0, row1, col1) or a .geojson file
         points: [[120, 44]]           # optional

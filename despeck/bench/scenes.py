@@ -14,11 +14,13 @@ import numpy as np
 
 from .. import filters, metrics
 from ..errors import DespeckError, InputError, RasterError
-from ..looks import estimate_scene_looks
-from ..speckle import check_looks
+from ..looks import resolve_looks
 from .spec import BenchScene
 
 __all__ = ["LoadedScene", "load_scene", "named_error"]
+
+# How the report names where a scene's looks came from (despeck.looks.LooksInfo.source).
+_LOOKS_SOURCES = {"option": "given", "tag": "recorded", "estimate": "estimated"}
 
 
 @dataclass
@@ -80,10 +82,10 @@ def load_scene(scene: BenchScene, index: int) -> LoadedScene:
 
 
 def _load_scene_checked(scene: BenchScene, index: int, where: str) -> LoadedScene:
-    transform = crs = None
+    transform = crs = tags = None
     if isinstance(scene.image, (str, os.PathLike)):
         s = _read(scene.image, scene.units, "image")
-        intensity, valid, transform, crs = s.intensity, s.valid, s.transform, s.crs
+        intensity, valid, transform, crs, tags = s.intensity, s.valid, s.transform, s.crs, s.tags
         name = scene.name or pathlib.Path(scene.image).stem
         source = str(scene.image)
     else:
@@ -109,15 +111,10 @@ def _load_scene_checked(scene: BenchScene, index: int, where: str) -> LoadedScen
             if reference.shape != intensity.shape:
                 raise InputError(f"{where}: reference of shape {reference.shape} does not match the image {intensity.shape}")
             valid = valid & np.isfinite(reference) & (reference > 0)
-    if scene.looks is not None:
-        looks, looks_source = check_looks(scene.looks, f"{where}: looks"), "given"
-    else:
-        # One owner for the looks of a scene (despeck.looks): estimated on full-resolution windows.
-        try:
-            looks = estimate_scene_looks(intensity, valid).value
-        except InputError as exc:
-            raise InputError(f"{where}: cannot estimate the number of looks ({exc}); give looks") from None
-        looks_source = "estimated"
+    # One owner for the looks of a scene (despeck.looks): given, else the file's tag, else
+    # estimated on the whole image; its errors are named after the scene by load_scene.
+    info = resolve_looks(scene.looks, tags=tags, intensity=intensity, valid=valid, name="looks")
+    looks, looks_source = info.value, _LOOKS_SOURCES[info.source]
     if scene.areas is None:
         try:
             areas = metrics.find_homogeneous_areas(intensity, looks, valid=valid)

@@ -122,7 +122,8 @@ class BenchScene:
     reference : path or ndarray, optional
         Clean reflectivity on the same grid (simulated data).
     looks : float, optional
-        Number of looks; estimated from the scene if not given.
+        Number of looks; if not given, the image file's ``looks`` tag, else estimated from the scene
+        (:func:`despeck.looks.resolve_looks`).
     areas : list of boxes, path to a GeoJSON file, or None
         Homogeneous areas; found automatically if None, none if an empty list.
     points : list of (row, col), or None

@@ -19,7 +19,7 @@ def add_arguments(parser):
                         help="single scene: a homogeneous pixel box (end-exclusive), repeatable")
     parser.add_argument("--point", action="append", default=[], metavar="ROW,COL",
                         help="single scene: a point target, repeatable (default: found automatically)")
-    parser.add_argument("--looks", type=float, metavar="L", help="single scene: number of looks (default: estimated)")
+    parser.add_argument("--looks", type=float, metavar="L", help="single scene: number of looks (default: the file's looks tag, else estimated)")
     parser.add_argument("--units", choices=("intensity", "amplitude", "db", "complex"),
                         help="single scene: units of the image (default: detected)")
     parser.add_argument("--reference-units", choices=("intensity", "amplitude", "db"),

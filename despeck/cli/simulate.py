@@ -53,7 +53,7 @@ def run(args) -> int:
         import numpy as np
 
         seed = int(np.random.SeedSequence().entropy % (2**63))
-    field = speckle.SpeckleField(args.looks, seed=seed, correlated=args.correlated,
+    field = speckle.SpeckleField(looks, seed=seed, correlated=args.correlated,
                                  oversampling=args.oversampling, taper=args.taper)
     def apply(intensity, valid, row, col):
         return field.speckle(intensity, row, col)
@@ -70,7 +70,7 @@ def run(args) -> int:
         corr = SpeckleCorrelation(lag, lag, "simulated", "of the simulated system")
     else:
         corr = SpeckleCorrelation((0.0, 0.0), (0.0, 0.0), "simulated", "white speckle")
-    tags.update(speckle_tags(LooksInfo(float(args.looks), "simulated"), corr))
+    tags.update(speckle_tags(LooksInfo(looks, "simulated"), corr))
     from ..provenance import provenance_tags
 
     settings = {"speckle": kind, "looks": f"{args.looks:g}", "seed": seed}

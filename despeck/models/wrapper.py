@@ -48,7 +48,7 @@ from scipy import special
 from torch import nn
 
 from ..errors import InputError
-from ..speckle import check_looks
+from ..speckle import check_looks_range
 
 __all__ = ["Despeckler", "DEFAULT_LOG_SCALE", "CONDITION_CHANNELS", "UNKNOWN_CORRELATION"]
 
@@ -63,17 +63,6 @@ _TINY = float(np.finfo(np.float32).tiny)
 # Windows of the point-target guard: the target's own 5 x 5 neighbourhood and the
 # 15 x 15 window whose ring (outside the 5 x 5) gives the local clutter level.
 POINT_INNER, POINT_OUTER = 5, 15
-
-
-def _looks_value(looks):
-    if isinstance(looks, (list, tuple)):
-        if len(looks) != 2:
-            raise InputError(f"looks must be a number or a [min, max] range, got {looks!r}")
-        lo, hi = check_looks(looks[0]), check_looks(looks[1])
-        if lo > hi:
-            raise InputError(f"looks range must be [min, max] with min <= max, got {looks!r}")
-        return [lo, hi]
-    return check_looks(looks)
 
 
 #: Conditioning planes of looks-aware networks: the normalised log-speckle standard
@@ -150,7 +139,7 @@ class Despeckler(nn.Module):
                 f"network must expose an odd integer receptive_field, got {rf!r} on {type(network).__name__}"
             )
         self.network = network
-        self.looks = _looks_value(looks)
+        self.looks = check_looks_range(looks)
         self.log_bias = float(log_bias)
         self.log_scale = float(log_scale)
         if not math.isfinite(self.log_bias):
