@@ -59,6 +59,7 @@ from scipy import ndimage
 
 from .errors import InputError, MissingDependencyError
 from .speckle import check_looks, gamma_speckle, log_intensity_mean, log_intensity_variance
+from .validity import valid_mask
 
 __all__ = [
     "INSTALL_HINT",
@@ -426,13 +427,7 @@ def bm3d_log(intensity, *, looks, window=None, mask=None, workers=None, psd=None
     workers = _check_workers(workers)
     _bm3d()
     img = a.astype(np.float64)
-    with np.errstate(invalid="ignore"):
-        valid = np.isfinite(img) & (img > 0)
-    if mask is not None:
-        m = np.asarray(mask)
-        if m.shape != a.shape:
-            raise InputError(f"mask of shape {m.shape} does not match the image {a.shape}")
-        valid &= m.astype(bool)
+    valid = valid_mask(img, mask, what="intensity")
     out = a.astype(np.float32, copy=True)
     if not valid.any():
         return out

@@ -41,6 +41,7 @@ from .bm3d_log import require as require_bm3d
 from .cpu import usable_cores
 from .errors import InputError
 from .speckle import check_looks
+from .validity import valid_mask
 
 __all__ = [
     "FILTERS",
@@ -156,13 +157,7 @@ def as_image(intensity, mask=None):
     if np.iscomplexobj(a) or not np.issubdtype(a.dtype, np.number):
         raise InputError(f"intensity must be real numbers, got {a.dtype}")
     img = a.astype(np.float64)
-    with np.errstate(invalid="ignore"):
-        valid = np.isfinite(img) & (img > 0)
-    if mask is not None:
-        m = np.asarray(mask)
-        if m.shape != a.shape:
-            raise InputError(f"mask of shape {m.shape} does not match the image {a.shape}")
-        valid &= m.astype(bool)
+    valid = valid_mask(img, mask, what="intensity")
     img[~valid] = 0.0
     return img, valid
 

@@ -26,6 +26,7 @@ from scipy import ndimage, special
 
 from .errors import InputError
 from .speckle import check_looks, gamma_speckle
+from .validity import valid_mask
 
 __all__ = [
     "MIN_AREA_PIXELS",
@@ -242,9 +243,7 @@ def find_homogeneous_areas(intensity, looks, *, valid=None, window=15, false_ala
         raise InputError(f"window must hold at least {MIN_AREA_PIXELS} pixels (>= {math.isqrt(MIN_AREA_PIXELS - 1) + 1}), got {window}")
     if not 0 < float(false_alarm) < 1:
         raise InputError(f"false_alarm must lie in (0, 1), got {false_alarm!r}")
-    ok = np.isfinite(x) & (x > 0)
-    if valid is not None:
-        ok &= np.asarray(valid, dtype=bool)
+    ok = valid_mask(x, valid, what="intensity")
     rows, cols = x.shape[0] // window, x.shape[1] // window
     if rows == 0 or cols == 0:
         raise InputError(f"image of shape {x.shape} is smaller than one {window} x {window} box")
@@ -598,13 +597,7 @@ def reference_db_range(reference, valid=None) -> tuple[float, float]:
     several patches); only valid, finite, positive values count.
     """
     x = np.asarray(reference, dtype=np.float64)
-    with np.errstate(invalid="ignore"):
-        ok = np.isfinite(x) & (x > 0)
-    if valid is not None:
-        v = np.asarray(valid, dtype=bool)
-        if v.shape != x.shape:
-            raise InputError(f"valid mask of shape {v.shape} does not match the reference {x.shape}")
-        ok &= v
+    ok = valid_mask(x, valid, what="reference")
     if not ok.any():
         raise InputError("no pixel of the reference is valid and positive")
     low, high = (float(v) for v in np.percentile(to_db(x[ok]), DB_RANGE_PERCENTILES))
@@ -703,9 +696,7 @@ def find_point_targets(intensity, looks, *, valid=None, false_alarm=1e-6, inner=
     L = check_looks(looks)
     if not 0 < float(false_alarm) < 1:
         raise InputError(f"false_alarm must lie in (0, 1), got {false_alarm!r}")
-    ok = np.isfinite(x) & (x > 0)
-    if valid is not None:
-        ok &= np.asarray(valid, dtype=bool)
+    ok = valid_mask(x, valid, what="intensity")
     xv = np.where(ok, x, 0.0)
     t = float(special.gammaincinv(L, 1.0 - float(false_alarm)) / L)
     a, b = 2 * inner + 1, 2 * outer + 1

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import InputError
+from ..validity import valid_mask
 from .units import UNIT_LABELS, check_units
 
 __all__ = ["UnitsDecision", "UnitsEvidence", "detect_units", "unit_hints", "units_evidence", "is_complex_dtype",
@@ -429,9 +430,7 @@ def units_evidence(images, valid=None) -> UnitsEvidence:
         x = np.asarray(image, dtype=np.float64)
         if x.ndim != 2:
             continue
-        ok = np.isfinite(x) & (x > 0)
-        if mask is not None:
-            ok &= np.asarray(mask, dtype=bool)
+        ok = valid_mask(x, mask)
         try:
             origins, _ = homogeneous_blocks(np.where(ok, x, 0.0), ok, window=w, fraction=0.2, min_blocks=1,
                                             split="halves")

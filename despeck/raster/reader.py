@@ -21,6 +21,7 @@ from rasterio.errors import RasterioError, RasterioIOError
 from rasterio.windows import Window
 
 from ..errors import InputError, RasterError
+from ..validity import valid_mask
 from .detection import EVIDENCE_WINDOW, EVIDENCE_WINDOWS, detect_units, is_complex_dtype
 from .gdal_env import error_detail, limit_gdal_cache
 from .units import UnitsWarning, to_intensity
@@ -309,7 +310,7 @@ class SceneReader:
         w = as_window(window, self.width, self.height, self.path)
         raw, bad = self._raw(w, b)
         z = raw.astype(np.complex64) if np.iscomplexobj(raw) else (raw[0] + 1j * raw[1]).astype(np.complex64)
-        valid = ~bad & np.isfinite(z.real) & np.isfinite(z.imag) & (np.abs(z) > 0)
+        valid = ~bad & valid_mask(np.abs(z))
         return np.where(valid, z, np.complex64(0)), valid
 
     def _convert(self, raw, bad, where):

@@ -12,6 +12,7 @@ from __future__ import annotations
 import numpy as np
 
 from ..errors import InputError
+from ..validity import valid_mask
 
 __all__ = ["UNITS", "OUTPUT_UNITS", "UNIT_LABELS", "UnitsWarning", "check_units", "to_intensity", "from_intensity"]
 
@@ -87,7 +88,7 @@ def to_intensity(data, units) -> tuple[np.ndarray, np.ndarray]:
                 intensity = np.where(x > 0, x * x, np.float32(0)).astype(np.float32, copy=False)
             else:  # db
                 intensity = np.power(np.float32(10.0), x / np.float32(10.0), dtype=np.float32)
-        valid = np.isfinite(intensity) & (intensity > 0)
+        valid = valid_mask(intensity)
         intensity = np.where(valid, intensity, np.float32(0)).astype(np.float32, copy=False)
     return intensity, valid
 

@@ -22,6 +22,7 @@ from rasterio.windows import Window
 from ..atomic import OutputBusyError, claim_output, publish, sibling_temp
 from ..errors import InputError, RasterError
 from ..provenance import without_provenance
+from ..validity import valid_mask
 from .gdal_env import decode_threads, limit_gdal_cache, quiet_native_error_printers
 from .paths import check_output_path, write_error
 from .units import UNIT_LABELS, check_units, from_intensity
@@ -196,12 +197,7 @@ class SceneWriter:
         x = np.asarray(intensity, dtype=np.float32)
         if x.shape != (int(w.height), int(w.width)):
             raise InputError(f"{self.path}: data of shape {x.shape} do not fit window {w}")
-        ok = np.isfinite(x) & (x > 0)
-        if valid is not None:
-            valid = np.asarray(valid, dtype=bool)
-            if valid.shape != x.shape:
-                raise InputError(f"{self.path}: valid mask of shape {valid.shape} does not match data {x.shape}")
-            ok &= valid
+        ok = valid_mask(x, valid, what=str(self.path))
         out = from_intensity(x, self.units)
         ok &= np.isfinite(out)
         out = np.where(ok, out, np.float32(self.nodata)).astype(self.dtype, copy=False)
