@@ -9,6 +9,7 @@ status 130 and 143 and one line naming the last checkpoint.
 from __future__ import annotations
 
 import json
+import os
 import sys
 import warnings
 
@@ -52,8 +53,11 @@ def run(args) -> int:
         try:
             result = train(config, resume=args.resume, progress=False if args.quiet else None)
         except TrainingInterrupted as exc:
-            print(f"despeck: {exc}", file=sys.stderr)
+            if os.environ.get("LOCAL_RANK", "0") == "0":  # one report per machine, from its first process
+                print(f"despeck: {exc}", file=sys.stderr)
             return exc.exit_code
+    if result.rank != 0:  # another process of a distributed run: process 0 reports
+        return 0
     shown = {k: round(v, 4) if isinstance(v, float) else v for k, v in result.best_metrics.items()}
     print(f"model: {result.model_path}")
     print(f"metrics: {result.metrics_path}  config: {result.config_path}")

@@ -232,16 +232,26 @@ class BudgetConfig:
 
 @dataclass
 class TrainerConfig:
-    """Run-time settings: seed, numeric precision, CPU threads, progress display.
+    """Run-time settings: seed, numeric precision, CPU threads, processes, progress display.
 
     ``precision: bf16`` trains under bfloat16 autocast (weights stay float32); it needs a
-    CPU with native bfloat16 (AVX512-BF16 or AMX) and is refused otherwise. ``threads``
-    defaults to the cores this process may use.
+    CPU with native bfloat16 (AVX512-BF16 or AMX) and is refused otherwise.
+
+    ``processes_per_node`` x ``nodes`` processes train together with Lightning's
+    distributed data parallel over gloo (each process computes the gradient of its share
+    of every batch; they are averaged before each step). ``data.batch_size`` is the
+    global batch: each process takes ``batch_size / (processes_per_node * nodes)``
+    patches of it (it must divide evenly), so a run draws the same patches and takes the
+    same steps whatever the number of processes. ``threads`` (per process) defaults to
+    the cores this process may use divided by ``processes_per_node``, and a setting that
+    would put more threads than usable cores on a machine is refused.
     """
 
     seed: int = 0
     precision: str = "32"
     threads: Optional[int] = None
+    processes_per_node: int = 1
+    nodes: int = 1
     progress: bool = True
     log_every_n_steps: int = 20
 
@@ -539,6 +549,17 @@ def check_config(config: TrainConfig) -> None:
         _fail("trainer.threads", f"must be a positive integer or null (all usable cores), got {t.threads}")
     if t.log_every_n_steps < 1:
         _fail("trainer.log_every_n_steps", f"must be a positive integer, got {t.log_every_n_steps}")
+    for key in ("processes_per_node", "nodes"):
+        if getattr(t, key) < 1:
+            _fail(f"trainer.{key}", f"must be a positive integer, got {getattr(t, key)}")
+    world = t.processes_per_node * t.nodes
+    if world > 1:
+        if config.data.batch_size % world:
+            _fail("data.batch_size", f"{config.data.batch_size} does not divide evenly among the {world} processes "
+                  f"(trainer.processes_per_node x trainer.nodes); it is the global batch")
+        if config.data.val_patches < world:
+            _fail("data.val_patches", f"{config.data.val_patches} is fewer than the {world} processes "
+                  "(trainer.processes_per_node x trainer.nodes); every process validates a share")
     if t.seed < 0:
         _fail("trainer.seed", f"must be >= 0, got {t.seed}")
 

@@ -224,21 +224,44 @@ def told_condition(draw: SpeckleDraw, jitter: float, rng, dropout: float = 0.0):
 
 
 class EpochSampler(Sampler):
-    """Yields ``(epoch, index)`` keys; Lightning calls :meth:`set_epoch` before each epoch."""
+    """Yields ``(epoch, index)`` keys; Lightning calls :meth:`set_epoch` before each epoch.
 
-    def __init__(self, length: int):
+    Alone (``world == 1``) it yields the indices ``0 .. length - 1``. One of ``world``
+    processes training together (distributed data parallel) yields only its share of
+    every global batch of ``batch_size`` keys: process ``rank`` takes indices
+    ``s * batch_size + rank * b ... + b - 1`` of step ``s`` (``b = batch_size / world``),
+    so the processes' batches together are exactly the batch a single process would
+    draw at that step, and the samples -- pure functions of ``(seed, epoch, index)`` --
+    do not depend on the number of processes. Incomplete last batches are left out.
+    """
+
+    def __init__(self, length: int, *, rank: int = 0, world: int = 1, batch_size: int | None = None):
         self.length = int(length)
+        self.rank, self.world = int(rank), int(world)
+        if not 0 <= self.rank < self.world:
+            raise ValueError(f"rank {rank} is outside 0..{world - 1}")
+        if self.world > 1 and (batch_size is None or int(batch_size) % self.world):
+            raise ValueError(f"the global batch {batch_size} does not divide among {world} processes")
+        self.batch_size = int(batch_size) if batch_size else None
         self.epoch = 0
 
     def set_epoch(self, epoch: int) -> None:
         self.epoch = int(epoch)
 
+    def indices(self) -> list[int]:
+        """This process's indices of one epoch, in order."""
+        if self.world == 1:
+            return list(range(self.length))
+        b = self.batch_size // self.world
+        return [s * self.batch_size + self.rank * b + j
+                for s in range(self.length // self.batch_size) for j in range(b)]
+
     def __iter__(self):
         e = self.epoch
-        return iter([(e, i) for i in range(self.length)])
+        return iter([(e, i) for i in self.indices()])
 
     def __len__(self):
-        return self.length
+        return self.length if self.world == 1 else (self.length // self.batch_size) * (self.batch_size // self.world)
 
 
 class EpochPatches(Dataset):
@@ -410,16 +433,24 @@ class PatchLoaders:
     Subclasses set ``config``, ``train_set`` and ``val_set``.
     """
 
-    def train_dataloader(self) -> DataLoader:
+    def train_dataloader(self, rank: int = 0, world: int = 1) -> DataLoader:
+        """Training batches of process ``rank`` of ``world``: its ``batch_size / world`` share of each global batch."""
         d = self.config.data
         return DataLoader(
-            self.train_set, batch_size=d.batch_size, sampler=EpochSampler(len(self.train_set)),
+            self.train_set, batch_size=d.batch_size // world,
+            sampler=EpochSampler(len(self.train_set), rank=rank, world=world, batch_size=d.batch_size),
             num_workers=d.num_workers, worker_init_fn=_worker_init if d.num_workers else None,
             persistent_workers=d.num_workers > 0, drop_last=True,
         )
 
-    def val_dataloader(self) -> DataLoader:
-        return DataLoader(self.val_set, batch_size=self.config.data.batch_size, shuffle=False)
+    def val_dataloader(self, rank: int = 0, world: int = 1) -> DataLoader:
+        """Validation batches of process ``rank`` of ``world``: every ``world``-th patch from ``rank`` on.
+
+        The processes' means are combined weighted by their numbers of patches
+        (Lightning's ``sync_dist``), so the epoch's measure is that of the whole set.
+        """
+        sampler = None if world == 1 else list(range(rank, len(self.val_set), world))
+        return DataLoader(self.val_set, batch_size=self.config.data.batch_size, shuffle=False, sampler=sampler)
 
 
 class TrainingData(PatchLoaders):

@@ -11,7 +11,11 @@ rasters, checkpoint to resume from) before any training starts, sets up the CPU
   reproduces the uninterrupted run (the data of an epoch depend only on the seed and the
   epoch number; see :mod:`despeck.training.data`); the elapsed time is stored in the
   checkpoint, so a resumed run honours the original budget;
-* optional early stopping, a tqdm progress bar, and a CSV log ``metrics.csv``.
+* optional early stopping, a tqdm progress bar, and a CSV log ``metrics.csv``;
+* with ``trainer.processes_per_node`` x ``trainer.nodes`` > 1, Lightning's distributed
+  data parallel over gloo (:func:`process_layout`): each process trains on its share of
+  every global batch, validation measures are combined over the processes, and only
+  process 0 writes files (config, metrics, checkpoints, the model).
 
 Every file the trainer writes (checkpoints, ``metrics.csv``, ``config.yaml``, the model)
 goes through a temporary file that is synced and size-checked before it is renamed into
@@ -52,7 +56,7 @@ from ..errors import ConfigError, DespeckError, InputError, ModelFileError
 from .config import TrainConfig, config_to_dict, dump_config, parse_duration
 
 __all__ = ["train", "TrainResult", "EpochTimeBudget", "bf16_supported", "usable_cores", "configure_cpu",
-           "TrainingInterrupted", "TrainingDiverged", "TrainingWarning"]
+           "TrainingInterrupted", "TrainingDiverged", "TrainingWarning", "ProcessLayout", "process_layout"]
 
 
 class TrainingInterrupted(DespeckError):
@@ -96,6 +100,58 @@ class TrainResult:
     epochs: int = 0
     steps: int = 0
     stopped_by: str = ""
+    #: global rank of this process (0 unless trained by several processes; only 0 writes files)
+    rank: int = 0
+
+
+@dataclass(frozen=True)
+class ProcessLayout:
+    """Where this process stands in a distributed run, and its share of the CPU."""
+
+    processes_per_node: int
+    nodes: int
+    rank: int
+    threads: int
+
+    @property
+    def world(self) -> int:
+        return self.processes_per_node * self.nodes
+
+
+def process_layout(config: TrainConfig) -> ProcessLayout:
+    """The global rank of this process and its torch threads, for ``trainer.processes_per_node`` x ``trainer.nodes``.
+
+    The rank follows Lightning's DDP numbering, ``NODE_RANK * processes_per_node +
+    LOCAL_RANK``, from the environment variables Lightning's launcher (or a cluster's)
+    sets; the first process of a node has no ``LOCAL_RANK`` until it starts the others.
+    Threads: ``trainer.threads``, else the usable cores divided by the processes of a
+    node (at least 1); a setting that puts more threads on a machine than it has
+    usable cores is refused (processes competing for cores lose their time slices at
+    every synchronisation).
+    """
+    t = config.trainer
+    per_node, nodes = int(t.processes_per_node), int(t.nodes)
+    cores = usable_cores()
+    if per_node > cores:
+        raise ConfigError(f"config key trainer.processes_per_node: {per_node} processes exceed the {cores} usable "
+                          "cores of this machine")
+    threads = int(t.threads) if t.threads else max(1, cores // per_node)
+    if threads * per_node > cores:
+        raise ConfigError(f"config key trainer.threads: {threads} threads x {per_node} processes "
+                          f"(trainer.processes_per_node) exceed the {cores} usable cores; set trainer.threads "
+                          f"to {max(1, cores // per_node)} or null")
+    rank = 0
+    if per_node * nodes > 1:
+        try:
+            node = int(os.environ.get("NODE_RANK", os.environ.get("GROUP_RANK", 0)))
+            local = int(os.environ.get("LOCAL_RANK", 0))
+        except ValueError:
+            raise ConfigError("environment variables NODE_RANK and LOCAL_RANK must be integers") from None
+        if not 0 <= node < nodes:
+            raise ConfigError(f"environment variable NODE_RANK={node} is outside 0..{nodes - 1} "
+                              f"(trainer.nodes is {nodes})")
+        rank = node * per_node + local
+    return ProcessLayout(per_node, nodes, rank, threads)
 
 
 def configure_cpu(threads=None) -> int:
@@ -113,6 +169,13 @@ def configure_cpu(threads=None) -> int:
         pass  # already fixed by earlier parallel work in this process; harmless
     torch.set_flush_denormal(True)
     return n
+
+
+def _decided_by_first_process(trainer, decision: bool) -> bool:
+    """Process 0's ``decision`` in every process of a distributed run (its own alone), so all stop at one step."""
+    if getattr(trainer, "world_size", 1) > 1:
+        return bool(trainer.strategy.broadcast(bool(decision)))
+    return bool(decision)
 
 
 class EpochTimeBudget(pl.Callback):
@@ -143,14 +206,14 @@ class EpochTimeBudget(pl.Callback):
         self._epoch_start = time.monotonic()
 
     def on_train_batch_end(self, trainer, pl_module, outputs, batch, batch_idx):
-        if self.elapsed() >= self.seconds:
+        if _decided_by_first_process(trainer, self.elapsed() >= self.seconds):
             self.stopped = True
             trainer.should_stop = True
 
     def on_train_epoch_end(self, trainer, pl_module):
         if self._epoch_start is not None:
             self.longest_epoch = max(self.longest_epoch, time.monotonic() - self._epoch_start)
-        if self.elapsed() + self.longest_epoch > self.seconds:
+        if _decided_by_first_process(trainer, self.elapsed() + self.longest_epoch > self.seconds):
             self.stopped = True
             trainer.should_stop = True
 
@@ -189,9 +252,15 @@ def _atomic_write_text(path: Path, text: str) -> None:
     _atomic_write_bytes(path, text.encode("utf-8"), ConfigError, "training output")
 
 
-def _prepare_output(config: TrainConfig, resume: bool):
-    """The output folder, checked writable, and whether there is a checkpoint to resume from."""
+def _prepare_output(config: TrainConfig, resume: bool, rank: int = 0):
+    """The output folder, checked writable, and whether there is a checkpoint to resume from.
+
+    The processes other than 0 of a distributed run write nothing and only follow
+    process 0's decision (which they reach from the same files).
+    """
     out = Path(config.output.dir).expanduser()
+    if rank != 0:
+        return out, resume and (out / "checkpoints" / "last.ckpt").is_file()
     try:
         out.mkdir(parents=True, exist_ok=True)
         fd, probe = tempfile.mkstemp(prefix=".write-test.", dir=out)
@@ -257,7 +326,7 @@ def read_checkpoint(path) -> dict:
 
 # Settings a resumed run may change: they do not alter what is computed.
 _RESUMABLE_CHANGES = {"budget", "trainer.progress", "trainer.threads", "trainer.log_every_n_steps",
-                      "data.num_workers", "output"}
+                      "trainer.processes_per_node", "trainer.nodes", "data.num_workers", "output"}
 
 
 def _flatten(d, prefix=""):
@@ -317,9 +386,10 @@ class _MetricsLogger(pl.loggers.Logger):
     it continues (``previous_rows``: header and rows, as from :func:`_metrics_rows_until`).
     """
 
-    def __init__(self, path: Path, previous_rows=None, flush_every: int = 20):
+    def __init__(self, path: Path, previous_rows=None, flush_every: int = 20, write: bool = True):
         super().__init__()
         self.path = Path(path)
+        self.write = bool(write)  # False in the processes other than 0 of a distributed run
         self.flush_every = max(1, int(flush_every))
         self.rows = []
         if previous_rows:
@@ -354,7 +424,7 @@ class _MetricsLogger(pl.loggers.Logger):
             self.save()
 
     def save(self):
-        if not self.rows or self._written == len(self.rows) and self.path.is_file():
+        if not self.write or not self.rows or self._written == len(self.rows) and self.path.is_file():
             return
         keys = sorted(set().union(*self.rows))
         buf = io.StringIO()
@@ -408,6 +478,8 @@ class _DivergenceGuard(pl.Callback):
             what = f"the loss became {float(loss.detach().float().reshape(-1)[0])}"
         elif any(not bool(torch.isfinite(p).all()) for p in pl_module.parameters()):
             what = "the weights became NaN or infinite"
+        if trainer.world_size > 1 and trainer.strategy.reduce_boolean_decision(bool(what), all=False):
+            what = what or "the loss became NaN or infinite in another process"  # every process stops together
         if what:
             raise TrainingDiverged(
                 f"training diverged at epoch {trainer.current_epoch + 1}, step {trainer.global_step}: {what}; "
@@ -465,6 +537,20 @@ def _interrupted(signum, out: Path) -> TrainingInterrupted:
     return TrainingInterrupted(
         f"training interrupted by {name}; the last checkpoint is {last}{when}; "
         "run the same command with --resume to continue from it", signum=signum, checkpoint=last)
+
+
+def _stop_started_processes(trainer) -> None:
+    """Kill the processes Lightning started for this node's share of a distributed run (none alone)."""
+    launcher = trainer.strategy.launcher
+    if launcher is not None and getattr(launcher, "procs", None):
+        launcher.kill(signal.SIGKILL)  # they write nothing: process 0 writes every file
+
+
+def _wait_started_processes(trainer) -> None:
+    """Wait until the processes Lightning started have finished their part of the run."""
+    launcher = trainer.strategy.launcher
+    for proc in getattr(launcher, "procs", None) or ():
+        proc.wait()
 
 
 def _init_from_model_file(network, source) -> None:
@@ -529,7 +615,8 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     from .module import DespeckleModule
 
     progress = config.trainer.progress if progress is None else bool(progress)
-    out, resume = _prepare_output(config, resume)
+    layout = process_layout(config)
+    out, resume = _prepare_output(config, resume, layout.rank)
     ckpt_dir = out / "checkpoints"
     last = ckpt_dir / "last.ckpt"
     resume_ckpt = read_checkpoint(last) if resume else None
@@ -540,7 +627,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         raise ConfigError("config key trainer.precision: bf16 needs a CPU with native bfloat16 "
                           "(avx512_bf16 or amx_bf16); use precision: '32'")
     max_time = parse_duration(config.budget.max_time, "budget.max_time") if config.budget.max_time else None
-    threads = configure_cpu(config.trainer.threads)
+    threads = configure_cpu(layout.threads)
 
     pl.seed_everything(config.trainer.seed, workers=True, verbose=False)
     try:
@@ -588,7 +675,8 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     cbs.extend(callbacks)
 
     config_path = out / "config.yaml"
-    _atomic_write_text(config_path, dump_config(config))
+    if layout.rank == 0:
+        _atomic_write_text(config_path, dump_config(config))
     metrics_path = out / "metrics.csv"
     previous = _metrics_rows_until(metrics_path, int(resume_ckpt["global_step"])) if resume_ckpt else None
 
@@ -611,12 +699,24 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
                             ".*could not find the monitored key.*"):
                 warnings.filterwarnings("ignore", message=message)
             warnings.filterwarnings("ignore", category=DeprecationWarning, module="lightning")
+            if layout.world > 1:
+                from lightning.pytorch.strategies import DDPStrategy
+
+                # Lightning starts the other processes of this node by running the same
+                # command again (LOCAL_RANK, NODE_RANK, MASTER_ADDR/PORT, WORLD_SIZE set);
+                # each draws its own share of the batches, so no sampler is replaced.
+                parallel = {"strategy": DDPStrategy(process_group_backend="gloo"),
+                            "devices": layout.processes_per_node, "num_nodes": layout.nodes,
+                            "use_distributed_sampler": False}
+            else:
+                parallel = {"devices": 1}
             trainer = pl.Trainer(
-                accelerator="cpu", devices=1,
+                accelerator="cpu", **parallel,
                 precision="bf16-mixed" if config.trainer.precision == "bf16" else "32-true",
                 max_epochs=config.budget.max_epochs if config.budget.max_epochs else -1,
                 max_steps=config.budget.max_steps if config.budget.max_steps else -1,
-                callbacks=cbs, logger=_MetricsLogger(metrics_path, previous, config.trainer.log_every_n_steps),
+                callbacks=cbs, logger=_MetricsLogger(metrics_path, previous, config.trainer.log_every_n_steps,
+                                                     write=layout.rank == 0),
                 plugins=[_AtomicCheckpointIO()],
                 default_root_dir=str(out),
                 enable_progress_bar=progress, enable_model_summary=progress,
@@ -625,8 +725,14 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
                                       config.data.patches_per_epoch // config.data.batch_size),
                 gradient_clip_val=config.optim.grad_clip or None,
             )
-            trainer.fit(module, train_dataloaders=data.train_dataloader(), val_dataloaders=data.val_dataloader(),
-                        ckpt_path=str(last) if resume else None)
+            try:
+                trainer.fit(module, train_dataloaders=data.train_dataloader(layout.rank, layout.world),
+                            val_dataloaders=data.val_dataloader(layout.rank, layout.world),
+                            ckpt_path=str(last) if resume else None)
+            except BaseException:
+                _stop_started_processes(trainer)  # they would wait for this one at the next exchange
+                raise
+            _wait_started_processes(trainer)
     finally:
         lightning_log.setLevel(previous_level)
         notes_log.removeFilter(no_adverts)
@@ -636,6 +742,11 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
 
     if trainer.interrupted:  # pragma: no cover - Lightning turns Ctrl-C into an exit
         raise KeyboardInterrupt
+    if layout.rank != 0:  # process 0 exports the model
+        return TrainResult(
+            output_dir=out, model_path=out / config.output.model_file, config_path=config_path,
+            metrics_path=metrics_path, best_checkpoint=Path(checkpoint.best_model_path or last),
+            epochs=int(trainer.current_epoch), steps=int(trainer.global_step), rank=layout.rank)
     best_path = Path(checkpoint.best_model_path) if checkpoint.best_model_path else last
     if not best_path.is_file():
         raise ModelFileError(f"training ended before the first checkpoint; nothing to export in {ckpt_dir}")
