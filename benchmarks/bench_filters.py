@@ -48,16 +48,16 @@ def make_scene(size: int) -> np.ndarray:
 def naive_per_pixel(name, image, looks, options):
     """The filter computed one pixel at a time from that pixel's own padded neighbourhood."""
     window = filters.DEFAULT_WINDOWS[name]
-    plan = filters._PLANS[name](looks, window, **options)
+    plan = filters.filter_entry(name).plan(looks, window, **options)
     img, valid = filters.as_image(image)
     out = np.empty(image.shape, dtype=np.float32)
     h = plan.halo
-    padded, ok = filters._pad_block(img, valid, 0, img.shape[0], h)
+    padded, ok = filters.engine.pad_block(img, valid, 0, img.shape[0], h)
     for r in range(img.shape[0]):
         for c in range(img.shape[1]):
             block = padded[r : r + 2 * h + 1, c : c + 2 * h + 1]
             mask = ok[r : r + 2 * h + 1, c : c + 2 * h + 1]
-            out[r, c] = filters._call(plan, block, mask)[0, 0]
+            out[r, c] = filters.engine.call_kernel(plan, block, mask)[0, 0]
     return out
 
 

@@ -86,7 +86,7 @@ def test_nodata_never_leaks_and_is_kept(name, rng):
 def test_tiles_in_threads_equal_whole_image_exactly(name, rng, monkeypatch):
     noisy, valid = small_scene(rng)
     whole = filters.FILTERS[name](noisy, looks=1, mask=valid, workers=1)  # one 128-pixel tile
-    monkeypatch.setattr(filters, "TILE", 5)  # tiles smaller than most halos
+    monkeypatch.setattr(filters.engine, "TILE", 5)  # tiles smaller than most halos
     strips = filters.FILTERS[name](noisy, looks=1, mask=valid, workers=2)
     np.testing.assert_array_equal(strips, whole)
 
@@ -105,8 +105,8 @@ def test_halo_blocked_file_filtering_equals_whole_image(name, rng, tmp_path, mon
     data = np.where(valid, noisy, 0.0)
     src, dst = tmp_path / "in.tif", tmp_path / "out.tif"
     _write_tif(src, data)
-    monkeypatch.setattr(filters, "STRIP_PIXELS", 64 * 7)  # many strips with halos
-    monkeypatch.setattr(filters, "TILE", 16)
+    monkeypatch.setattr(filters.engine, "STRIP_PIXELS", 64 * 7)  # many strips with halos
+    monkeypatch.setattr(filters.engine, "TILE", 16)
     info = filters.filter_raster(name, src, dst, looks=1, progress=False, workers=2)
     extra = {"point_threshold": info["options"]["point_threshold"]} if name == "improved-sigma" else {}
     whole = filters.FILTERS[name](data.astype(np.float32), looks=1, mask=valid, **extra)
@@ -158,7 +158,7 @@ def test_kuan_gain_is_the_lmmse_gain():
         lmmse = np.cov(R, I)[0, 1] / I.var(ddof=1)
         ci2 = I.var() / I.mean() ** 2
         # 2 %: project tolerance; the Monte Carlo error of 2e6 draws is a few tenths of a percent.
-        assert filters._kuan_gain(np.array(ci2), 1 / looks) == pytest.approx(lmmse, rel=0.02)
+        assert filters.local_stats.kuan_gain(np.array(ci2), 1 / looks) == pytest.approx(lmmse, rel=0.02)
 
 
 # --------------------------------------------------------------------------- naive references
@@ -486,3 +486,20 @@ def test_filter_raster_filters_every_band_or_the_one_asked(rng, tmp_path):
     with pytest.raises(InputError, match=r"window 49 is larger than the scene \(40 x 48 pixels\)"):
         filters.filter_raster("boxcar", src, tmp_path / "wide.tif", looks=1, window=49, progress=False)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["all.tif", "second.tif", "two.tif"]
+
+
+def test_registry_holds_one_entry_per_filter_and_refuses_a_second():
+    # The registry's views agree with its entries; names are looked up as the CLI writes them.
+    assert list(filters.FILTERS) == list(filters.DEFAULT_WINDOWS) and "bm3d-log" in filters.FILTERS
+    for name in filters.FILTERS:
+        entry = filters.filter_entry(name)
+        assert entry.function is filters.FILTERS[name] is filters.get_filter(f" {name.upper()} ")
+        assert entry.default_window == filters.DEFAULT_WINDOWS[name] and entry.description
+        assert (entry.plan is None) == (name == "bm3d-log")  # only bm3d-log needs whole images
+    assert filters.filter_options("frost") == {"damping": 1.0}
+    with pytest.raises(ValueError, match="registered twice"):
+        filters.register_filter("Lee", default_window=7)(filters.lee)
+    with pytest.raises(InputError, match="unknown filter 'median'; choose one of boxcar, lee"):
+        filters.filter_entry("median")
+    with pytest.raises(TypeError):
+        filters.FILTERS["lee"] = filters.lee  # a read-only view
