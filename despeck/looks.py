@@ -35,6 +35,7 @@ import numpy as np
 
 from . import speckle
 from .errors import InputError
+from .validity import valid_mask
 
 __all__ = [
     "LooksInfo",
@@ -324,7 +325,7 @@ def describe_array(intensity, valid=None, *, looks=None, correlation=None):
     speckle and says so in ``notes``.
     """
     x = np.asarray(intensity)
-    ok = np.isfinite(x) & (x > 0) if valid is None else np.asarray(valid, dtype=bool)
+    ok = valid_mask(x) if valid is None else np.asarray(valid, dtype=bool)
     crops = [(x[r:r + h, c:c + w], ok[r:r + h, c:c + w]) for r, c, h, w in scene_windows(*x.shape)]
     sample, sample_ok = mosaic(crops)
     notes = []

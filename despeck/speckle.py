@@ -28,6 +28,7 @@ import numpy as np
 from scipy import optimize, special
 
 from .errors import InputError
+from .validity import valid_mask
 
 __all__ = [
     "check_looks",
@@ -805,12 +806,7 @@ def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_bl
         raise InputError(f"window must be at least 4 pixels, got {window}")
     if not 0 < float(fraction) <= 1:
         raise InputError(f"fraction must lie in (0, 1], got {fraction!r}")
-    ok = np.isfinite(x) & (x > 0)
-    if valid is not None:
-        valid = np.asarray(valid, dtype=bool)
-        if valid.shape != x.shape:
-            raise InputError(f"valid mask of shape {valid.shape} does not match the image {x.shape}")
-        ok &= valid
+    ok = valid_mask(x, valid, what="intensity")
     rows, cols = x.shape[0] // window, x.shape[1] // window
     if rows == 0 or cols == 0:
         raise InputError(f"image of shape {x.shape} is smaller than one {window}x{window} block")
@@ -996,9 +992,7 @@ def estimate_looks_log_iqr(intensity, valid=None, *, window=32, fraction=0.2, mi
     w = int(window)
     if w < 8 or w % 2:
         raise InputError(f"window must be an even number of at least 8 pixels, got {window}")
-    ok = np.isfinite(x) & (x > 0)
-    if valid is not None:
-        ok &= np.asarray(valid, dtype=bool)
+    ok = valid_mask(x, valid, what="intensity")
     rows, cols = x.shape[0] // w, x.shape[1] // w
     if rows == 0 or cols == 0:
         raise InputError(f"image of shape {x.shape} is smaller than one {w}x{w} block")
