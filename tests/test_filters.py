@@ -503,3 +503,11 @@ def test_registry_holds_one_entry_per_filter_and_refuses_a_second():
         filters.filter_entry("median")
     with pytest.raises(TypeError):
         filters.FILTERS["lee"] = filters.lee  # a read-only view
+
+
+@pytest.mark.parametrize("workers", [0, 2.5, "two"])
+def test_thread_counts_must_be_whole_positive_numbers(workers):
+    image = np.ones((8, 8))
+    for name in ("lee", "bm3d-log"):  # one rule for the strip engine and for bm3d-log
+        with pytest.raises(InputError, match="workers must be a positive integer"):
+            filters.FILTERS[name](image, looks=1, workers=workers)
