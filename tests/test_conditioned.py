@@ -167,3 +167,38 @@ def test_blind_mode_when_the_correlation_is_not_trusted(model):
     model.log_bias_table = {"looks": [1.0, 16.0], "corr": [-1.0, 0.0, 0.5], "values": [[0.3, 0.1, 0.2], [0.3, 0.1, 0.2]]}
     assert model.bias_for(4.0, None) == pytest.approx(0.3)
     assert model.bias_for(4.0, (0.25, 0.25)) == pytest.approx(0.15)
+
+
+def test_correlated_training_target_is_the_speckles_mean():
+    # The mean of correlated speckle is the reflectivity convolved with |PSF|^2
+    # (psf_intensity_kernel; Argenti et al. 2013, A tutorial on speckle reduction in SAR
+    # images, IEEE GRSM 1(3)): averaging many independent speckled views of a scene must
+    # give the training target, not the unblurred reference.
+    from despeck.training.data import SpeckleDraw
+
+    rng = np.random.default_rng(3)
+    clean = np.full((64, 64), 0.01, np.float32)
+    clean[32, 32] = 1.0  # a bright point the system blurs
+    draw = SpeckleDraw(1.0, True, (1.3, 1.1), "hamming")
+    views = np.mean([draw.apply(clean, rng) for _ in range(400)], axis=0)
+    target = draw.expected(clean)
+    inner = (slice(20, 44), slice(20, 44))
+    # 400 independent 1-look views: relative standard error 1/sqrt(400) = 5 % per pixel
+    np.testing.assert_allclose(views[inner], target[inner], rtol=0.2, atol=0.004)
+    assert target.max() < 0.9 * clean.max()  # blurred, not the reference
+    assert np.array_equal(draw.expected(clean, "reference"), clean)
+    white = SpeckleDraw(2.0)
+    assert np.array_equal(white.expected(clean), clean)
+
+
+def test_model_init_is_relative_to_the_config_file(tmp_path, model):
+    from despeck.training import load_config
+
+    (tmp_path / "cfg").mkdir()
+    save_model_file(tmp_path / "donor.safetensors", model)
+    (tmp_path / "cfg" / "c.yaml").write_text("model: {name: unet-cond-xs, init: ../donor.safetensors}\n"
+                                             "data: {synthetic_scenes: 1}\n")
+    cfg = load_config(tmp_path / "cfg" / "c.yaml")
+    assert cfg.model.init == str(tmp_path / "cfg" / ".." / "donor.safetensors")
+    (tmp_path / "cfg" / "s.yaml").write_text("model: {name: unet-cond-xs, init: starter}\ndata: {synthetic_scenes: 1}\n")
+    assert load_config(tmp_path / "cfg" / "s.yaml").model.init == "starter"

@@ -181,6 +181,10 @@ class SpeckleConfig:
     #: "unknown"), so the model can run blind where a scene's correlation cannot be
     #: measured reliably
     condition_dropout: float = 0.0
+    #: what correlated patches are compared with: "system", the speckle's mean (the
+    #: clean reference convolved with the system's |PSF|^2, what a despeckler can
+    #: recover), or "reference", the unblurred clean reference (asks for deconvolution)
+    correlated_target: str = "system"
     #: validation patches drawn with the training mixture of looks and correlation
     #: (default: white speckle at val_looks)
     val_mixture: bool = False
@@ -493,6 +497,8 @@ def check_config(config: TrainConfig) -> None:
         _fail("speckle.correlated_fraction", f"must be in [0, 1], got {s.correlated_fraction}")
     if s.looks_distribution not in ("uniform", "log-uniform"):
         _fail("speckle.looks_distribution", f"must be uniform or log-uniform, got {s.looks_distribution!r}")
+    if s.correlated_target not in ("system", "reference"):
+        _fail("speckle.correlated_target", f"must be system or reference, got {s.correlated_target!r}")
     if not 0 <= s.condition_dropout <= 1:
         _fail("speckle.condition_dropout", f"must be in [0, 1], got {s.condition_dropout}")
     if not 0 <= s.condition_jitter <= 0.5:
@@ -663,8 +669,8 @@ def apply_overrides(values: dict, overrides) -> dict:
 def load_config(path, overrides=()) -> TrainConfig:
     """Read a YAML training config, apply ``--set`` overrides and check everything.
 
-    Relative paths in ``data.train``, ``data.validation``, ``data.pairs`` and
-    ``data.slc`` are taken relative to the config file's folder; ``output.dir`` relative to the current directory.
+    Relative paths in ``data.train``, ``data.validation``, ``data.pairs``,
+    ``data.slc`` and ``model.init`` are taken relative to the config file's folder; ``output.dir`` relative to the current directory.
     """
     path = Path(path)
     if not path.is_file():
@@ -691,6 +697,13 @@ def load_config(path, overrides=()) -> TrainConfig:
             data["pairs"] = [[resolve(p) for p in pair] if isinstance(pair, list) else resolve(pair)
                              for pair in data["pairs"]]
         values = {**values, "data": data}
+    model = (values or {}).get("model")
+    if isinstance(model, dict) and isinstance(model.get("init"), str):
+        init = model["init"]
+        from ..models.bundled import BUNDLED_MODELS
+
+        if init not in BUNDLED_MODELS and not Path(init).expanduser().is_absolute():
+            values = {**values, "model": {**model, "init": str(base / init)}}
     values = apply_overrides(values, overrides)
     return config_from_dict(values)
 

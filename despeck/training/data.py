@@ -163,6 +163,25 @@ class SpeckleDraw:
             return (0.0, 0.0)
         return (_lag1(self.oversampling[0], self.taper), _lag1(self.oversampling[1], self.taper))
 
+    def expected(self, clean, target="system"):
+        """The mean of the speckled image: ``clean`` seen through the system for correlated speckle.
+
+        Correlated speckle's expected intensity is the reflectivity convolved with the
+        intensity point-spread function ``|PSF|^2`` (:func:`despeck.speckle.psf_intensity_kernel`);
+        a despeckler estimates that, not the unblurred reflectivity (which would ask it to
+        deconvolve the sensor). ``target="reference"`` keeps the unblurred clean image.
+        """
+        if not self.correlated or target == "reference":
+            return clean
+        from scipy import signal
+
+        from ..speckle import psf_intensity_kernel
+
+        k = psf_intensity_kernel(oversampling=self.oversampling, taper=self.taper).astype(np.float32)
+        h = k.shape[0] // 2
+        padded = np.pad(clean, h, mode="symmetric")
+        return np.maximum(signal.fftconvolve(padded, k, mode="valid"), 0).astype(np.float32)
+
     def apply(self, clean, rng):
         """Speckled version of ``clean`` (float32)."""
         if self.correlated:
@@ -321,7 +340,11 @@ class PatchDataset(EpochPatches):
         draw = draw_speckle(c.speckle, rng)
         looks = draw.looks
         noisy = draw.apply(clean, rng)
-        target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
+        # What a despeckler should give back: the speckle's mean (blurred by the system
+        # for correlated speckle, unless speckle.correlated_target is "reference").
+        expected = np.where(valid, draw.expected(clean, c.speckle.correlated_target), 0).astype(np.float32)
+        target = draw.apply(clean, rng) if c.loss.target == "noisy" else expected
+        clean = expected
         offset = ref.log_mean + log_intensity_mean(looks) + c.data.offset_jitter * float(rng.standard_normal())
         told = told_condition(draw, c.speckle.condition_jitter, rng, c.speckle.condition_dropout)
         return _as_item(noisy, clean, target, valid, looks, offset, told)
@@ -374,7 +397,9 @@ class ValidationSet(Dataset):
             clean = np.where(valid, ref.intensity[r0:r0 + p, c0:c0 + p], 0).astype(np.float32)
             draw = draw_speckle(c.speckle, rng) if c.speckle.val_mixture else SpeckleDraw(looks)
             noisy = draw.apply(clean, rng)
-            target = draw.apply(clean, rng) if c.loss.target == "noisy" else clean
+            expected = np.where(valid, draw.expected(clean, c.speckle.correlated_target), 0).astype(np.float32)
+            target = draw.apply(clean, rng) if c.loss.target == "noisy" else expected
+            clean = expected
             offset = ref.log_mean + log_intensity_mean(draw.looks)
             # Validation tells the network the exact condition (no jitter); with dropout,
             # every other patch withholds the correlation as inference may have to.
