@@ -52,6 +52,8 @@ __all__ = [
     "MAX_TILE",
     "model_mismatch_notes",
     "InferenceWarning",
+    "array_sample",
+    "condition_for_model",
 ]
 
 # Pixels per batch the default batch size aims for: enough work per call to keep both
@@ -213,7 +215,13 @@ def _scene_offset(model, sample):
     return float(fn(sample))
 
 
-def _array_sample(intensity, valid):
+def array_sample(intensity, valid):
+    """The scene sample of the log offset: the valid pixels of every ``step``-th row and column.
+
+    ``step`` keeps the decimated grid at about one million pixels at most. Works on any
+    array that slices like numpy (a dask array gives a lazy sample), so a scene split
+    into chunks is normalised with exactly the offset :func:`despeckle_array` takes.
+    """
     step = max(1, math.ceil(math.sqrt(intensity.size / _SAMPLE_PIXELS)))
     sub, ok = intensity[::step, ::step], valid[::step, ::step]
     return sub[ok].astype(np.float64)
@@ -444,7 +452,7 @@ def condition_for_model(model, info, corr, name="scene"):
 
 def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, batch_size=None, threads=None,
                     bf16=False, log_offset=None, channels_last=None, progress=True, looks=None,
-                    correlation=None) -> np.ndarray:
+                    correlation=None, condition=None) -> np.ndarray:
     """Despeckle a 2-D linear intensity array with a model, tile by tile.
 
     Parameters
@@ -484,6 +492,11 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
     correlation : (float, float), optional
         Lag-1 intensity correlation of the speckle down rows and along columns; default,
         measured like the looks (looks-aware models only).
+    condition : (float, (float, float) or None), optional
+        The ``(looks, correlation)`` the model is given, already resolved for a whole
+        scene (:func:`condition_for_model`) of which ``intensity`` is a part; nothing is
+        measured on the array (``looks`` and ``correlation`` are then ignored). A
+        correlation of None runs a looks-aware model without it.
 
     Returns
     -------
@@ -514,9 +527,11 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
     grid = resolve_tiling(x.shape, model, tile=tile, overlap=overlap)
     threads, use_bf16, batch_size = _settings(model, threads, bf16, batch_size, grid)
     if log_offset is None:
-        log_offset = _scene_offset(model, _array_sample(x, ok))
+        log_offset = _scene_offset(model, array_sample(x, ok))
     cond_looks = cond_corr = None
-    if getattr(model, "conditioned", False) or looks is not None:
+    if condition is not None:
+        cond_looks, cond_corr = condition
+    elif getattr(model, "conditioned", False) or looks is not None:
         from .looks import describe_array
 
         info, corr, notes = describe_array(x, ok, looks=looks, correlation=correlation)

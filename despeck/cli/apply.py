@@ -69,6 +69,10 @@ def add_arguments(parser):
                              "i %% N + 1; every file belongs to exactly one part")
     parser.add_argument("--cog", action="store_true",
                         help="write Cloud-Optimised GeoTIFFs with overviews (GDAL's COG driver)")
+    parser.add_argument("--dask", nargs="?", const="local", metavar="ADDRESS",
+                        help="run one task per file on a Dask cluster: the scheduler's ADDRESS (tcp://host:8786), "
+                             "or 'local' (the default without ADDRESS) for single-threaded worker processes on this "
+                             "machine; --threads is then the threads of each task (default 1). Needs despeck[dask]")
     parser.add_argument("--quiet", action="store_true", help="no progress bars or per-file lines")
 
 
@@ -222,7 +226,10 @@ def run(args) -> int:
             # Check the tile options once, before any file is touched.
             side = 2 * max(model.receptive_field, args.tile or 1)
             resolve_tiling((side, side), model, tile=args.tile, overlap=args.overlap)
-            counts = _run_all(args, inputs, outputs, model)
+            if getattr(args, "dask", None):
+                counts = _run_dask(args, inputs, outputs)
+            else:
+                counts = _run_all(args, inputs, outputs, model)
     finally:
         signal.signal(signal.SIGTERM, previous)
     if not args.quiet and len(inputs) > 1:
@@ -233,6 +240,35 @@ def run(args) -> int:
 
 def _one_line(exc) -> str:
     return " ".join(str(exc).split()) or type(exc).__name__
+
+
+def _run_dask(args, inputs, outputs) -> dict:
+    """Like :func:`_run_all`, one task per file on a Dask cluster (:func:`despeck.distributed.apply_many`)."""
+    try:
+        from ..distributed import apply_many
+    except ImportError as exc:
+        raise InputError(f"--dask: {exc}") from None
+    counts = dict.fromkeys(("written", "skipped", "busy", "failed", "not attempted"), 0)
+
+    def show(result):
+        for note in result.warnings:
+            warnings.warn(note)
+        status = "failed" if result.status == "busy" and args.busy == "fail" else result.status
+        counts[status] += 1
+        if status == "failed":
+            print(f"despeck: error: {result.message}", file=sys.stderr)
+        elif status == "busy":
+            print(f"despeck: warning: {result.message}; skipped", file=sys.stderr)
+        elif not args.quiet:
+            what = (f"({result.seconds:.1f} s on {result.worker or 'a worker'})" if status == "written"
+                    else f"{result.message or 'exists'}, skipped")
+            print(f"{result.input} -> {result.output} {what}")
+
+    model_path = args.model if args.model is not None else starter_model_path()
+    apply_many(inputs, outputs, model_path, args.dask, threads=args.threads or 1, overwrite=args.overwrite,
+               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=args.bf16,
+               looks=getattr(args, "looks", None), cog=getattr(args, "cog", False), on_result=show)
+    return counts
 
 
 def _run_all(args, inputs, outputs, model) -> dict:

@@ -1,0 +1,532 @@
+"""Despeckling on a Dask cluster: many scenes one task each, or one huge scene chunk by chunk.
+
+Optional: needs ``pip install despeck[dask]`` (``dask[distributed]``, ``xarray``,
+``rioxarray``); importing this module without them raises one line saying so.
+
+**Many scenes** (:func:`apply_many`): one task per file on a ``dask.distributed``
+cluster -- the address of a running scheduler, a :class:`distributed.Client`, or a
+local cluster of single-threaded worker processes started for the call and bound to
+``127.0.0.1``. Each task loads the model file itself and streams its scene with
+:func:`despeck.inference.despeckle_file`, exactly as ``despeck apply`` does, so outputs
+are the same files. Runs are idempotent and resumable: outputs that exist are skipped
+(before submitting and again when a task claims its output, :mod:`despeck.atomic`), so
+several clusters or ``apply`` runs may share a folder without writing an output twice.
+A file that fails is reported with its one-line error; the other files go on.
+
+**One huge scene** (:func:`despeckle_dataarray`): an ``xarray.DataArray`` (e.g. from
+``rioxarray.open_rasterio(path, chunks=...)``) is despeckled lazily, chunk by chunk,
+with :func:`dask.array.map_overlap`. Each chunk is extended by a halo of the tiler's
+overlap for the model (its receptive field minus one plus the blend zone, on the
+network's pooling grid), run through :func:`despeck.inference.despeckle_array` and
+trimmed, so every output pixel sees the same neighbourhood as in the streamed path. The
+scene-level inputs of the model are computed once for the whole scene before any chunk
+runs, from the same samples :mod:`despeck.inference` takes: the log offset from the
+decimated valid pixels (:func:`despeck.inference.array_sample`), the looks and speckle
+correlation from the DataArray's attributes (tags) or the full-resolution windows of
+:mod:`despeck.looks`. The result keeps the input's coordinates, CRS, transform, nodata
+and attributes (speckle descriptions of the input become ``input_*`` attributes, and
+the provenance attributes of :mod:`despeck.provenance` are added);
+:func:`write_dataarray` writes it as a tiled GeoTIFF or a Cloud-Optimised GeoTIFF
+through despeck's own writer (claimed, written to a temporary file, read back, renamed).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import copy
+import dataclasses
+import logging
+import math
+import os
+import pathlib
+import threading
+import time
+import uuid
+import warnings
+
+import numpy as np
+
+from .errors import DespeckError, InputError
+
+try:
+    import dask
+    import dask.array as dsa
+    import distributed
+    import rioxarray  # noqa: F401 - registers the .rio accessor (CRS, transform, nodata)
+    import xarray as xr
+except ImportError as exc:  # pragma: no cover - the extra is installed in the test environment
+    raise ImportError(f"despeck.distributed needs the dask extra ({exc.name} is missing): "
+                      "pip install 'despeck[dask]'") from None
+
+__all__ = ["FileResult", "apply_many", "open_client", "despeckle_dataarray", "write_dataarray", "DEFAULT_CHUNK"]
+
+#: Default chunk side of :func:`despeckle_dataarray` (pixels): a multiple of the output
+#: tile (512) and of every registered network's pooling grid; one chunk with its halo and
+#: the tiles in flight takes a few hundred MB per worker.
+DEFAULT_CHUNK = 2048
+
+
+# --------------------------------------------------------------------------- clusters
+
+@contextlib.contextmanager
+def open_client(client=None, *, workers=None, threads_per_worker=1, processes=True):
+    """A ``distributed.Client`` for ``client``: itself, a scheduler address, or a new local cluster.
+
+    Parameters
+    ----------
+    client : distributed.Client, str or None
+        A client (used as is, not closed), the address of a running scheduler
+        (``tcp://host:8786``), or None / ``"local"`` for a local cluster bound to
+        127.0.0.1 that is shut down on exit.
+    workers : int, optional
+        Workers of a local cluster; default the usable cores divided by
+        ``threads_per_worker``.
+    threads_per_worker : int
+        Threads of each local worker (tasks running at once in it).
+    processes : bool
+        Local workers are processes (default) or threads of this process.
+
+    Raises
+    ------
+    InputError
+        The scheduler cannot be reached.
+    """
+    if isinstance(client, distributed.Client):
+        yield client
+        return
+    if client is None or str(client).strip().lower() == "local":
+        from .cpu import usable_cores
+
+        n = workers or max(1, usable_cores() // max(1, int(threads_per_worker)))
+        with distributed.LocalCluster(n_workers=int(n), threads_per_worker=int(threads_per_worker),
+                                      processes=processes, protocol="tcp", host="127.0.0.1", dashboard_address=None,
+                                      silence_logs=logging.ERROR) as cluster, \
+                distributed.Client(cluster) as new:
+            yield new
+        return
+    try:
+        new = distributed.Client(str(client), timeout="20s")
+    except (OSError, TimeoutError) as exc:
+        raise InputError(f"dask scheduler {client}: cannot connect ({' '.join(str(exc).split())[:160]})") from None
+    try:
+        yield new
+    finally:
+        new.close()
+
+
+# --------------------------------------------------------------------------- many scenes
+
+@dataclasses.dataclass
+class FileResult:
+    """What happened to one input of :func:`apply_many`.
+
+    ``status`` is ``written``, ``skipped`` (the output exists), ``busy`` (another
+    process is writing it) or ``failed`` (``message`` says why, in one line);
+    ``warnings`` are the task's warnings (one line each).
+    """
+
+    input: pathlib.Path
+    output: pathlib.Path
+    status: str
+    seconds: float = 0.0
+    message: str = ""
+    warnings: list = dataclasses.field(default_factory=list)
+    worker: str = ""
+
+
+_models = threading.local()
+
+
+def _task_model(path):
+    """The model of ``path`` for this worker thread, loaded once per thread and file version."""
+    from .models import load_model_file
+
+    st = os.stat(path)
+    key = (os.path.realpath(path), st.st_mtime_ns, st.st_size)
+    cache = getattr(_models, "cache", None)
+    if cache is None or cache[0] != key:
+        cache = _models.cache = (key, load_model_file(path))
+    return cache[1]
+
+
+def _one_line(exc) -> str:
+    return " ".join(str(exc).split()) or type(exc).__name__
+
+
+def _apply_one(src, dst, model_path, options) -> FileResult:
+    """One task: despeckle ``src`` into ``dst`` (runs on a worker)."""
+    from rasterio.errors import RasterioError
+
+    from .atomic import OutputBusyError
+    from .inference import despeckle_file
+
+    src, dst = pathlib.Path(src), pathlib.Path(dst)
+    overwrite = bool(options.get("overwrite"))
+    worker = ""
+    with contextlib.suppress(ValueError):
+        worker = distributed.get_worker().address
+    if dst.exists() and not overwrite:
+        return FileResult(src, dst, "skipped", worker=worker)
+    start = time.perf_counter()
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            despeckle_file(src, dst, _task_model(model_path), progress=False, **options)
+            status, message = "written", ""
+        except OutputBusyError as exc:
+            status, message = "busy", _one_line(exc)
+        except (DespeckError, OSError, RasterioError) as exc:
+            if dst.exists() and not overwrite:
+                status, message = "skipped", "written meanwhile by another process"
+            else:
+                status = "failed"
+                message = _one_line(exc) if isinstance(exc, DespeckError) else f"{src}: {_one_line(exc)}"
+    notes = list(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
+    return FileResult(src, dst, status, time.perf_counter() - start, message, notes, worker)
+
+
+def apply_many(inputs, outputs, model_path, client=None, *, threads=1, overwrite=False, units=None,
+               out_units=None, tile=None, overlap=None, bf16=False, looks=None, cog=False,
+               on_result=None) -> list[FileResult]:
+    """Despeckle many scenes on a Dask cluster, one task per file.
+
+    Parameters
+    ----------
+    inputs, outputs : sequence of path-like
+        Input rasters and their outputs, pairwise (e.g. from ``despeck apply``'s
+        planning); outputs that exist are skipped unless ``overwrite``.
+    model_path : path-like
+        Model file (``.safetensors``); each worker loads it (once per thread).
+    client : distributed.Client, str or None
+        Where to run: a client, a scheduler address, or None / ``"local"`` for a local
+        cluster of single-threaded worker processes, one per usable core divided by
+        ``threads``, started for this call (see :func:`open_client`).
+    threads : int
+        Torch threads of each task (default 1: the cluster's workers are the parallelism).
+    overwrite, units, out_units, tile, overlap, bf16, looks, cog
+        As for :func:`despeck.inference.despeckle_file`.
+    on_result : callable, optional
+        Called with each :class:`FileResult` as it arrives (in completion order).
+
+    Returns
+    -------
+    list of FileResult
+        In the order of ``inputs``. A task that could not run at all (a worker lost
+        repeatedly) is reported as failed too; nothing is raised for one file.
+
+    Raises
+    ------
+    InputError
+        ``inputs`` and ``outputs`` differ in length, the model file is missing, or the
+        scheduler cannot be reached.
+    """
+    inputs = [pathlib.Path(p) for p in inputs]
+    outputs = [pathlib.Path(p) for p in outputs]
+    if len(inputs) != len(outputs):
+        raise InputError(f"apply_many: {len(inputs)} inputs but {len(outputs)} outputs")
+    model_path = pathlib.Path(model_path).expanduser().resolve()
+    if not model_path.is_file():
+        raise InputError(f"model file {model_path} does not exist")
+    if isinstance(threads, bool) or not isinstance(threads, int) or threads < 1:
+        raise InputError(f"threads must be a whole number >= 1, got {threads!r}")
+    options = dict(overwrite=overwrite, units=units, out_units=out_units, tile=tile, overlap=overlap,
+                   threads=threads, bf16=bf16, looks=looks, cog=cog)
+    results = [None] * len(inputs)
+
+    def report(i, result):
+        results[i] = result
+        if on_result is not None:
+            on_result(result)
+
+    todo = []
+    for i, (src, dst) in enumerate(zip(inputs, outputs)):
+        if dst.exists() and not overwrite:
+            report(i, FileResult(src, dst, "skipped"))
+        else:
+            todo.append(i)
+    if not todo:
+        return results
+    run = uuid.uuid4().hex[:8]
+    with open_client(client, threads_per_worker=1) as c:
+        futures = {}
+        for i in todo:
+            f = c.submit(_apply_one, str(inputs[i]), str(outputs[i]), str(model_path), options,
+                         key=f"despeck-apply-{run}-{i}", pure=False, retries=0)
+            futures[f] = i
+        for f in distributed.as_completed(list(futures)):
+            i = futures[f]
+            try:
+                result = f.result()
+            except Exception as exc:  # noqa: BLE001 - a lost worker or a bug: that file fails, the rest go on
+                result = FileResult(inputs[i], outputs[i], "failed",
+                                    message=f"{inputs[i]}: the task failed ({type(exc).__name__}: {_one_line(exc)})")
+            report(i, result)
+    return results
+
+
+# --------------------------------------------------------------------------- one huge scene
+
+@dataclasses.dataclass
+class _DataArrayScene:
+    """What :func:`despeck.looks.describe_speckle` reads of a scene, served from a DataArray band.
+
+    Its full-resolution windows are computed together on first use (one dask
+    computation, so chunks shared by several windows are read once).
+    """
+
+    path: str
+    tags: dict
+    intensity: object  # dask array, 0 at invalid pixels
+    height: int = 0
+    width: int = 0
+    _windows: dict = dataclasses.field(default_factory=dict)
+
+    def read(self, window, band=1):  # noqa: ARG002 - one band per object
+        from .looks import scene_windows
+
+        if not self._windows:
+            spots = scene_windows(self.height, self.width)
+            crops = dask.compute(*[self.intensity[r:r + h, c:c + w] for r, c, h, w in spots])
+            self._windows = {(r, c, h, w): np.asarray(x) for (r, c, h, w), x in zip(spots, crops)}
+        key = (int(window.row_off), int(window.col_off), int(window.height), int(window.width))
+        x = self._windows.get(key)
+        if x is None:
+            r, c, h, w = key
+            x = np.asarray(self.intensity[r:r + h, c:c + w].compute())
+        return x.copy(), x > 0
+
+
+def _to_intensity_block(raw, units, nodata):
+    """Linear intensity of raw samples, 0 where invalid (by units, non-finite or nodata)."""
+    from .raster import to_intensity
+
+    intensity, ok = to_intensity(np.asarray(raw), units)
+    if nodata is not None and not (isinstance(nodata, float) and math.isnan(nodata)):
+        ok &= np.asarray(raw) != nodata
+    return np.where(ok, intensity, np.float32(0)).astype(np.float32, copy=False)
+
+
+def _despeckle_block(raw, *, model, units, nodata, log_offset, condition, tile, overlap, threads, bf16,
+                     channels_last):
+    """One chunk with its halo: despeckled samples in ``units``; invalid pixels keep their value."""
+    from .inference import despeckle_array
+    from .raster import from_intensity
+
+    intensity = _to_intensity_block(raw, units, nodata)
+    ok = intensity > 0
+    out = np.asarray(raw).astype(np.float32)
+    if not ok.any():
+        return out
+    # A private copy: a worker's threads may run chunks at once, and the runner may
+    # switch the model's memory format while it works.
+    m = copy.deepcopy(model)
+    estimate = despeckle_array(intensity, m, valid=ok, tile=tile, overlap=overlap, threads=threads, bf16=bf16,
+                               log_offset=log_offset, condition=condition, channels_last=channels_last,
+                               progress=False)
+    return np.where(ok, from_intensity(estimate, units), out).astype(np.float32, copy=False)
+
+
+def _aligned_chunks(length, chunk, halo):
+    """Chunk sizes along an axis: ``chunk`` each, a last one shorter than the halo merged into its neighbour."""
+    sizes = [chunk] * (length // chunk)
+    rest = length - chunk * len(sizes)
+    if rest:
+        if sizes and rest < halo:
+            sizes[-1] += rest
+        else:
+            sizes.append(rest)
+    return tuple(sizes)
+
+
+def _nodata_of(da):
+    rio = getattr(da, "rio", None)
+    nodata = None
+    if rio is not None:
+        nodata = rio.nodata if rio.nodata is not None else rio.encoded_nodata
+    if nodata is None:
+        nodata = da.attrs.get("_FillValue", da.attrs.get("nodata"))
+    return None if nodata is None else float(nodata)
+
+
+def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAULT_CHUNK, tile=None, overlap=None,
+                        threads=1, bf16=False, channels_last=None):
+    """Despeckle a (lazily read) scene held in an ``xarray.DataArray``, chunk by chunk with Dask.
+
+    Parameters
+    ----------
+    da : xarray.DataArray
+        Two-dimensional ``(y, x)`` or ``(band, y, x)`` samples in ``units``, e.g. from
+        ``rioxarray.open_rasterio(path, chunks=True)``; numpy-backed arrays are chunked
+        here. Nodata (``da.rio.nodata``, or NaN) is left as it is.
+    model : despeck.models.Despeckler or path-like
+        The model, or its file.
+    units : {'intensity', 'amplitude', 'db'}
+        What the samples are; the result is in the same units.
+    looks : float, optional
+        The scene's looks; default a ``looks`` attribute, else estimated once for the
+        whole scene (as :func:`despeck.inference.despeckle_file` does for a file).
+    chunk : int
+        Chunk side in pixels (rounded up to the network's pooling grid); the halo
+        around each chunk is the tiler's overlap for ``model``.
+    tile, overlap, threads, bf16, channels_last
+        As for :func:`despeck.inference.despeckle_array`, within each chunk;
+        ``threads`` is the torch threads of one chunk task (default 1).
+
+    Returns
+    -------
+    xarray.DataArray
+        Lazy (dask-backed), float32, same dims, coordinates (CRS and transform
+        included) and nodata; attributes kept except the input's speckle descriptions,
+        which become ``input_looks`` / ``input_speckle_correlation_*``, plus the
+        ``despeck_*`` provenance attributes.
+
+    Raises
+    ------
+    InputError
+        Not a DataArray of 2 or 3 dimensions, unknown units, bad tile options, no
+        valid pixel.
+    """
+    from .inference import InferenceWarning, array_sample, condition_for_model, resolve_tiling
+    from .looks import describe_speckle, speckle_tags
+    from .models import Despeckler, load_model_file
+    from .provenance import model_provenance, provenance_tags, tiling_text, without_provenance
+    from .raster import SPECKLE_TAGS, check_units
+
+    if not isinstance(da, xr.DataArray) or da.ndim not in (2, 3) or 0 in da.shape:
+        raise InputError("despeckle_dataarray expects an xarray.DataArray of shape (y, x) or (band, y, x), got "
+                         f"{type(da).__name__} of shape {getattr(da, 'shape', None)}")
+    units = check_units(units, output=True)
+    if not isinstance(model, Despeckler):
+        model = load_model_file(model)
+    if isinstance(chunk, bool) or not isinstance(chunk, int) or chunk < 1:
+        raise InputError(f"chunk must be a whole number of pixels >= 1, got {chunk!r}")
+    height, width = int(da.shape[-2]), int(da.shape[-1])
+    grid = resolve_tiling((height, width), model, tile=tile, overlap=overlap)
+    multiple = int(getattr(model, "size_multiple", 1) or 1)
+    halo = -(-int(grid.overlap) // multiple) * multiple
+    chunk = max(-(-int(chunk) // multiple) * multiple, halo)
+    chunks = (_aligned_chunks(height, chunk, halo), _aligned_chunks(width, chunk, halo))
+    nodata = _nodata_of(da)
+    name = str(da.name) if da.name is not None else "DataArray"
+    data = da.data if isinstance(da.data, dsa.Array) else dsa.from_array(np.asarray(da.data), chunks=-1)
+    bands = [data] if da.ndim == 2 else [data[b] for b in range(da.shape[0])]
+    results, input_tags = [], {}
+    for b, raw in enumerate(bands):
+        raw = raw.rechunk(chunks)
+        intensity = raw.map_blocks(_to_intensity_block, units, nodata, dtype=np.float32)
+        sample = np.asarray(array_sample(intensity, intensity > 0).compute())
+        if sample.size == 0:
+            raise InputError(f"{name}: band {b + 1} has no valid (finite, positive, not nodata) pixel")
+        log_offset = float(model.scene_log_offset(sample))
+        scene = _DataArrayScene(name, dict(da.attrs), intensity, height, width)
+        info, corr, notes = describe_speckle(scene, 1, looks=looks)
+        if not getattr(model, "conditioned", False):
+            notes = [n for n in notes if "speckle correlation" not in n]
+        cond_looks, cond_corr, more = condition_for_model(model, info, corr, name)
+        for note in notes + more:
+            warnings.warn(note, InferenceWarning, stacklevel=2)
+        if b == 0:
+            input_tags = speckle_tags(info, corr, prefix="input_")
+        # No halo along an axis held in one chunk (nothing to overlap there).
+        depth = {axis: halo if len(chunks[axis]) > 1 else 0 for axis in (0, 1)}
+        results.append(dsa.map_overlap(
+            _despeckle_block, raw, depth=depth, boundary="none", trim=True, dtype=np.float32,
+            meta=np.empty((0, 0), np.float32), model=model, units=units, nodata=nodata, log_offset=log_offset,
+            condition=(cond_looks, cond_corr), tile=tile, overlap=overlap, threads=threads, bf16=bf16,
+            channels_last=channels_last,
+        ))
+    out = results[0] if da.ndim == 2 else dsa.stack(results)
+    method, sha = model_provenance(model)
+    attrs = {k: v for k, v in without_provenance(da.attrs).items() if str(k).strip().lower() not in SPECKLE_TAGS}
+    attrs.update(input_tags)
+    attrs.update(provenance_tags(method, model_sha256=sha, tiling=f"dask chunks {chunk}x{chunk}, halo {halo}; "
+                                                                  + tiling_text(grid)))
+    result = xr.DataArray(out, coords=da.coords, dims=da.dims, name=da.name, attrs=attrs)
+    for key in ("_FillValue", "grid_mapping"):
+        if key in da.encoding:
+            result.encoding[key] = da.encoding[key]
+    return result
+
+
+@dataclasses.dataclass
+class _Like:
+    """The source description :func:`despeck.raster.open_output` copies, taken from a DataArray."""
+
+    width: int
+    height: int
+    band_count: int
+    crs: object
+    transform: object
+    nodata: object
+    tags: dict
+    descriptions: tuple
+    units: str
+    path: object = None
+
+
+def write_dataarray(da, path, *, units="intensity", overwrite=False, cog=False, client=None) -> pathlib.Path:
+    """Write a (lazy) DataArray from :func:`despeckle_dataarray` as a tiled GeoTIFF or a COG.
+
+    The chunks are computed a row of chunks at a time (on ``client`` if given, else
+    Dask's current scheduler) and written through :func:`despeck.raster.open_output`:
+    the output is claimed, written to a temporary file beside ``path``, read back and
+    renamed (with ``cog``, converted by GDAL's COG driver with overviews first). CRS,
+    transform, nodata, band descriptions and attributes (as tags) are the DataArray's.
+
+    Parameters
+    ----------
+    da : xarray.DataArray
+        ``(y, x)`` or ``(band, y, x)`` samples in ``units``, georeferenced by rioxarray.
+    path : path-like
+        Destination GeoTIFF.
+    units : {'intensity', 'amplitude', 'db'}
+        Units of the samples and of the file.
+    overwrite, cog : bool
+        As for :func:`despeck.inference.despeckle_file`.
+    client : distributed.Client, optional
+
+    Returns
+    -------
+    pathlib.Path
+    """
+    from rasterio.windows import Window
+
+    from .provenance import PREFIX
+    from .raster import check_units, open_output, to_intensity
+
+    if not isinstance(da, xr.DataArray) or da.ndim not in (2, 3):
+        raise InputError(f"write_dataarray expects a DataArray of shape (y, x) or (band, y, x), got {da!r:.80}")
+    units = check_units(units, output=True)
+    rio = da.rio
+    nodata = _nodata_of(da)
+    long_name = da.attrs.get("long_name")
+    n_bands = 1 if da.ndim == 2 else int(da.shape[0])
+    descriptions = (tuple(long_name) if isinstance(long_name, (tuple, list))
+                    else (long_name,) * n_bands if isinstance(long_name, str) else ())
+    tags = {k: str(v) for k, v in da.attrs.items()
+            if not str(k).startswith("_") and k not in ("scale_factor", "add_offset", "long_name", "units")}
+    like = _Like(int(da.shape[-1]), int(da.shape[-2]), n_bands, rio.crs, rio.transform(recalc=True), nodata,
+                 tags, descriptions, units)
+    data = da.data if isinstance(da.data, dsa.Array) else dsa.from_array(np.asarray(da.data), chunks=-1)
+    if data.ndim == 2:
+        data = data[None]
+    row_chunks, col_chunks = data.chunks[1], data.chunks[2]
+    compute = client.compute if client is not None else None
+    with open_output(path, like, units=units, band_count=n_bands, overwrite=overwrite, cog=cog) as writer:
+        # The record despeckle_dataarray made (provenance, the input's looks) is the output's.
+        writer.update_tags(**{k: v for k, v in tags.items() if k.startswith((PREFIX, "input_"))})
+        for b in range(n_bands):
+            r0 = 0
+            for i, h in enumerate(row_chunks):
+                blocks = [data.blocks[b, i, j] for j in range(len(col_chunks))]
+                values = ([f.result() for f in compute(blocks)] if compute is not None else dask.compute(*blocks))
+                c0 = 0
+                for block, w in zip(values, col_chunks):
+                    block = np.asarray(block)[0]
+                    intensity, ok = to_intensity(block, units)
+                    if nodata is not None and not math.isnan(nodata):
+                        ok &= block != nodata
+                    writer.write(intensity, Window(c0, r0, w, h), band=b + 1, valid=ok)
+                    c0 += w
+                r0 += h
+    return pathlib.Path(path)
