@@ -247,8 +247,9 @@ class TrainerConfig:
     global batch: each process takes ``batch_size / (processes_per_node * nodes)``
     patches of it (it must divide evenly), so a run draws the same patches and takes the
     same steps whatever the number of processes. ``threads`` (per process) defaults to
-    the cores this process may use divided by ``processes_per_node``, and a setting that
-    would put more threads than usable cores on a machine is refused.
+    the cores this process may use divided by ``processes_per_node``; with several
+    processes per node, a setting that would put more threads than usable cores on a
+    machine is refused.
     """
 
     seed: int = 0

@@ -125,18 +125,18 @@ def process_layout(config: TrainConfig) -> ProcessLayout:
     LOCAL_RANK``, from the environment variables Lightning's launcher (or a cluster's)
     sets; the first process of a node has no ``LOCAL_RANK`` until it starts the others.
     Threads: ``trainer.threads``, else the usable cores divided by the processes of a
-    node (at least 1); a setting that puts more threads on a machine than it has
-    usable cores is refused (processes competing for cores lose their time slices at
-    every synchronisation).
+    node (at least 1); with several processes per node, a setting that puts more
+    threads on a machine than it has usable cores is refused (processes competing for
+    cores lose their time slices at every synchronisation).
     """
     t = config.trainer
     per_node, nodes = int(t.processes_per_node), int(t.nodes)
     cores = usable_cores()
-    if per_node > cores:
+    if per_node > 1 and per_node > cores:
         raise ConfigError(f"config key trainer.processes_per_node: {per_node} processes exceed the {cores} usable "
                           "cores of this machine")
     threads = int(t.threads) if t.threads else max(1, cores // per_node)
-    if threads * per_node > cores:
+    if per_node > 1 and threads * per_node > cores:
         raise ConfigError(f"config key trainer.threads: {threads} threads x {per_node} processes "
                           f"(trainer.processes_per_node) exceed the {cores} usable cores; set trainer.threads "
                           f"to {max(1, cores // per_node)} or null")
