@@ -47,9 +47,14 @@ def test_ranks_together_draw_the_single_process_batches(world):
 
 def test_process_layout_threads_ranks_and_refusals(monkeypatch):
     monkeypatch.setattr(trainer_module, "usable_cores", lambda: 8)
-    for key in ("LOCAL_RANK", "NODE_RANK", "GROUP_RANK"):
+    for key in ("LOCAL_RANK", "NODE_RANK", "GROUP_RANK", "MASTER_ADDR", "MASTER_PORT"):
         monkeypatch.delenv(key, raising=False)
     cfg = load_config(TINY, ["trainer.threads=null", "trainer.processes_per_node=4", "trainer.nodes=2"])
+    with pytest.raises(ConfigError, match="MASTER_ADDR, MASTER_PORT, NODE_RANK not set"):
+        process_layout(cfg)  # several machines: nothing guessed
+    monkeypatch.setenv("MASTER_ADDR", "127.0.0.1")
+    monkeypatch.setenv("MASTER_PORT", "29500")
+    monkeypatch.setenv("NODE_RANK", "0")
     layout = process_layout(cfg)
     assert (layout.world, layout.rank, layout.threads) == (8, 0, 2)  # 8 usable cores // 4 processes
     # Lightning's numbering: NODE_RANK * processes_per_node + LOCAL_RANK.

@@ -141,6 +141,12 @@ def process_layout(config: TrainConfig) -> ProcessLayout:
                           f"(trainer.processes_per_node) exceed the {cores} usable cores; set trainer.threads "
                           f"to {max(1, cores // per_node)} or null")
     rank = 0
+    if nodes > 1:
+        missing = [k for k in ("MASTER_ADDR", "MASTER_PORT", "NODE_RANK") if not os.environ.get(k)]
+        if missing:
+            raise ConfigError(f"config key trainer.nodes: training on {nodes} machines needs the environment "
+                              f"variables MASTER_ADDR, MASTER_PORT and NODE_RANK on each; {', '.join(missing)} "
+                              "not set (see the README, 'Several processes or machines')")
     if per_node * nodes > 1:
         try:
             node = int(os.environ.get("NODE_RANK", os.environ.get("GROUP_RANK", 0)))
