@@ -247,7 +247,11 @@ def apply_many(inputs, outputs, model_path, client=None, *, threads=1, overwrite
     if not todo:
         return results
     run = uuid.uuid4().hex[:8]
-    with open_client(client, threads_per_worker=1) as c:
+    from .cpu import usable_cores
+
+    # A local cluster gets one single-threaded worker per ``threads`` usable cores, so
+    # tasks of ``threads`` torch threads each never oversubscribe the machine.
+    with open_client(client, workers=max(1, usable_cores() // threads), threads_per_worker=1) as c:
         futures = {}
         for i in todo:
             f = c.submit(_apply_one, str(inputs[i]), str(outputs[i]), str(model_path), options,

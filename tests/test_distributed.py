@@ -133,6 +133,10 @@ def test_chunked_dataarray_equals_the_streamed_array(tmp_path, name, looks):
     rel = np.abs(y[valid] - ref[valid]) / ref[valid]
     assert rel.max() <= 1e-5  # the tolerance: float rounding
     assert not np.allclose(y[valid], x[valid], rtol=0.05)  # it did filter
+    # ... and the file streamed by despeckle_file (looks from the same 'looks' tag).
+    with rasterio.open(despeckle_file(path, tmp_path / "streamed.tif", model, threads=1, progress=False)) as ds:
+        streamed = ds.read(1)
+    assert (np.abs(y[valid] - streamed[valid]) / streamed[valid]).max() <= 1e-5
     assert np.array_equal(y[~valid], x[~valid])  # nodata kept
     # Coordinates, CRS, transform, nodata and attributes kept (read by rioxarray).
     assert out.dims == da.dims and all(np.array_equal(out[c], da[c]) for c in ("x", "y"))
