@@ -87,6 +87,32 @@ def test_create_model_rejects_bad_arguments():
     assert net.architecture == "unet-s" and net.architecture_kwargs == {"widths": [4, 8], "condition_channels": 0}
 
 
+def test_registry_keeps_one_default_configuration_per_entry():
+    # The decorator records name, constructor, full defaults and description once per
+    # variant; the defaults are what create_model builds when nothing is overridden.
+    from despeck.models import UNet, model_defaults, model_description, model_entry, register_model
+
+    entry = model_entry("unet-cond-s")
+    assert entry.name == "unet-cond-s" and entry.constructor is UNet
+    assert dict(entry.defaults) == {"widths": [16, 32, 64], "condition_channels": 3}
+    assert model_description("unet-cond-s") == entry.description and "conditioned" in entry.description
+    with pytest.raises(TypeError):
+        entry.defaults["widths"] = [1, 2]  # the record is read-only
+    defaults = model_defaults("unet-cond-s")
+    defaults["widths"].append(128)  # a caller's copy never changes the record
+    assert model_defaults("unet-cond-s")["widths"] == [16, 32, 64]
+    net = create_model("unet-cond-s")
+    assert net.architecture_kwargs == {"widths": [16, 32, 64], "condition_channels": 3}
+    assert model_defaults("logcnn-xs") == {"depth": 6, "width": 16, "dilations": None}
+    with pytest.raises(InputError, match="unknown model 'nope'"):
+        model_entry("nope")
+    # A name is registered once; a default must be an argument of the constructor.
+    with pytest.raises(InputError, match="'unet-s' is already registered"):
+        register_model("unet-s", widths=[4, 8])
+    with pytest.raises(InputError, match="has no argument 'widht'"):
+        register_model("unet-test-only", widht=[4, 8])(UNet)
+    assert "unet-test-only" not in list_models()
+
 def test_logcnn_crop_of_output_equals_output_of_crop():
     # No per-tile statistics: with a fixed log offset, a tile with a margin of half the
     # receptive field reproduces the whole-scene output exactly (tiling contract).

@@ -18,7 +18,8 @@ Examples
 
 from __future__ import annotations
 
-from .registry import create_model, list_models, model_defaults, model_description, register_model
+from .registry import (ModelEntry, create_model, list_models, model_defaults, model_description, model_entry,
+                       register_model)
 from .wrapper import CONDITION_CHANNELS, DEFAULT_LOG_SCALE, Despeckler
 from .bundled import BUNDLED_MODELS, bundled_model_path, resolve_model_path
 
@@ -30,6 +31,8 @@ from .unet import UNet  # noqa: E402
 
 __all__ = [
     "register_model",
+    "ModelEntry",
+    "model_entry",
     "create_model",
     "list_models",
     "model_defaults",

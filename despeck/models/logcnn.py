@@ -29,6 +29,22 @@ from .registry import check_int, register_model
 __all__ = ["LogCNN"]
 
 
+def _params(depth, width):
+    return (9 + 1) * width + (depth - 2) * (9 * width + 1) * width + 9 * width + 1
+
+
+@register_model(
+    "logcnn-m", depth=17, width=64,
+    description=f"residual log CNN, 17 layers x 64 channels (~{_params(17, 64) / 1e3:.0f}k parameters)",
+)
+@register_model(
+    "logcnn-s", depth=10, width=40,
+    description=f"residual log CNN, 10 layers x 40 channels (~{_params(10, 40) / 1e3:.0f}k parameters), the default",
+)
+@register_model(
+    "logcnn-xs", depth=6, width=16,
+    description=f"residual log CNN, 6 layers x 16 channels (~{_params(6, 16) / 1e3:.0f}k parameters), for tests and quick trials",
+)
 class LogCNN(nn.Module):
     """Residual stack of 3x3 convolutions in the normalised log domain.
 
@@ -85,21 +101,3 @@ class LogCNN(nn.Module):
 
     def extra_repr(self) -> str:
         return f"depth={self.depth}, width={self.width}, receptive_field={self.receptive_field}"
-
-
-def _params(depth, width):
-    return (9 + 1) * width + (depth - 2) * (9 * width + 1) * width + 9 * width + 1
-
-
-register_model(
-    "logcnn-xs", LogCNN, depth=6, width=16,
-    description=f"residual log CNN, 6 layers x 16 channels (~{_params(6, 16) / 1e3:.0f}k parameters), for tests and quick trials",
-)
-register_model(
-    "logcnn-s", LogCNN, depth=10, width=40,
-    description=f"residual log CNN, 10 layers x 40 channels (~{_params(10, 40) / 1e3:.0f}k parameters), the default",
-)
-register_model(
-    "logcnn-m", LogCNN, depth=17, width=64,
-    description=f"residual log CNN, 17 layers x 64 channels (~{_params(17, 64) / 1e3:.0f}k parameters)",
-)

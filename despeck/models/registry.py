@@ -1,12 +1,21 @@
 """The model registry: named network variants and the ``create_model`` factory.
 
 Each architecture family lives in its own module and registers its size variants
-here under names that encode the size (``logcnn-s``, ``unet-m``). A variant is a
-class plus default keyword arguments; :func:`create_model` merges the caller's
-overrides into those defaults, builds the network and records the name and the
-fully resolved arguments on it (``network.architecture``,
-``network.architecture_kwargs``) so the model file can rebuild it exactly without
-executing anything stored in the file.
+with the :func:`register_model` decorator under names that encode the size
+(``logcnn-s``, ``unet-m``)::
+
+    @register_model("unet-m", widths=[16, 32, 64, 128], description="...")
+    @register_model("unet-s", widths=[16, 32, 64], description="...")
+    class UNet(nn.Module):
+        ...
+
+Every registration records one :class:`ModelEntry`, the variant's default
+configuration: its name, constructor, the full default keyword arguments (the
+constructor's own defaults with the variant's on top) and a one-line description.
+:func:`create_model` merges the caller's overrides into those defaults, builds the
+network and records the name and the fully resolved arguments on it
+(``network.architecture``, ``network.architecture_kwargs``) so the model file can
+rebuild it exactly without executing anything stored in the file.
 
 Arguments can come from a model file or a config anyone may have written, so
 :func:`create_model` checks them against the ceilings below *before* building: first
@@ -19,15 +28,18 @@ compared with them before anything is allocated.
 
 from __future__ import annotations
 
+import copy
 import inspect
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from types import MappingProxyType
+from typing import Callable, Mapping
 
 import torch
 from torch.overrides import TorchFunctionMode
 
 from ..errors import InputError
 
-__all__ = ["register_model", "create_model", "list_models", "model_defaults", "model_description",
+__all__ = ["ModelEntry", "register_model", "model_entry", "create_model", "list_models", "model_defaults", "model_description",
            "weight_shapes", "ARGUMENT_LIMITS", "MAX_ARGUMENT", "MAX_LIST_LENGTH", "MAX_PARAMETERS",
            "MAX_RECEPTIVE_FIELD", "MAX_SIZE_MULTIPLE"]
 
@@ -51,33 +63,84 @@ MAX_SIZE_MULTIPLE = 256
 
 
 @dataclass(frozen=True)
-class _Variant:
-    cls: type
-    defaults: dict = field(default_factory=dict)
+class ModelEntry:
+    """What the registry knows of one network variant: its default configuration.
+
+    Attributes
+    ----------
+    name : str
+        Registered name; encodes the family and the size, e.g. ``'logcnn-s'``.
+    constructor : callable
+        ``constructor(**kwargs) -> nn.Module``: an ``nn.Module`` subclass (or a factory)
+        taking keyword arguments only; the network exposes an odd integer
+        ``receptive_field``.
+    defaults : Mapping
+        Every keyword argument the variant is built with when none is overridden (the
+        constructor's own defaults, then the variant's); read-only.
+    description : str
+        One line shown by :func:`model_description`.
+    """
+
+    name: str
+    constructor: Callable
+    defaults: Mapping
     description: str = ""
 
 
-_REGISTRY: dict[str, _Variant] = {}
+_REGISTRY: dict[str, ModelEntry] = {}
 
 
-def register_model(name: str, cls: type, *, description: str = "", **defaults) -> None:
-    """Register a network variant ``name`` built as ``cls(**defaults, **overrides)``.
+def register_model(name: str, constructor: Callable = None, *, description: str = "", **defaults):
+    """Register the network variant ``name``, built as ``constructor(**defaults, **overrides)``.
+
+    Used as a decorator on the network class (or a factory function), once per size
+    variant; the decorated object is returned unchanged. Called with ``constructor``
+    it registers at once and returns ``constructor``.
 
     Parameters
     ----------
     name : str
         Registry name; encodes the family and the size, e.g. ``"logcnn-s"``.
-    cls : type
-        An ``nn.Module`` subclass whose constructor takes keyword arguments only and
-        that exposes an odd integer ``receptive_field``.
+    constructor : callable, optional
+        An ``nn.Module`` subclass (or factory) whose arguments are keyword arguments
+        and whose networks expose an odd integer ``receptive_field``; omitted when used
+        as a decorator.
     description : str
         One line shown by :func:`model_description`.
     **defaults
-        Constructor arguments of this variant.
+        Constructor arguments of this variant (they must be arguments of the constructor).
+
+    Returns
+    -------
+    callable
+        The decorator, or ``constructor`` when it is given.
+
+    Raises
+    ------
+    InputError
+        ``name`` is already registered, or a default is not an argument of the constructor.
     """
     if name in _REGISTRY:
         raise InputError(f"model name {name!r} is already registered")
-    _REGISTRY[name] = _Variant(cls, dict(defaults), description)
+
+    def register(constructor):
+        if name in _REGISTRY:
+            raise InputError(f"model name {name!r} is already registered")
+        params = inspect.signature(constructor).parameters
+        takes_any = any(p.kind is inspect.Parameter.VAR_KEYWORD for p in params.values())
+        unknown = sorted(set(defaults) - set(params))
+        if unknown and not takes_any:
+            raise InputError(f"model {name!r}: {constructor.__name__} has no argument {unknown[0]!r}")
+        resolved = {
+            k: p.default for k, p in params.items()
+            if p.default is not inspect.Parameter.empty
+            and p.kind in (inspect.Parameter.KEYWORD_ONLY, inspect.Parameter.POSITIONAL_OR_KEYWORD)
+        }
+        resolved.update(defaults)
+        _REGISTRY[name] = ModelEntry(name, constructor, MappingProxyType(resolved), description)
+        return constructor
+
+    return register if constructor is None else register(constructor)
 
 
 def list_models() -> list[str]:
@@ -85,7 +148,8 @@ def list_models() -> list[str]:
     return sorted(_REGISTRY)
 
 
-def _variant(name) -> _Variant:
+def model_entry(name) -> ModelEntry:
+    """The :class:`ModelEntry` registered as ``name``; :class:`InputError` listing the names otherwise."""
     try:
         return _REGISTRY[name]
     except (KeyError, TypeError):
@@ -95,20 +159,13 @@ def _variant(name) -> _Variant:
 
 
 def model_defaults(name: str) -> dict:
-    """The constructor arguments variant ``name`` uses when none are overridden."""
-    v = _variant(name)
-    params = inspect.signature(v.cls.__init__).parameters
-    resolved = {
-        k: p.default for k, p in params.items()
-        if k != "self" and p.default is not inspect.Parameter.empty
-    }
-    resolved.update(v.defaults)
-    return resolved
+    """The constructor arguments variant ``name`` uses when none are overridden (a new dict)."""
+    return copy.deepcopy(dict(model_entry(name).defaults))
 
 
 def model_description(name: str) -> str:
     """One-line description of variant ``name``."""
-    return _variant(name).description
+    return model_entry(name).description
 
 
 def create_model(name: str, **kwargs):
@@ -124,9 +181,9 @@ def create_model(name: str, **kwargs):
     InputError
         Unknown name, unknown argument (the message lists the allowed ones) or a bad value.
     """
-    v = _variant(name)
+    entry = model_entry(name)
     resolved, _ = _checked_arguments(name, kwargs)
-    network = v.cls(**resolved)
+    network = entry.constructor(**resolved)
     network.architecture = name
     network.architecture_kwargs = {k: _plain(val) for k, val in resolved.items()}
     return network
@@ -196,7 +253,7 @@ class _ShapesOnly(TorchFunctionMode):
 def _meta_shapes(name, resolved):
     """Build variant ``name`` on the meta device, check its size; list of (tensor name, shape)."""
     with torch.device("meta"), _ShapesOnly():
-        network = _variant(name).cls(**resolved)
+        network = model_entry(name).constructor(**resolved)
     count = sum(p.numel() for p in network.parameters())
     if count > MAX_PARAMETERS:
         raise InputError(

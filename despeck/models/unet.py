@@ -38,6 +38,30 @@ def _block(cin, cout):
     )
 
 
+@register_model(
+    "unet-cond-m", widths=[16, 32, 48, 64], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 3 downsamplings, 16-32-48-64 channels",
+)
+@register_model(
+    "unet-cond-s", widths=[16, 32, 64], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 16-32-64 channels (~118k parameters)",
+)
+@register_model(
+    "unet-cond-xs", widths=[8, 16], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 8-16 channels, for tests",
+)
+@register_model(
+    "unet-m", widths=[16, 32, 64, 128],
+    description="residual U-Net, 3 downsamplings, 16-32-64-128 channels (~470k parameters)",
+)
+@register_model(
+    "unet-s", widths=[16, 32, 64],
+    description="residual U-Net, 2 downsamplings, 16-32-64 channels (~117k parameters)",
+)
+@register_model(
+    "unet-xs", widths=[8, 16],
+    description="residual U-Net, 1 downsampling, 8-16 channels (~6k parameters), for tests and quick trials",
+)
 class UNet(nn.Module):
     """Residual U-Net in the normalised log domain.
 
@@ -137,29 +161,3 @@ class UNet(nn.Module):
     def extra_repr(self) -> str:
         return (f"widths={self.widths}, condition_channels={self.condition_channels}, "
                 f"receptive_field={self.receptive_field}")
-
-
-register_model(
-    "unet-xs", UNet, widths=[8, 16],
-    description="residual U-Net, 1 downsampling, 8-16 channels (~6k parameters), for tests and quick trials",
-)
-register_model(
-    "unet-s", UNet, widths=[16, 32, 64],
-    description="residual U-Net, 2 downsamplings, 16-32-64 channels (~117k parameters)",
-)
-register_model(
-    "unet-m", UNet, widths=[16, 32, 64, 128],
-    description="residual U-Net, 3 downsamplings, 16-32-64-128 channels (~470k parameters)",
-)
-register_model(
-    "unet-cond-xs", UNet, widths=[8, 16], condition_channels=3,
-    description="looks- and correlation-conditioned residual U-Net, 8-16 channels, for tests",
-)
-register_model(
-    "unet-cond-s", UNet, widths=[16, 32, 64], condition_channels=3,
-    description="looks- and correlation-conditioned residual U-Net, 16-32-64 channels (~118k parameters)",
-)
-register_model(
-    "unet-cond-m", UNet, widths=[16, 32, 48, 64], condition_channels=3,
-    description="looks- and correlation-conditioned residual U-Net, 3 downsamplings, 16-32-48-64 channels",
-)
