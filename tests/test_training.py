@@ -22,6 +22,7 @@ from despeck.errors import ConfigError, ModelFileError, RasterError
 from despeck.models import create_model, load_model_file
 from despeck.synthetic import make_scene
 from despeck.training import apply_overrides, config_from_dict, dump_config, load_config, parse_duration, train
+from despeck.training.config import config_to_dict
 from despeck.training.data import TrainingData
 from despeck.training.losses import DespeckleLoss, gamma_nll, log_mse, validation_fidelity
 from despeck.training.module import DespeckleModule
@@ -86,6 +87,35 @@ def test_config_rejects_unknown_keys_and_wrong_types():
     with pytest.raises(ConfigError, match="no training data"):
         config_from_dict({})
 
+
+def test_config_values_are_read_as_before_and_ranges_name_the_key():
+    # Integers take whole floats but no text or true/false; text takes numbers; one path is a list.
+    cfg = config_from_dict({"data": {"synthetic_scenes": 1, "train": "a.tif", "batch_size": 8.0},
+                            "trainer": {"precision": 32}, "model": None})
+    assert cfg.data.train == ["a.tif"] and cfg.data.batch_size == 8 and isinstance(cfg.data.batch_size, int)
+    assert cfg.trainer.precision == "32" and cfg.model.name == "logcnn-s"
+    for values, match in [
+        ({"batch_size": True}, r"data\.batch_size: expected an integer, got True"),
+        ({"batch_size": "16"}, r"data\.batch_size: expected an integer, got '16'"),
+        ({"augment": "yes"}, r"data\.augment: expected true/false, got 'yes'"),
+        ({"val_fraction": "nan"}, r"data\.val_fraction: expected a number, got 'nan'"),
+        ({"val_fraction": 1}, r"data\.val_fraction: must be between 0 and 1 \(exclusive\), got 1$"),
+        ({"patch_size": 4}, r"data\.patch_size: must be at least 8 pixels, got 4$"),
+        ({"change_window": 4}, r"data\.change_window: must be an odd number of pixels >= 3, got 4$"),
+        ({"units": "dn"}, r"data\.units: must be one of intensity, amplitude, db, complex \(or null to detect\), got 'dn'"),
+    ]:
+        with pytest.raises(ConfigError, match=match) as info:
+            config_from_dict({"data": {"synthetic_scenes": 1, **values}})
+        assert "\n" not in str(info.value)
+    with pytest.raises(ConfigError, match=r"trainer\.threads: must be a positive integer or null \(all usable cores\)"):
+        config_from_dict({"data": {"synthetic_scenes": 1}, "trainer": {"threads": 0}})
+    with pytest.raises(ConfigError, match=r"config section data: expected a mapping of keys, got 5"):
+        config_from_dict({"data": 5})
+    # Sections stay mutable (no re-validation on assignment) and dump to plain mappings.
+    cfg.optim.lr = 0.5
+    dumped = config_to_dict(cfg)
+    assert dumped["optim"]["lr"] == 0.5 and dumped["data"]["train"] == ["a.tif"]
+    assert config_from_dict(dumped) == cfg
 
 def test_durations_and_overrides():
     assert parse_duration("8h") == 8 * 3600 and parse_duration("90s") == 90

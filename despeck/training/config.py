@@ -1,11 +1,13 @@
-"""The training configuration: a YAML file whose sections map onto typed dataclasses.
+"""The training configuration: a YAML file whose sections map onto pydantic models.
 
 One file describes a whole run -- data, model, speckle, loss, optimisation, budget,
 trainer settings and output -- so a run can be repeated from the ``config.yaml`` saved
-beside its results. Every section is a dataclass with defaults; a key the dataclass
-does not have, or a value of the wrong type, raises :class:`~despeck.errors.ConfigError`
-naming the key and what is allowed. ``--set section.key=value`` overrides on the command
-line are parsed as YAML values, so ``--set speckle.looks=[1,4]`` gives a list.
+beside its results. Every section is a pydantic (v2) model with defaults: unknown keys are
+forbidden, value ranges are field constraints and combinations of keys are checked by a
+validator of the whole config; any problem raises :class:`~despeck.errors.ConfigError`
+on one line naming the key and what is allowed (``config key section.key: ...``).
+``--set section.key=value`` overrides on the command line are parsed as YAML values, so
+``--set speckle.looks=[1,4]`` gives a list.
 
 Example
 -------
@@ -27,16 +29,16 @@ of the same area (``data.pairs``) or sub-looks of single-look complex scenes
 
 from __future__ import annotations
 
-import dataclasses
 import math
 import re
 import types
 import typing
-from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Optional, Union
+from typing import Annotated, Any, Literal, Optional, Union
 
 import yaml
+from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, FiniteFloat, StrictBool, ValidationError,
+                      field_validator, model_validator)
 
 from ..errors import ConfigError
 
@@ -65,10 +67,67 @@ SCHEDULES = ("plateau", "cosine", "constant")
 PRECISIONS = ("32", "bf16")
 TAPERS = ("hamming", "hann", "kaiser", "none")
 SPLIT_AXES = ("azimuth", "range")
+UNITS = ("intensity", "amplitude", "db", "complex")
 
 
-@dataclass
-class DataConfig:
+# --------------------------------------------------------------------------- value types
+# What YAML hands over is checked by pydantic; these types only say how strict each kind
+# of value is: integers accept whole floats (``max_steps: 1e4``) but no text or true/false,
+# numbers accept numbers written as text (``"1e-3"``) but no true/false and nothing
+# infinite, text accepts numbers (``precision: 32``), a list of text accepts one item.
+
+def _fail(key, message):
+    raise ConfigError(f"config key {key}: {message}")
+
+
+def _not_flag_or_text(value):
+    if isinstance(value, (bool, str)):
+        raise ValueError("expected an integer")
+    return value
+
+
+def _not_flag(value):
+    if isinstance(value, bool):
+        raise ValueError("expected a number")
+    return value
+
+
+def _number_as_text(value):
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return str(value)
+    return value
+
+
+def _one_as_list(value):
+    if isinstance(value, (str, int, float)) and not isinstance(value, bool):
+        return [value]  # a single path is a one-element list
+    return value
+
+
+Integer = Annotated[int, BeforeValidator(_not_flag_or_text)]
+Number = Annotated[FiniteFloat, BeforeValidator(_not_flag)]
+Text = Annotated[str, BeforeValidator(_number_as_text)]
+TextList = Annotated[list[Text], BeforeValidator(_one_as_list)]
+Flag = StrictBool
+
+
+def _choice(values):
+    """A text field that takes one of ``values`` (numbers are read as text, e.g. ``precision: 32``)."""
+    return Annotated[Literal[values], BeforeValidator(_number_as_text)]
+
+
+def _limit(default, says, **constraints):
+    """A field with range ``constraints`` (pydantic's ge/gt/le/lt); ``says`` completes "must be ..." in errors."""
+    return Field(default, description=says, **constraints)
+
+
+class _Section(BaseModel):
+    """A config section: unknown keys are refused, assignments are not re-validated."""
+
+    model_config = ConfigDict(extra="forbid", validate_assignment=False, protected_namespaces=())
+
+
+class DataConfig(_Section):
     """Where clean references come from and how patches are drawn.
 
     ``train`` lists files, folders (every raster inside, not recursive) or glob patterns
@@ -100,34 +159,63 @@ class DataConfig:
     for the same cores. With more cores, workers run with one torch thread each.
     """
 
-    train: list[str] = field(default_factory=list)
-    validation: list[str] = field(default_factory=list)
-    units: Optional[str] = None
-    band: int = 1
-    synthetic_scenes: int = 0
-    synthetic_size: int = 512
+    train: TextList = Field(default_factory=list)
+    validation: TextList = Field(default_factory=list)
+    units: Optional[_choice(UNITS)] = Field(None, description=f"one of {', '.join(UNITS)} (or null to detect)")
+    band: Integer = _limit(1, "a positive integer", ge=1)
+    synthetic_scenes: Integer = _limit(0, ">= 0", ge=0)
+    synthetic_size: Integer = _limit(512, "a positive integer", ge=1)
     #: radar-like scene families (despeck.scene_families) the procedural scenes cycle
     #: through; empty: the lowland scenes of despeck.synthetic
-    synthetic_families: list[str] = field(default_factory=list)
-    patch_size: int = 64
-    batch_size: int = 16
-    patches_per_epoch: int = 2048
-    val_patches: int = 64
-    val_fraction: float = 0.15
-    min_valid_fraction: float = 1.0
-    augment: bool = True
-    offset_jitter: float = 0.3
-    num_workers: int = 0
-    max_pixels: int = 200_000_000
-    pairs: list[list[str]] = field(default_factory=list)
-    change_window: int = 7
-    change_false_alarm: float = 0.01
-    slc: list[str] = field(default_factory=list)
-    sublooks: int = 2
-    split_axis: str = "azimuth"
-    slc_oversampling: float = 1.0
-    slc_taper: Optional[str] = None
-    slc_centre: float = 0.0
+    synthetic_families: TextList = Field(default_factory=list)
+    patch_size: Integer = _limit(64, "at least 8 pixels", ge=8)
+    batch_size: Integer = _limit(16, "a positive integer", ge=1)
+    patches_per_epoch: Integer = _limit(2048, "a positive integer", ge=1)
+    val_patches: Integer = _limit(64, "a positive integer", ge=1)
+    val_fraction: Number = _limit(0.15, "between 0 and 1 (exclusive)", gt=0, lt=1)
+    min_valid_fraction: Number = _limit(1.0, "in (0, 1]", gt=0, le=1)
+    augment: Flag = True
+    offset_jitter: Number = _limit(0.3, ">= 0 (nepers)", ge=0)
+    num_workers: Integer = _limit(0, ">= 0", ge=0)
+    max_pixels: Integer = _limit(200_000_000, "a positive integer", ge=1)
+    pairs: list[TextList] = Field(default_factory=list)
+    change_window: Integer = _limit(7, "an odd number of pixels >= 3", ge=3)
+    change_false_alarm: Number = _limit(0.01, "between 0 and 0.5", gt=0, lt=0.5)
+    slc: TextList = Field(default_factory=list)
+    sublooks: Integer = _limit(2, "at least 2 (one sub-look as input, another as target)", ge=2)
+    split_axis: _choice(SPLIT_AXES) = "azimuth"
+    slc_oversampling: Number = _limit(1.0, ">= 1 (sampling rate over bandwidth)", ge=1)
+    slc_taper: Optional[_choice(TAPERS)] = Field(None, description=f"one of {', '.join(TAPERS)} or null")
+    slc_centre: Number = _limit(0.0, "in [-0.5, 0.5] cycles per pixel", ge=-0.5, le=0.5)
+
+    @field_validator("synthetic_families")
+    @classmethod
+    def _known_families(cls, families):
+        if families:
+            from ..scene_families import SCENE_FAMILIES
+
+            unknown = [f for f in families if f not in SCENE_FAMILIES]
+            if unknown:
+                _fail("data.synthetic_families", f"unknown family {unknown[0]!r}; choose from {', '.join(SCENE_FAMILIES)}")
+        return families
+
+    @field_validator("pairs")
+    @classmethod
+    def _two_dates(cls, pairs):
+        for i, pair in enumerate(pairs, 1):
+            if len(pair) != 2:
+                _fail("data.pairs", f"pair {i} must be two files [date1, date2], got {pair!r}; "
+                                    "write pairs: [[date1.tif, date2.tif], ...]")
+            if Path(pair[0]).expanduser() == Path(pair[1]).expanduser():
+                _fail("data.pairs", f"pair {i} lists {pair[0]} twice; the two dates must be different acquisitions")
+        return pairs
+
+    @field_validator("change_window")
+    @classmethod
+    def _odd_window(cls, window):
+        if window % 2 == 0:
+            _fail("data.change_window", f"must be an odd number of pixels >= 3, got {window}")
+        return window
 
     @property
     def self_supervised(self) -> bool:
@@ -135,23 +223,30 @@ class DataConfig:
         return bool(self.pairs or self.slc)
 
 
-@dataclass
-class ModelConfig:
+class ModelConfig(_Section):
     """Which registered network to train (:func:`despeck.models.list_models`), with overrides."""
 
-    name: str = "logcnn-s"
-    kwargs: dict = field(default_factory=dict)
-    log_scale: float = 2.0
+    name: Text = "logcnn-s"
+    kwargs: dict[str, Any] = Field(default_factory=dict)
+    log_scale: Number = _limit(2.0, "positive", gt=0)
     #: keep strong isolated scatterers unfiltered in the exported model (false-alarm rate
     #: of the point test, e.g. 1e-4; null: off); see despeck.models.Despeckler
-    point_false_alarm: Optional[float] = 1e-4
+    point_false_alarm: Optional[Number] = _limit(1e-4, "in (0, 1) or null", gt=0, lt=1)
     #: start from the weights of a model file (a path, or "starter" for the bundled model)
     #: instead of a random initialisation; its architecture must match ``name``/``kwargs``
-    init: Optional[str] = None
+    init: Optional[Text] = None
+
+    @field_validator("name")
+    @classmethod
+    def _registered(cls, name):
+        from ..models import list_models  # torch import deferred until a config is checked
+
+        if name not in list_models():
+            _fail("model.name", f"unknown model {name!r}; choose one of: {', '.join(list_models())}")
+        return name
 
 
-@dataclass
-class SpeckleConfig:
+class SpeckleConfig(_Section):
     """Simulated speckle: ``looks`` is a number or a ``[min, max]`` range (uniform per patch).
 
     With ``data.pairs`` or ``data.slc`` nothing is simulated: ``looks`` is then the
@@ -167,31 +262,46 @@ class SpeckleConfig:
     smallest training value).
     """
 
-    looks: Union[float, list[float], str] = 1.0
-    val_looks: Optional[float] = None
-    correlated_fraction: float = 0.0
-    oversampling: Union[float, list[float]] = 1.25
-    taper: Union[str, list[str]] = "hamming"
+    looks: Union[Number, list[Number], Text] = Field(1.0, union_mode="left_to_right")
+    val_looks: Optional[Number] = _limit(None, "positive (> 0)", gt=0)
+    correlated_fraction: Number = _limit(0.0, "in [0, 1]", ge=0, le=1)
+    oversampling: Union[Number, list[Number]] = Field(1.25, union_mode="left_to_right")
+    taper: Union[Text, list[Text]] = Field("hamming", union_mode="left_to_right")
     #: how looks are drawn from a [min, max] range: uniform or log-uniform (more low looks)
-    looks_distribution: str = "uniform"
+    looks_distribution: _choice(("uniform", "log-uniform")) = "uniform"
     #: conditioned networks: noise added to the looks (relative, log scale) and to the
     #: correlation they are told, so they tolerate the estimation error of real scenes
-    condition_jitter: float = 0.03
+    condition_jitter: Number = _limit(0.03, "in [0, 0.5]", ge=0, le=0.5)
     #: conditioned networks: share of patches whose correlation is withheld (told
     #: "unknown"), so the model can run blind where a scene's correlation cannot be
     #: measured reliably
-    condition_dropout: float = 0.0
+    condition_dropout: Number = _limit(0.0, "in [0, 1]", ge=0, le=1)
     #: what correlated patches are compared with: "system", the speckle's mean (the
     #: clean reference convolved with the system's |PSF|^2, what a despeckler can
     #: recover), or "reference", the unblurred clean reference (asks for deconvolution)
-    correlated_target: str = "system"
+    correlated_target: _choice(("system", "reference")) = "system"
     #: validation patches drawn with the training mixture of looks and correlation
     #: (default: white speckle at val_looks)
-    val_mixture: bool = False
+    val_mixture: Flag = False
+
+    @field_validator("looks")
+    @classmethod
+    def _looks_form(cls, looks):
+        if isinstance(looks, str):
+            if looks != "auto":
+                _fail("speckle.looks", f"must be a number, a [min, max] range or auto, got {looks!r}")
+            return looks
+        values = looks if isinstance(looks, list) else [looks]
+        if len(values) not in (1, 2):
+            _fail("speckle.looks", f"must be a number or a [min, max] range, got {looks!r}")
+        if any(v <= 0 for v in values):
+            _fail("speckle.looks", f"must be positive (> 0), got {looks!r}")
+        if len(values) == 2 and values[0] > values[1]:
+            _fail("speckle.looks", f"range must be [min, max] with min <= max, got {looks!r}")
+        return looks
 
 
-@dataclass
-class LossConfig:
+class LossConfig(_Section):
     """Training loss: ``mse_log`` (default; optimises the dB-domain error directly) or ``gamma_nll``.
 
     ``gamma_nll`` needs no bias correction but its gradients are heavy-tailed while the
@@ -201,26 +311,24 @@ class LossConfig:
     it, Noise2Noise-style; the only choice with ``data.pairs`` / ``data.slc``). ``tv_weight`` adds a total-variation penalty on the log estimate.
     """
 
-    name: str = "mse_log"
-    target: str = "clean"
-    tv_weight: float = 0.0
+    name: _choice(LOSSES) = "mse_log"
+    target: _choice(TARGETS) = "clean"
+    tv_weight: Number = _limit(0.0, ">= 0", ge=0)
 
 
-@dataclass
-class OptimConfig:
+class OptimConfig(_Section):
     """Adam with an optional learning-rate schedule (``plateau`` on validation loss, ``cosine`` over max_epochs, ``constant``)."""
 
-    lr: float = 1e-3
-    weight_decay: float = 0.0
-    schedule: str = "plateau"
-    plateau_patience: int = 4
-    plateau_factor: float = 0.5
-    min_lr: float = 1e-5
-    grad_clip: float = 0.0
+    lr: Number = _limit(1e-3, "positive", gt=0)
+    weight_decay: Number = _limit(0.0, ">= 0", ge=0)
+    schedule: _choice(SCHEDULES) = "plateau"
+    plateau_patience: Integer = _limit(4, ">= 0", ge=0)
+    plateau_factor: Number = _limit(0.5, "between 0 and 1", gt=0, lt=1)
+    min_lr: Number = _limit(1e-5, ">= 0", ge=0)
+    grad_clip: Number = _limit(0.0, ">= 0", ge=0)
 
 
-@dataclass
-class BudgetConfig:
+class BudgetConfig(_Section):
     """When training stops: wall time (``"8h"``, ``"90s"``, ``"1h30m"``), epochs, steps, early stopping.
 
     Epochs are unlimited unless ``max_epochs`` is set. Training stops at an epoch boundary
@@ -228,14 +336,20 @@ class BudgetConfig:
     ``early_stopping`` is the number of epochs without validation improvement to wait (0: off).
     """
 
-    max_time: Optional[str] = None
-    max_epochs: Optional[int] = None
-    max_steps: Optional[int] = None
-    early_stopping: int = 0
+    max_time: Optional[Text] = None
+    max_epochs: Optional[Integer] = _limit(None, "a positive integer or null", ge=1)
+    max_steps: Optional[Integer] = _limit(None, "a positive integer or null", ge=1)
+    early_stopping: Integer = _limit(0, ">= 0 epochs (0 turns it off)", ge=0)
+
+    @field_validator("max_time")
+    @classmethod
+    def _duration(cls, max_time):
+        if max_time is not None:
+            parse_duration(max_time, "budget.max_time")
+        return max_time
 
 
-@dataclass
-class TrainerConfig:
+class TrainerConfig(_Section):
     """Run-time settings: seed, numeric precision, CPU threads, processes, progress display.
 
     ``precision: bf16`` trains under bfloat16 autocast (weights stay float32); it needs a
@@ -252,258 +366,98 @@ class TrainerConfig:
     machine is refused.
     """
 
-    seed: int = 0
-    precision: str = "32"
-    threads: Optional[int] = None
-    processes_per_node: int = 1
-    nodes: int = 1
-    progress: bool = True
-    log_every_n_steps: int = 20
+    seed: Integer = _limit(0, ">= 0", ge=0)
+    precision: _choice(PRECISIONS) = "32"
+    threads: Optional[Integer] = _limit(None, "a positive integer or null (all usable cores)", ge=1)
+    processes_per_node: Integer = _limit(1, "a positive integer", ge=1)
+    nodes: Integer = _limit(1, "a positive integer", ge=1)
+    progress: Flag = True
+    log_every_n_steps: Integer = _limit(20, "a positive integer", ge=1)
 
 
-@dataclass
-class OutputConfig:
+class OutputConfig(_Section):
     """Where results go: ``dir`` holds config.yaml, metrics.csv, checkpoints/ and the model file."""
 
-    dir: str = "runs/despeck"
-    model_file: str = "model.safetensors"
+    dir: Text = "runs/despeck"
+    model_file: Text = "model.safetensors"
+
+    @field_validator("dir")
+    @classmethod
+    def _folder(cls, folder):
+        if not folder:
+            _fail("output.dir", "must name a folder")
+        return folder
+
+    @field_validator("model_file")
+    @classmethod
+    def _plain_name(cls, name):
+        if not name or Path(name).name != name:
+            _fail("output.model_file", f"must be a plain file name inside output.dir, got {name!r}")
+        return name
 
 
-@dataclass
-class TrainConfig:
+class TrainConfig(_Section):
     """A whole training run; one attribute per YAML section."""
 
-    data: DataConfig = field(default_factory=DataConfig)
-    model: ModelConfig = field(default_factory=ModelConfig)
-    speckle: SpeckleConfig = field(default_factory=SpeckleConfig)
-    loss: LossConfig = field(default_factory=LossConfig)
-    optim: OptimConfig = field(default_factory=OptimConfig)
-    budget: BudgetConfig = field(default_factory=BudgetConfig)
-    trainer: TrainerConfig = field(default_factory=TrainerConfig)
-    output: OutputConfig = field(default_factory=OutputConfig)
+    data: DataConfig = Field(default_factory=DataConfig)
+    model: ModelConfig = Field(default_factory=ModelConfig)
+    speckle: SpeckleConfig = Field(default_factory=SpeckleConfig)
+    loss: LossConfig = Field(default_factory=LossConfig)
+    optim: OptimConfig = Field(default_factory=OptimConfig)
+    budget: BudgetConfig = Field(default_factory=BudgetConfig)
+    trainer: TrainerConfig = Field(default_factory=TrainerConfig)
+    output: OutputConfig = Field(default_factory=OutputConfig)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _empty_sections(cls, values):
+        # ``data:`` with nothing under it is an empty section.
+        if isinstance(values, dict):
+            return {k: ({} if v is None else v) for k, v in values.items()}
+        return values
+
+    @model_validator(mode="after")
+    def _combinations(self):
+        _check_combinations(self)
+        return self
 
 
-# --------------------------------------------------------------------------- type checking
+# --------------------------------------------------------------------------- checks and errors
 
-def _describe(tp) -> str:
-    origin = typing.get_origin(tp)
-    args = typing.get_args(tp)
-    if origin in (Union, types.UnionType):
-        parts = [_describe(a) for a in args if a is not type(None)]
-        text = " or ".join(parts)
-        return text + " or null" if type(None) in args else text
-    if origin is list:
-        plural = {int: "integers", float: "numbers", str: "strings", bool: "true/false values"}
-        return f"a list of {plural.get(args[0], 'values')}" if args else "a list"
-    return {int: "an integer", float: "a number", str: "a string", bool: "true/false", dict: "a mapping"}.get(tp, str(tp))
-
-
-def _coerce(tp, value, key):
-    """Return ``value`` checked against type ``tp`` (ints accepted for floats), or raise ConfigError."""
-    origin = typing.get_origin(tp)
-    args = typing.get_args(tp)
-    if origin in (Union, types.UnionType):
-        if value is None and type(None) in args:
-            return None
-        for a in args:
-            if a is type(None):
-                continue
-            try:
-                return _coerce(a, value, key)
-            except ConfigError:
-                continue
-        raise ConfigError(f"config key {key}: expected {_describe(tp)}, got {value!r}")
-    if origin is list:
-        if isinstance(value, (str, int, float)) and args and args[0] is str:
-            value = [value]  # a single path is a one-element list
-        if not isinstance(value, list):
-            raise ConfigError(f"config key {key}: expected {_describe(tp)}, got {value!r}")
-        return [_coerce(args[0], v, key) for v in value] if args else list(value)
-    if tp is bool:
-        if isinstance(value, bool):
-            return value
-    elif tp is int:
-        if isinstance(value, int) and not isinstance(value, bool):
-            return value
-        if isinstance(value, float) and value.is_integer():
-            return int(value)  # e.g. max_steps: 1e4
-    elif tp is float:
-        if isinstance(value, str):
-            try:
-                value = float(value)  # a number written as text, e.g. "1e-3"
-            except ValueError:
-                pass
-        if isinstance(value, (int, float)) and not isinstance(value, bool) and math.isfinite(value):
-            return float(value)
-    elif tp is str:
-        if isinstance(value, str):
-            return value
-        if isinstance(value, (int, float)) and not isinstance(value, bool):
-            return str(value)  # e.g. precision: 32
-    elif tp is dict:
-        if isinstance(value, dict):
-            return dict(value)
-    raise ConfigError(f"config key {key}: expected {_describe(tp)}, got {value!r}")
-
-
-def _section_from_dict(cls, values, section):
-    if values is None:
-        values = {}
-    if not isinstance(values, dict):
-        raise ConfigError(f"config section {section}: expected a mapping of keys, got {values!r}")
-    hints = typing.get_type_hints(cls)
-    names = [f.name for f in dataclasses.fields(cls)]
-    kwargs = {}
-    for key, value in values.items():
-        if key not in hints:
-            raise ConfigError(
-                f"config key {section}.{key} is unknown; allowed keys in {section}: {', '.join(names)}"
-            )
-        kwargs[key] = _coerce(hints[key], value, f"{section}.{key}")
-    return cls(**kwargs)
-
-
-def config_from_dict(values) -> TrainConfig:
-    """Build and check a :class:`TrainConfig` from a nested mapping (e.g. parsed YAML)."""
-    if values is None:
-        values = {}
-    if not isinstance(values, dict):
-        raise ConfigError(f"a training config must be a mapping of sections, got {type(values).__name__}")
-    hints = typing.get_type_hints(TrainConfig)
-    sections = {}
-    for name, body in values.items():
-        if name not in hints:
-            raise ConfigError(
-                f"config section {name!r} is unknown; allowed sections: {', '.join(hints)}"
-            )
-        sections[name] = _section_from_dict(hints[name], body, name)
-    config = TrainConfig(**sections)
-    check_config(config)
-    return config
-
-
-def _fail(key, message):
-    raise ConfigError(f"config key {key}: {message}")
-
-
-def _check_pairs(config: TrainConfig) -> None:
-    """Checks of the self-supervised keys (data.pairs, data.slc) and what they exclude."""
+def _check_combinations(config: TrainConfig) -> None:
+    """Checks of keys that depend on each other (the fields are valid on their own); raise ConfigError."""
     d = config.data
-    for i, pair in enumerate(d.pairs, 1):
-        if len(pair) != 2:
-            _fail("data.pairs", f"pair {i} must be two files [date1, date2], got {pair!r}; "
-                                "write pairs: [[date1.tif, date2.tif], ...]")
-        if Path(pair[0]).expanduser() == Path(pair[1]).expanduser():
-            _fail("data.pairs", f"pair {i} lists {pair[0]} twice; the two dates must be different acquisitions")
-    if d.change_window < 3 or d.change_window % 2 == 0:
-        _fail("data.change_window", f"must be an odd number of pixels >= 3, got {d.change_window}")
-    if not 0 < d.change_false_alarm < 0.5:
-        _fail("data.change_false_alarm", f"must be between 0 and 0.5, got {d.change_false_alarm}")
-    if d.sublooks < 2:
-        _fail("data.sublooks", f"must be at least 2 (one sub-look as input, another as target), got {d.sublooks}")
-    if d.split_axis not in SPLIT_AXES:
-        _fail("data.split_axis", f"must be one of {', '.join(SPLIT_AXES)}, got {d.split_axis!r}")
-    if d.slc_oversampling < 1:
-        _fail("data.slc_oversampling", f"must be >= 1 (sampling rate over bandwidth), got {d.slc_oversampling}")
-    if d.slc_taper is not None and d.slc_taper not in TAPERS:
-        _fail("data.slc_taper", f"must be one of {', '.join(TAPERS)} or null, got {d.slc_taper!r}")
-    if not -0.5 <= d.slc_centre <= 0.5:
-        _fail("data.slc_centre", f"must be in [-0.5, 0.5] cycles per pixel, got {d.slc_centre}")
-    if not d.self_supervised:
-        return
-    which = "data.pairs" if d.pairs else "data.slc"
-    if d.train or d.synthetic_scenes:
-        key = "data.train" if d.train else "data.synthetic_scenes"
-        _fail(key, f"clean references cannot be mixed with {which} in one run; train on one or the other")
-    if d.validation:
-        _fail("data.validation", f"with {which} validation uses the bottom data.val_fraction of every pair; "
-                                 "remove data.validation")
-    if d.units is not None and d.slc and d.units != "complex":
-        _fail("data.units", f"data.slc needs complex samples; units {d.units!r} would apply to every file")
-    s = config.speckle
-    if isinstance(s.looks, list):
-        _fail("speckle.looks", f"with {which} the looks are those of the real data: a number or auto, "
-                               f"not a range {s.looks!r}")
-    if s.val_looks is not None:
-        _fail("speckle.val_looks", f"is not used with {which} (validation uses held-out real data); remove it")
-    if s.correlated_fraction:
-        _fail("speckle.correlated_fraction", f"nothing is simulated with {which}; remove it")
-    if config.loss.target != "noisy":
-        _fail("loss.target", f"{which} give no clean reference; set loss.target: noisy "
-                             "(the other date or sub-look is the target)")
-
-
-def check_config(config: TrainConfig) -> None:
-    """Check values and combinations the types alone do not; raise ConfigError naming the key."""
-    d = config.data
-    for key in ("band", "patch_size", "batch_size", "patches_per_epoch", "val_patches", "synthetic_size", "max_pixels"):
-        if getattr(d, key) < 1:
-            _fail(f"data.{key}", f"must be a positive integer, got {getattr(d, key)}")
     if d.patches_per_epoch < d.batch_size:
         _fail("data.patches_per_epoch", f"must be at least data.batch_size ({d.batch_size}), got {d.patches_per_epoch}")
-    if d.patch_size < 8:
-        _fail("data.patch_size", f"must be at least 8 pixels, got {d.patch_size}")
-    if d.synthetic_scenes < 0:
-        _fail("data.synthetic_scenes", f"must be >= 0, got {d.synthetic_scenes}")
-    if d.synthetic_families:
-        from ..scene_families import SCENE_FAMILIES
-
-        unknown = [f for f in d.synthetic_families if f not in SCENE_FAMILIES]
-        if unknown:
-            _fail("data.synthetic_families", f"unknown family {unknown[0]!r}; choose from {', '.join(SCENE_FAMILIES)}")
     if d.synthetic_scenes and d.synthetic_size < max(64, d.patch_size):
         _fail("data.synthetic_size", f"must be at least max(64, data.patch_size) = {max(64, d.patch_size)}")
     if not d.train and not d.synthetic_scenes and not d.self_supervised:
         _fail("data.train", "no training data: list clean rasters (files, folders, globs), set data.synthetic_scenes, "
                             "or list data.pairs / data.slc")
-    _check_pairs(config)
-    if not 0 < d.val_fraction < 1:
-        _fail("data.val_fraction", f"must be between 0 and 1 (exclusive), got {d.val_fraction}")
-    if not 0 < d.min_valid_fraction <= 1:
-        _fail("data.min_valid_fraction", f"must be in (0, 1], got {d.min_valid_fraction}")
-    if d.offset_jitter < 0:
-        _fail("data.offset_jitter", f"must be >= 0 (nepers), got {d.offset_jitter}")
-    if d.num_workers < 0:
-        _fail("data.num_workers", f"must be >= 0, got {d.num_workers}")
-    if d.units is not None and d.units not in ("intensity", "amplitude", "db", "complex"):
-        _fail("data.units", f"must be one of intensity, amplitude, db, complex (or null to detect), got {d.units!r}")
-
-    if config.model.log_scale <= 0:
-        _fail("model.log_scale", f"must be positive, got {config.model.log_scale}")
-    pfa = config.model.point_false_alarm
-    if pfa is not None and not 0 < pfa < 1:
-        _fail("model.point_false_alarm", f"must lie in (0, 1) or be null, got {pfa}")
-    from ..models import list_models  # torch import deferred until a config is checked
-
-    if config.model.name not in list_models():
-        _fail("model.name", f"unknown model {config.model.name!r}; choose one of: {', '.join(list_models())}")
-
     s = config.speckle
-    if isinstance(s.looks, str):
-        if s.looks != "auto":
-            _fail("speckle.looks", f"must be a number, a [min, max] range or auto, got {s.looks!r}")
-        if not d.self_supervised:
-            _fail("speckle.looks", "auto (estimate from the data) needs data.pairs or data.slc; "
-                                   "simulated speckle needs a number or a [min, max] range")
-    looks = [] if isinstance(s.looks, str) else s.looks if isinstance(s.looks, list) else [s.looks]
-    if len(looks) not in (1, 2) and not isinstance(s.looks, str):
-        _fail("speckle.looks", f"must be a number or a [min, max] range, got {s.looks!r}")
-    if any(v <= 0 for v in looks):
-        _fail("speckle.looks", f"must be positive (> 0), got {s.looks!r}")
-    if len(looks) == 2 and looks[0] > looks[1]:
-        _fail("speckle.looks", f"range must be [min, max] with min <= max, got {s.looks!r}")
-    if s.val_looks is not None and s.val_looks <= 0:
-        _fail("speckle.val_looks", f"must be positive (> 0), got {s.val_looks}")
-    if not 0 <= s.correlated_fraction <= 1:
-        _fail("speckle.correlated_fraction", f"must be in [0, 1], got {s.correlated_fraction}")
-    if s.looks_distribution not in ("uniform", "log-uniform"):
-        _fail("speckle.looks_distribution", f"must be uniform or log-uniform, got {s.looks_distribution!r}")
-    if s.correlated_target not in ("system", "reference"):
-        _fail("speckle.correlated_target", f"must be system or reference, got {s.correlated_target!r}")
-    if not 0 <= s.condition_dropout <= 1:
-        _fail("speckle.condition_dropout", f"must be in [0, 1], got {s.condition_dropout}")
-    if not 0 <= s.condition_jitter <= 0.5:
-        _fail("speckle.condition_jitter", f"must be in [0, 0.5], got {s.condition_jitter}")
+    if d.self_supervised:
+        which = "data.pairs" if d.pairs else "data.slc"
+        if d.train or d.synthetic_scenes:
+            key = "data.train" if d.train else "data.synthetic_scenes"
+            _fail(key, f"clean references cannot be mixed with {which} in one run; train on one or the other")
+        if d.validation:
+            _fail("data.validation", f"with {which} validation uses the bottom data.val_fraction of every pair; "
+                                     "remove data.validation")
+        if d.units is not None and d.slc and d.units != "complex":
+            _fail("data.units", f"data.slc needs complex samples; units {d.units!r} would apply to every file")
+        if isinstance(s.looks, list):
+            _fail("speckle.looks", f"with {which} the looks are those of the real data: a number or auto, "
+                                   f"not a range {s.looks!r}")
+        if s.val_looks is not None:
+            _fail("speckle.val_looks", f"is not used with {which} (validation uses held-out real data); remove it")
+        if s.correlated_fraction:
+            _fail("speckle.correlated_fraction", f"nothing is simulated with {which}; remove it")
+        if config.loss.target != "noisy":
+            _fail("loss.target", f"{which} give no clean reference; set loss.target: noisy "
+                                 "(the other date or sub-look is the target)")
+    elif s.looks == "auto":
+        _fail("speckle.looks", "auto (estimate from the data) needs data.pairs or data.slc; "
+                               "simulated speckle needs a number or a [min, max] range")
     if s.correlated_fraction > 0:
         overs = s.oversampling if isinstance(s.oversampling, list) else [s.oversampling]
         if len(overs) not in (1, 2) or any(v < 1 for v in overs) or overs[0] > overs[-1]:
@@ -512,68 +466,93 @@ def check_config(config: TrainConfig) -> None:
         bad = [t for t in tapers if t not in TAPERS]
         if bad or not tapers:
             _fail("speckle.taper", f"must be one of {', '.join(TAPERS)} (or a list of them), got {s.taper!r}")
+        looks = s.looks if isinstance(s.looks, list) else [s.looks]
         if any(v < 1 for v in looks):
             _fail("speckle.looks", "correlated speckle needs at least one look")
-
-    lo = config.loss
-    if lo.name not in LOSSES:
-        _fail("loss.name", f"must be one of {', '.join(LOSSES)}, got {lo.name!r}")
-    if lo.target not in TARGETS:
-        _fail("loss.target", f"must be one of {', '.join(TARGETS)}, got {lo.target!r}")
-    if lo.tv_weight < 0:
-        _fail("loss.tv_weight", f"must be >= 0, got {lo.tv_weight}")
-
-    o = config.optim
-    if o.lr <= 0:
-        _fail("optim.lr", f"must be positive, got {o.lr}")
-    if o.weight_decay < 0:
-        _fail("optim.weight_decay", f"must be >= 0, got {o.weight_decay}")
-    if o.schedule not in SCHEDULES:
-        _fail("optim.schedule", f"must be one of {', '.join(SCHEDULES)}, got {o.schedule!r}")
-    if o.schedule == "cosine" and config.budget.max_epochs is None:
+    if config.optim.schedule == "cosine" and config.budget.max_epochs is None:
         _fail("optim.schedule", "cosine needs budget.max_epochs (the schedule's length)")
-    if not 0 < o.plateau_factor < 1:
-        _fail("optim.plateau_factor", f"must be between 0 and 1, got {o.plateau_factor}")
-    if o.plateau_patience < 0:
-        _fail("optim.plateau_patience", f"must be >= 0, got {o.plateau_patience}")
-    if o.min_lr < 0 or o.grad_clip < 0:
-        _fail("optim.min_lr" if o.min_lr < 0 else "optim.grad_clip", "must be >= 0")
-
-    b = config.budget
-    if b.max_time is not None:
-        parse_duration(b.max_time, "budget.max_time")
-    for key in ("max_epochs", "max_steps"):
-        v = getattr(b, key)
-        if v is not None and v < 1:
-            _fail(f"budget.{key}", f"must be a positive integer or null, got {v}")
-    if b.early_stopping < 0:
-        _fail("budget.early_stopping", f"must be >= 0 epochs (0 turns it off), got {b.early_stopping}")
-
     t = config.trainer
-    if t.precision not in PRECISIONS:
-        _fail("trainer.precision", f"must be one of {', '.join(PRECISIONS)}, got {t.precision!r}")
-    if t.threads is not None and t.threads < 1:
-        _fail("trainer.threads", f"must be a positive integer or null (all usable cores), got {t.threads}")
-    if t.log_every_n_steps < 1:
-        _fail("trainer.log_every_n_steps", f"must be a positive integer, got {t.log_every_n_steps}")
-    for key in ("processes_per_node", "nodes"):
-        if getattr(t, key) < 1:
-            _fail(f"trainer.{key}", f"must be a positive integer, got {getattr(t, key)}")
     world = t.processes_per_node * t.nodes
     if world > 1:
-        if config.data.batch_size % world:
-            _fail("data.batch_size", f"{config.data.batch_size} does not divide evenly among the {world} processes "
+        if d.batch_size % world:
+            _fail("data.batch_size", f"{d.batch_size} does not divide evenly among the {world} processes "
                   f"(trainer.processes_per_node x trainer.nodes); it is the global batch")
-        if config.data.val_patches < world:
-            _fail("data.val_patches", f"{config.data.val_patches} is fewer than the {world} processes "
+        if d.val_patches < world:
+            _fail("data.val_patches", f"{d.val_patches} is fewer than the {world} processes "
                   "(trainer.processes_per_node x trainer.nodes); every process validates a share")
-    if t.seed < 0:
-        _fail("trainer.seed", f"must be >= 0, got {t.seed}")
 
-    if not config.output.dir:
-        _fail("output.dir", "must name a folder")
-    if not config.output.model_file or Path(config.output.model_file).name != config.output.model_file:
-        _fail("output.model_file", f"must be a plain file name inside output.dir, got {config.output.model_file!r}")
+
+def _describe(tp) -> str:
+    """What a field of type ``tp`` accepts, in words (``an integer or null``)."""
+    origin = typing.get_origin(tp)
+    args = typing.get_args(tp)
+    if origin is Annotated:
+        return _describe(args[0])
+    if origin in (Union, types.UnionType):
+        parts = [_describe(a) for a in args if a is not type(None)]
+        text = " or ".join(parts)
+        return text + " or null" if type(None) in args else text
+    if origin is Literal:
+        return "one of " + ", ".join(map(str, args))
+    if origin is list:
+        inner = args[0] if args else None
+        while typing.get_origin(inner) is Annotated:
+            inner = typing.get_args(inner)[0]
+        plural = {int: "integers", float: "numbers", str: "strings", bool: "true/false values"}
+        if typing.get_origin(inner) is list:
+            return "a list of lists of strings"
+        return f"a list of {plural.get(inner, 'values')}" if args else "a list"
+    if origin is dict:
+        return "a mapping"
+    return {int: "an integer", float: "a number", str: "a string", bool: "true/false", dict: "a mapping"}.get(tp, str(tp))
+
+
+_RANGE_ERRORS = {"greater_than", "greater_than_equal", "less_than", "less_than_equal"}
+
+
+def _config_error(exc: ValidationError, values: dict) -> ConfigError:
+    """One line for the first problem pydantic found, naming the section and key."""
+    error = exc.errors(include_url=False)[0]
+    cause = (error.get("ctx") or {}).get("error")
+    if isinstance(cause, ConfigError):
+        return cause  # raised by a validator with its own message
+    loc = [str(part) for part in error["loc"]]
+    sections = TrainConfig.model_fields
+    if len(loc) == 1:
+        if error["type"] == "extra_forbidden":
+            return ConfigError(f"config section {loc[0]!r} is unknown; allowed sections: {', '.join(sections)}")
+        return ConfigError(f"config section {loc[0]}: expected a mapping of keys, got {error['input']!r}")
+    section, key = loc[0], loc[1]
+    fields = sections[section].annotation.model_fields
+    if error["type"] == "extra_forbidden":
+        return ConfigError(f"config key {section}.{key} is unknown; allowed keys in {section}: {', '.join(fields)}")
+    info = fields[key]
+    given = values[section][key]
+    if error["type"] in _RANGE_ERRORS and info.description:
+        return ConfigError(f"config key {section}.{key}: must be {info.description}, got {given!r}")
+    if error["type"] == "literal_error":
+        choices = info.description or _describe(info.annotation)
+        return ConfigError(f"config key {section}.{key}: must be {choices}, got {given!r}")
+    return ConfigError(f"config key {section}.{key}: expected {_describe(info.annotation)}, got {given!r}")
+
+
+def config_from_dict(values) -> TrainConfig:
+    """Build and check a :class:`TrainConfig` from a nested mapping (e.g. parsed YAML).
+
+    Raises
+    ------
+    ConfigError
+        The first problem, on one line naming the key: an unknown section or key, a
+        value of the wrong type or outside its range, or keys that contradict each other.
+    """
+    if values is None:
+        values = {}
+    if not isinstance(values, dict):
+        raise ConfigError(f"a training config must be a mapping of sections, got {type(values).__name__}")
+    try:
+        return TrainConfig.model_validate(values)
+    except ValidationError as exc:
+        raise _config_error(exc, values) from None
 
 
 _DURATION = re.compile(r"(\d+(?:\.\d+)?)\s*([dhms])", re.IGNORECASE)
@@ -711,7 +690,7 @@ def load_config(path, overrides=()) -> TrainConfig:
 
 def config_to_dict(config: TrainConfig) -> dict:
     """The fully resolved config as a plain nested dict (defaults included)."""
-    return dataclasses.asdict(config)
+    return config.model_dump()
 
 
 def dump_config(config: TrainConfig) -> str:
