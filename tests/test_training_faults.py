@@ -106,6 +106,28 @@ def test_signal_exits_non_zero_and_names_the_checkpoint(tmp_path, signum, code):
     assert _hidden(out) == []  # no temporary file left
 
 
+def test_sigterm_to_the_whole_process_group_with_data_workers(tmp_path):
+    # Batch schedulers (and `kill -- -PGID`) signal every process of a job, patch
+    # workers included: the workers must leave the shutdown to the training process,
+    # which then stops as for a plain SIGTERM (exit 143, one line; POSIX shell convention).
+    out = tmp_path / "run"
+    env = {**os.environ, "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
+    proc = subprocess.Popen([sys.executable, "-m", "despeck", *_args(out, "budget.max_epochs=null",
+                                                                      "budget.max_time=120s", "data.num_workers=1")],
+                            env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True)
+    last = out / "checkpoints" / "last.ckpt"
+    deadline = time.monotonic() + 90
+    while not last.is_file() and proc.poll() is None and time.monotonic() < deadline:
+        time.sleep(0.05)
+    assert last.is_file(), proc.communicate()[1]
+    os.killpg(proc.pid, signal.SIGTERM)
+    _, err = proc.communicate(timeout=60)
+    assert proc.returncode == 143, err
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in err, err
+    assert lines[0].startswith("despeck: training interrupted by SIGTERM")
+
+
 def test_signal_before_first_checkpoint(tmp_path):
     out = tmp_path / "run"
     proc = _despeck(_args(out, "budget.max_epochs=null", "budget.max_time=120s", "data.patches_per_epoch=100000"))

@@ -450,6 +450,13 @@ def _worker_init(_):
     # Workers generate patches; one thread each so they do not compete with the
     # training process's intra-op threads for the same cores.
     torch.set_num_threads(1)
+    # A scheduler's SIGTERM or a terminal's Ctrl-C reaches every process of the group;
+    # the training process turns it into a clean stop and shuts its workers down, so
+    # workers must not die of it first (that makes the loader raise a traceback).
+    import signal
+
+    signal.signal(signal.SIGTERM, signal.SIG_IGN)
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
 
 
 class PatchLoaders:
