@@ -108,8 +108,9 @@ def test_signal_exits_non_zero_and_names_the_checkpoint(tmp_path, signum, code):
 
 def test_sigterm_to_the_whole_process_group_with_data_workers(tmp_path):
     # Batch schedulers (and `kill -- -PGID`) signal every process of a job, patch
-    # workers included: the workers must leave the shutdown to the training process,
-    # which then stops as for a plain SIGTERM (exit 143, one line; POSIX shell convention).
+    # workers included: the training process must still stop as for a plain SIGTERM
+    # (exit 143, one line; POSIX shell convention). (A DataLoader traceback was seen once
+    # when a worker died of the signal first; this test did not reproduce that race.)
     out = tmp_path / "run"
     env = {**os.environ, "OMP_NUM_THREADS": "1", "MKL_NUM_THREADS": "1"}
     proc = subprocess.Popen([sys.executable, "-m", "despeck", *_args(out, "budget.max_epochs=null",
