@@ -20,10 +20,13 @@ overlap for the model (its receptive field minus one plus the blend zone, on the
 network's pooling grid), run through :func:`despeck.inference.despeckle_array` and
 trimmed, so every output pixel sees the same neighbourhood as in the streamed path. The
 scene-level inputs of the model are computed once for the whole scene before any chunk
-runs, from the same samples :mod:`despeck.inference` takes: the log offset from the
-decimated valid pixels (:func:`despeck.inference.array_sample`), the looks and speckle
-correlation from the DataArray's attributes (tags) or the full-resolution windows of
-:mod:`despeck.looks`. The result keeps the input's coordinates, CRS, transform, nodata
+runs, from the same samples :mod:`despeck.inference` takes: for a DataArray that is a
+file as read (rioxarray's ``encoding["source"]``, same size and bands), from that file
+exactly as :func:`despeck.inference.despeckle_file` takes them (its decimated read for the
+log offset, its tags or full-resolution windows for the looks and correlation), so the
+pixels equal the streamed file's; for any other DataArray, as
+:func:`despeck.inference.despeckle_array` takes them (:func:`despeck.inference.array_sample`,
+the DataArray's attributes as tags, the windows of :mod:`despeck.looks`). The result keeps the input's coordinates, CRS, transform, nodata
 and attributes (speckle descriptions of the input become ``input_*`` attributes, and
 the provenance attributes of :mod:`despeck.provenance` are added);
 :func:`write_dataarray` writes it as a tiled GeoTIFF or a Cloud-Optimised GeoTIFF
@@ -342,6 +345,29 @@ def _aligned_chunks(length, chunk, halo):
     return tuple(sizes)
 
 
+def _source_scene(da, units):
+    """The file ``da`` was read from (rioxarray's ``encoding["source"]``), open, if ``da`` is all of it; else None.
+
+    Arithmetic drops xarray's encoding, so a DataArray that still names its source holds
+    the file's values; a 2-D selection of one band of a multi-band file is ambiguous and
+    is not matched.
+    """
+    from .raster import open_scene
+
+    source = (da.encoding or {}).get("source")
+    if not source or not os.path.isfile(str(source)):
+        return None
+    try:
+        reader = open_scene(source, units=units)
+    except (DespeckError, OSError):
+        return None
+    bands = 1 if da.ndim == 2 else int(da.shape[0])
+    if (reader.height, reader.width) != tuple(da.shape[-2:]) or reader.band_count != bands:
+        reader.close()
+        return None
+    return reader
+
+
 def _nodata_of(da):
     rio = getattr(da, "rio", None)
     nodata = None
@@ -367,14 +393,21 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
     units : {'intensity', 'amplitude', 'db'}
         What the samples are; the result is in the same units.
     looks : float, optional
-        The scene's looks; default a ``looks`` attribute, else estimated once for the
-        whole scene (as :func:`despeck.inference.despeckle_file` does for a file).
+        The scene's looks; default the ``looks`` tag of the source file or attribute,
+        else estimated once for the whole scene. The log offset, looks and correlation
+        are taken once before any chunk runs: from the file the DataArray was read from
+        when it is all of that file unchanged (rioxarray's ``encoding["source"]``; then
+        the pixels equal :func:`despeck.inference.despeckle_file`'s), else from the array
+        as :func:`despeck.inference.despeckle_array` takes them (then they equal its).
     chunk : int
         Chunk side in pixels (rounded up to the network's pooling grid); the halo
         around each chunk is the tiler's overlap for ``model``.
     tile, overlap, threads, bf16, channels_last
         As for :func:`despeck.inference.despeckle_array`, within each chunk;
-        ``threads`` is the torch threads of one chunk task (default 1).
+        ``threads`` is the torch threads of one chunk task (default 1). With
+        ``channels_last`` None, chunks of 4 MP and more (the default 2048 plus halo)
+        time both memory formats as the streamed path does; smaller chunks stay
+        contiguous, which is slower for most networks: pass True then.
 
     Returns
     -------
@@ -415,30 +448,41 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
     data = da.data if isinstance(da.data, dsa.Array) else dsa.from_array(np.asarray(da.data), chunks=-1)
     bands = [data] if da.ndim == 2 else [data[b] for b in range(da.shape[0])]
     results, input_tags = [], {}
-    for b, raw in enumerate(bands):
-        raw = raw.rechunk(chunks)
-        intensity = raw.map_blocks(_to_intensity_block, units, nodata, dtype=np.float32)
-        sample = np.asarray(array_sample(intensity, intensity > 0).compute())
-        if sample.size == 0:
-            raise InputError(f"{name}: band {b + 1} has no valid (finite, positive, not nodata) pixel")
-        log_offset = float(model.scene_log_offset(sample))
-        scene = _DataArrayScene(name, dict(da.attrs), intensity, height, width)
-        info, corr, notes = describe_speckle(scene, 1, looks=looks)
-        if not getattr(model, "conditioned", False):
-            notes = [n for n in notes if "speckle correlation" not in n]
-        cond_looks, cond_corr, more = condition_for_model(model, info, corr, name)
-        for note in notes + more:
-            warnings.warn(note, InferenceWarning, stacklevel=2)
-        if b == 0:
-            input_tags = speckle_tags(info, corr, prefix="input_")
-        # No halo along an axis held in one chunk (nothing to overlap there).
-        depth = {axis: halo if len(chunks[axis]) > 1 else 0 for axis in (0, 1)}
-        results.append(dsa.map_overlap(
-            _despeckle_block, raw, depth=depth, boundary="none", trim=True, dtype=np.float32,
-            meta=np.empty((0, 0), np.float32), model=model, units=units, nodata=nodata, log_offset=log_offset,
-            condition=(cond_looks, cond_corr), tile=tile, overlap=overlap, threads=threads, bf16=bf16,
-            channels_last=channels_last,
-        ))
+    source = _source_scene(da, units)
+    if source is not None:
+        name = str(source.path)
+    try:
+        for b, raw in enumerate(bands):
+            raw = raw.rechunk(chunks)
+            intensity = raw.map_blocks(_to_intensity_block, units, nodata, dtype=np.float32)
+            if source is not None:  # the streamed file path's own statistics
+                sample = source.sample_intensity(band=b + 1)
+                scene, band = source, b + 1
+            else:
+                sample = np.asarray(array_sample(intensity, intensity > 0).compute())
+                scene, band = _DataArrayScene(name, dict(da.attrs), intensity, height, width), 1
+            if sample.size == 0:
+                raise InputError(f"{name}: band {b + 1} has no valid (finite, positive, not nodata) pixel")
+            log_offset = float(model.scene_log_offset(sample))
+            info, corr, notes = describe_speckle(scene, band, looks=looks)
+            if not getattr(model, "conditioned", False):
+                notes = [n for n in notes if "speckle correlation" not in n]
+            cond_looks, cond_corr, more = condition_for_model(model, info, corr, name)
+            for note in notes + more:
+                warnings.warn(note, InferenceWarning, stacklevel=2)
+            if b == 0:
+                input_tags = speckle_tags(info, corr, prefix="input_")
+            # No halo along an axis held in one chunk (nothing to overlap there).
+            depth = {axis: halo if len(chunks[axis]) > 1 else 0 for axis in (0, 1)}
+            results.append(dsa.map_overlap(
+                _despeckle_block, raw, depth=depth, boundary="none", trim=True, dtype=np.float32,
+                meta=np.empty((0, 0), np.float32), model=model, units=units, nodata=nodata, log_offset=log_offset,
+                condition=(cond_looks, cond_corr), tile=tile, overlap=overlap, threads=threads, bf16=bf16,
+                channels_last=channels_last,
+            ))
+    finally:
+        if source is not None:
+            source.close()
     out = results[0] if da.ndim == 2 else dsa.stack(results)
     method, sha = model_provenance(model)
     attrs = {k: v for k, v in without_provenance(da.attrs).items() if str(k).strip().lower() not in SPECKLE_TAGS}

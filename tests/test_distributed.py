@@ -146,6 +146,25 @@ def test_chunked_dataarray_equals_the_streamed_array(tmp_path, name, looks):
     assert out.attrs["despeck_method"].startswith(name)
 
 
+def test_chunked_file_of_over_a_megapixel_equals_despeckle_file(tmp_path):
+    # Above a million pixels the scene statistics come from a decimated sample; a
+    # DataArray read from a file takes them from that file as despeckle_file does.
+    torch.manual_seed(0)
+    model = Despeckler(create_model("logcnn-xs"), looks=1).eval()
+    x = _speckle((1100, 1000), seed=7)
+    path = _tif(tmp_path / "big.tif", x, tags={"looks": "1"})
+    da = rioxarray.open_rasterio(path, chunks=True)
+    y = despeckle_dataarray(da, model, chunk=512).compute(scheduler="threads", num_workers=2).values[0]
+    with rasterio.open(despeckle_file(path, tmp_path / "streamed.tif", model, threads=1, progress=False)) as ds:
+        streamed = ds.read(1)
+    assert (np.abs(y - streamed) / streamed).max() <= 1e-5
+    # Changed values (arithmetic drops the file's name): the array's own sample, as despeckle_array.
+    z = despeckle_dataarray(da * 1.0, model, chunk=512).compute(scheduler="threads", num_workers=2).values[0]
+    ref = despeckle_array(x, model, looks=1, threads=1, progress=False)
+    assert (np.abs(z - ref) / ref).max() <= 1e-5
+    assert (np.abs(ref - streamed) / streamed).max() > 1e-4  # the two samples differ: the choice matters
+
+
 def test_write_dataarray_tiled_geotiff_reads_back(tmp_path):
     torch.manual_seed(0)
     model = Despeckler(create_model("logcnn-xs"), looks=1).eval()
