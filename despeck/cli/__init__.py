@@ -106,6 +106,10 @@ def silence_library_noise() -> None:
         warnings.filterwarnings("ignore", category=NotGeoreferencedWarning)
     warnings.filterwarnings("ignore", category=DeprecationWarning)
     warnings.filterwarnings("ignore", category=PendingDeprecationWarning)
+    # Python hides these by default; "default" above would show them. A file object
+    # dropped while a signal unwinds a write (closed by the garbage collector) is not
+    # something a user can act on.
+    warnings.filterwarnings("ignore", category=ResourceWarning)
 
 
 def main(argv=None) -> int:
