@@ -464,9 +464,8 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
             if sample.size == 0:
                 raise InputError(f"{name}: band {b + 1} has no valid (finite, positive, not nodata) pixel")
             log_offset = float(model.scene_log_offset(sample))
-            info, corr, notes = describe_speckle(scene, band, looks=looks)
-            if not getattr(model, "conditioned", False):
-                notes = [n for n in notes if "speckle correlation" not in n]
+            info, corr, notes = describe_speckle(scene, band, looks=looks,
+                                                 correlation_notes=getattr(model, "conditioned", False))
             cond_looks, cond_corr, more = condition_for_model(model, info, corr, name)
             for note in notes + more:
                 warnings.warn(note, InferenceWarning, stacklevel=2)

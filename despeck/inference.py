@@ -534,10 +534,10 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
     elif getattr(model, "conditioned", False) or looks is not None:
         from .looks import describe_array
 
-        info, corr, notes = describe_array(x, ok, looks=looks, correlation=correlation)
+        # only looks-aware networks use the correlation: others are not warned about it
+        info, corr, notes = describe_array(x, ok, looks=looks, correlation=correlation,
+                                           correlation_notes=getattr(model, "conditioned", False))
         cond_looks, cond_corr, more = condition_for_model(model, info, corr, "array")
-        if not getattr(model, "conditioned", False):
-            notes = [n for n in notes if "speckle correlation" not in n]
         for note in notes + more:
             warnings.warn(note, InferenceWarning, stacklevel=2)
     result = np.empty_like(x)
@@ -768,10 +768,9 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                 with _torch_settings(threads):
                     for band in range(1, reader.band_count + 1):
                         offset = _scene_offset(model, reader.sample_intensity(_SAMPLE_PIXELS, band=band))
-                        info, corr, notes = describe_speckle(reader, band, looks=looks)
-                        if not getattr(model, "conditioned", False):
-                            # only looks-aware networks use the correlation; it is still recorded
-                            notes = [n for n in notes if "speckle correlation" not in n]
+                        # only looks-aware networks use the correlation; it is still recorded
+                        info, corr, notes = describe_speckle(reader, band, looks=looks,
+                                                             correlation_notes=getattr(model, "conditioned", False))
                         cond_looks, cond_corr, more = condition_for_model(model, info, corr, reader.path)
                         for note in notes + more:
                             warnings.warn(note, InferenceWarning, stacklevel=2)

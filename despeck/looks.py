@@ -299,7 +299,7 @@ def _plausibility(info: LooksInfo, where: str) -> list:
     return []
 
 
-def describe_speckle(reader, band: int = 1, *, looks=None):
+def describe_speckle(reader, band: int = 1, *, looks=None, correlation_notes: bool = True):
     """``(LooksInfo, SpeckleCorrelation, notes)`` for one band of an open scene.
 
     Never raises for an unmeasurable scene: falls back to 1 look / white speckle and
@@ -320,11 +320,12 @@ def describe_speckle(reader, band: int = 1, *, looks=None):
         corr = resolve_correlation(tags=reader.tags, intensity=intensity, valid=valid)
     except InputError as exc:
         corr = WHITE
-        notes.append(f"{reader.path}: speckle correlation not measurable ({exc}); assumed white speckle")
+        if correlation_notes:
+            notes.append(f"{reader.path}: speckle correlation not measurable ({exc}); assumed white speckle")
     return info, corr, notes
 
 
-def describe_array(intensity, valid=None, *, looks=None, correlation=None):
+def describe_array(intensity, valid=None, *, looks=None, correlation=None, correlation_notes: bool = True):
     """``(LooksInfo, SpeckleCorrelation, notes)`` of a 2-D intensity array.
 
     Full-resolution windows spread over the array are measured (as for files);
@@ -353,7 +354,8 @@ def describe_array(intensity, valid=None, *, looks=None, correlation=None):
             corr = measure_scene_correlation(sample, sample_ok)
         except InputError as exc:
             corr = WHITE
-            notes.append(f"speckle correlation not measurable ({exc}); assumed white speckle")
+            if correlation_notes:
+                notes.append(f"speckle correlation not measurable ({exc}); assumed white speckle")
     return info, corr, notes
 
 

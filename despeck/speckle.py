@@ -773,8 +773,7 @@ def split_sublooks(slc, count, *, axis="azimuth", oversampling=1.0, taper=None, 
 
 # --------------------------------------------------------------------------- looks from a scene
 
-def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8, split="checker",
-                       rank_scale=1):
+def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8, split="checker"):
     """Find the most homogeneous ``window`` x ``window`` blocks of an intensity image.
 
     The image is cut into non-overlapping blocks; blocks with any invalid pixel, a
@@ -833,18 +832,7 @@ def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_bl
             f"only {n_ok} {window}x{window} blocks are free of nodata; at least {int(min_blocks)} are needed to estimate the looks"
         )
     index = np.flatnonzero(keep)
-    rank_scale = int(rank_scale)
-    if rank_scale > 1 and split == "halves" and (window // 2) % rank_scale == 0:
-        # Rank on the CV of rank_scale x rank_scale cell means of the first half:
-        # averaging divides the speckle's variance but keeps smooth texture, so weak
-        # texture on multi-look scenes is seen (the measurement half is unaffected).
-        half = xb[index][:, :, :window // 2]
-        s_ = rank_scale
-        cells = half.reshape(len(index), window // s_, s_, window // 2 // s_, s_).mean(axis=(2, 4))
-        cells = cells.reshape(len(index), -1)
-        rank_cv = cells.std(axis=1, ddof=1) / m1[index]
-    else:
-        rank_cv = first[index].std(axis=1, ddof=1) / m1[index]
+    rank_cv = first[index].std(axis=1, ddof=1) / m1[index]
     n_keep = max(int(min_blocks), int(math.ceil(float(fraction) * index.size)))
     order = index[np.argsort(rank_cv, kind="stable")[:n_keep]]
     cv2 = second[order].var(axis=1, ddof=1) / m2[order] ** 2
@@ -875,7 +863,7 @@ def estimate_looks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks
 
 
 def measure_speckle_correlation(intensity, valid=None, *, window=32, fraction=0.2, min_blocks=8, lags=(1, 2),
-                                split="halves", background_lags=(4, 5), rank_scale=1):
+                                split="halves", background_lags=(4, 5)):
     """Measure the speckle's intensity correlation coefficients along rows and columns.
 
     On the most homogeneous ``window`` x ``window`` blocks (:func:`homogeneous_blocks`)
@@ -916,8 +904,7 @@ def measure_speckle_correlation(intensity, valid=None, *, window=32, fraction=0.
     if not lags or min(lags) < 1 or max(lags) >= int(window):
         raise InputError(f"lags must be positive and smaller than the window ({window}), got {lags}")
     x = np.asarray(intensity, dtype=np.float64)
-    origins, _ = homogeneous_blocks(x, valid, window=window, fraction=fraction, min_blocks=min_blocks, split=split,
-                                    rank_scale=rank_scale)
+    origins, _ = homogeneous_blocks(x, valid, window=window, fraction=fraction, min_blocks=min_blocks, split=split)
     w = int(window)
     blocks = np.stack([x[r:r + w, c:c + w] for r, c in origins])
     d = blocks / blocks.mean(axis=(1, 2), keepdims=True) - 1.0
