@@ -38,7 +38,8 @@ def test_methods_citations_name_sections_that_exist():
 
 
 def test_no_citation_of_a_methods_file_outside_the_repository():
-    # "METHODS.md section N" used to be cited from code and tests; no such file is in the repository.
+    # Code and tests used to cite a methods sheet by section that is not in the repository;
+    # only docs/methods.md may be cited that way.
     offenders = [path.relative_to(ROOT).as_posix() for path in SOURCES
                  if re.search(r"(?<!docs/)METHODS\.md,? section", path.read_text())]
     assert offenders == []
