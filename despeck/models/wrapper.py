@@ -253,7 +253,9 @@ class Despeckler(nn.Module):
         w = valid.to(torch.float64)
 
         def box_sum(a, k):
-            return F.avg_pool2d(a, k, stride=1, padding=k // 2, count_include_pad=True) * (k * k)
+            # Zero-padded k x k sums as two 1-D passes (k + k additions a pixel instead of k^2).
+            a = F.avg_pool2d(a, (k, 1), stride=1, padding=(k // 2, 0), count_include_pad=True)
+            return F.avg_pool2d(a, (1, k), stride=1, padding=(0, k // 2), count_include_pad=True) * (k * k)
 
         ring_sum = box_sum(x, POINT_OUTER) - box_sum(x, POINT_INNER)
         ring_count = box_sum(w, POINT_OUTER) - box_sum(w, POINT_INNER)
