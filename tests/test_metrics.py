@@ -11,6 +11,7 @@ from skimage.feature import graycomatrix, graycoprops
 from skimage.metrics import peak_signal_noise_ratio, structural_similarity
 
 from despeck import filters, metrics, synthetic
+from despeck.bench import areas_from_vector  # the benchmark reads area files; metrics reads none
 from despeck.errors import InputError
 from despeck.speckle import gamma_speckle, simulate_intensity
 
@@ -243,17 +244,17 @@ def test_areas_from_geojson_polygons(tmp_path):
     path = tmp_path / "areas.geojson"
     path.write_text(json.dumps({"type": "FeatureCollection",
                                 "features": [{"type": "Feature", "properties": {}, "geometry": poly}]}))
-    (mask,) = metrics.areas_from_vector(path, transform, (100, 100))
+    (mask,) = areas_from_vector(path, transform, (100, 100))
     assert mask.sum() == 300
     rows, cols = np.nonzero(mask)
     assert (rows.min(), rows.max(), cols.min(), cols.max()) == (20, 34, 10, 29)
     far = {"type": "Polygon", "coordinates": [[[0, 0], [10, 0], [10, 10], [0, 0]]]}
     path.write_text(json.dumps(far))
     with pytest.raises(InputError, match="outside the scene"):
-        metrics.areas_from_vector(path, transform, (100, 100))
+        areas_from_vector(path, transform, (100, 100))
     path.write_text("{not json")
     with pytest.raises(InputError, match="GeoJSON"):
-        metrics.areas_from_vector(path, transform, (100, 100))
+        areas_from_vector(path, transform, (100, 100))
 
 
 # --------------------------------------------------------------------------- points

@@ -43,7 +43,8 @@ scenes), :mod:`~despeck.bench.run` (running and measuring), :mod:`~despeck.bench
 
 from .report import CAUTIONS, REPORT_MARKER
 from .run import run_benchmark
+from .scenes import areas_from_vector
 from .spec import DEFAULT_METHODS, BenchScene, Method, load_scene_list, parse_method, parse_option_value
 
 __all__ = ["BenchScene", "Method", "parse_method", "parse_option_value", "load_scene_list", "run_benchmark",
-           "DEFAULT_METHODS", "CAUTIONS", "REPORT_MARKER"]
+           "DEFAULT_METHODS", "CAUTIONS", "REPORT_MARKER", "areas_from_vector"]

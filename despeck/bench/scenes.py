@@ -6,6 +6,7 @@ names the scene's file (or ``scene 'NAME'`` for an array).
 
 from __future__ import annotations
 
+import json
 import os
 import pathlib
 from dataclasses import dataclass
@@ -17,7 +18,7 @@ from ..errors import DespeckError, InputError, RasterError
 from ..looks import resolve_looks
 from .spec import BenchScene
 
-__all__ = ["LoadedScene", "load_scene", "named_error"]
+__all__ = ["LoadedScene", "load_scene", "named_error", "areas_from_vector"]
 
 # How the report names where a scene's looks came from (despeck.looks.LooksInfo.source).
 _LOOKS_SOURCES = {"option": "given", "tag": "recorded", "estimate": "estimated"}
@@ -123,7 +124,7 @@ def _load_scene_checked(scene: BenchScene, index: int, where: str) -> LoadedScen
         areas_source = "found automatically (15 x 15 boxes, 5 % false-alarm rate)"
         masks = metrics.check_areas(areas, intensity.shape, valid) if areas else []
     elif isinstance(scene.areas, (str, os.PathLike)):
-        masks = metrics.areas_from_vector(scene.areas, transform, intensity.shape, crs=crs)
+        masks = areas_from_vector(scene.areas, transform, intensity.shape, crs=crs)
         masks = metrics.check_areas(masks, intensity.shape, valid, source=f"{scene.areas}: polygon")
         areas, areas_source = [], f"polygons from {pathlib.Path(scene.areas).name}"
     elif _all_boxes(scene.areas, where) and len(scene.areas) == 0:
@@ -167,3 +168,62 @@ def _check_points(points, shape, name):
         out.append((r, c))
     return out
 
+
+def areas_from_vector(path, transform, shape, *, crs=None):
+    """Boolean masks from the polygons of a GeoJSON file in the scene's map coordinates.
+
+    Reading the file is the benchmark's job; the masks are what :mod:`despeck.metrics`
+    takes (:func:`despeck.metrics.check_areas`), which reads no files itself.
+
+    Each feature (Polygon or MultiPolygon) is one area, rasterised with
+    ``rasterio.features.rasterize`` (pixels whose centre falls inside). The
+    coordinates must be in the scene's CRS; a ``crs`` member naming another CRS is
+    refused rather than silently reprojected.
+
+    Raises
+    ------
+    InputError
+        Unreadable file, no polygon, a polygon covering no pixel of the scene.
+    """
+    from rasterio import features
+
+    path = pathlib.Path(path)
+    try:
+        data = json.loads(path.read_text())
+    except FileNotFoundError:
+        raise InputError(f"{path}: area file not found") from None
+    except (OSError, ValueError) as exc:
+        raise InputError(f"{path}: not a readable GeoJSON file ({exc})") from None
+    if transform is None:
+        raise InputError(f"{path}: the scene has no georeferencing, so polygons in map coordinates cannot be placed; give pixel boxes")
+    declared = (data.get("crs") or {}).get("properties", {}).get("name") if isinstance(data, dict) else None
+    if declared and crs is not None:
+        from rasterio.crs import CRS
+
+        try:
+            same = CRS.from_user_input(declared) == CRS.from_user_input(crs)
+        except Exception:  # noqa: BLE001 - an unparsable CRS name is a bad file, reported below
+            same = False
+        if not same:
+            raise InputError(f"{path}: polygons are in {declared}, the scene is in {crs}; reproject the polygons first")
+    if isinstance(data, dict) and data.get("type") == "FeatureCollection":
+        geoms = [f.get("geometry") for f in data.get("features", [])]
+    elif isinstance(data, dict) and data.get("type") == "Feature":
+        geoms = [data.get("geometry")]
+    elif isinstance(data, dict) and data.get("type") in ("Polygon", "MultiPolygon"):
+        geoms = [data]
+    else:
+        raise InputError(f"{path}: expected a GeoJSON FeatureCollection, Feature or Polygon")
+    geoms = [g for g in geoms if g and g.get("type") in ("Polygon", "MultiPolygon")]
+    if not geoms:
+        raise InputError(f"{path}: no Polygon or MultiPolygon features")
+    masks = []
+    for i, g in enumerate(geoms):
+        try:
+            m = features.rasterize([(g, 1)], out_shape=tuple(shape), transform=transform, fill=0, dtype="uint8")
+        except Exception as exc:  # noqa: BLE001 - rasterio raises several types for bad geometry
+            raise InputError(f"{path}: polygon {i + 1} cannot be rasterised ({exc})") from None
+        if not m.any():
+            raise InputError(f"{path}: polygon {i + 1} lies outside the scene")
+        masks.append(m.astype(bool))
+    return masks
