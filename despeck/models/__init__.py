@@ -18,16 +18,37 @@ Examples
 
 from __future__ import annotations
 
+import importlib
+
+# The registry and the bundled-model paths need no torch: listing and checking model
+# names (a training config) stays light. The names below that need torch are imported
+# from their modules on first use; the family modules register their variants when the
+# registry first needs them (despeck.models.registry.BUILTIN_MODELS).
 from .registry import (ModelEntry, create_model, list_models, model_defaults, model_description, model_entry,
                        register_model)
-from .wrapper import CONDITION_CHANNELS, DEFAULT_LOG_SCALE, Despeckler
 from .bundled import BUNDLED_MODELS, bundled_model_path, resolve_model_path
 
-# Importing the family modules registers their variants.
-from . import logcnn, unet  # noqa: E402,F401  isort: skip
-from .logcnn import LogCNN  # noqa: E402
-from .modelfile import FORMAT_VERSION, load_model_file, read_model_metadata, save_model_file  # noqa: E402
-from .unet import UNet  # noqa: E402
+#: Public name -> the module of this package that defines it (imported on first use).
+_LAZY_NAMES = {
+    "Despeckler": "wrapper", "DEFAULT_LOG_SCALE": "wrapper", "CONDITION_CHANNELS": "wrapper",
+    "LogCNN": "logcnn", "UNet": "unet",
+    "FORMAT_VERSION": "modelfile", "load_model_file": "modelfile", "read_model_metadata": "modelfile",
+    "save_model_file": "modelfile",
+}
+
+
+def __getattr__(name):
+    module = _LAZY_NAMES.get(name)
+    if module is None:
+        raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
+    value = getattr(importlib.import_module(f"{__name__}.{module}"), name)
+    globals()[name] = value  # later look-ups find it directly
+    return value
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY_NAMES))
+
 
 __all__ = [
     "register_model",

@@ -24,24 +24,39 @@ each argument on its own (:data:`ARGUMENT_LIMITS`, :data:`MAX_ARGUMENT`,
 (shapes only, no memory for weights): parameter count, receptive field and pooling
 multiple. :func:`weight_shapes` gives those shapes so a model file's tensors can be
 compared with them before anything is allocated.
+
+This module needs no torch to list or check names: the variants that come with despeck
+are known from :data:`BUILTIN_MODELS` (name -> the module that registers it), and a
+family's module -- with torch -- is imported the first time one of its entries is
+needed (building, defaults, shapes). Checking a training config therefore never loads
+torch.
 """
 
 from __future__ import annotations
 
 import copy
+import functools
+import importlib
 import inspect
+import sys
 from dataclasses import dataclass
 from types import MappingProxyType
 from typing import Callable, Mapping
 
-import torch
-from torch.overrides import TorchFunctionMode
-
 from ..errors import InputError
 
 __all__ = ["ModelEntry", "register_model", "model_entry", "create_model", "list_models", "model_defaults", "model_description",
-           "weight_shapes", "ARGUMENT_LIMITS", "MAX_ARGUMENT", "MAX_LIST_LENGTH", "MAX_PARAMETERS",
+           "weight_shapes", "BUILTIN_MODELS", "ARGUMENT_LIMITS", "MAX_ARGUMENT", "MAX_LIST_LENGTH", "MAX_PARAMETERS",
            "MAX_RECEPTIVE_FIELD", "MAX_SIZE_MULTIPLE"]
+
+#: The network variants that come with despeck, each with the module of this package
+#: whose ``@register_model`` records it. Names are listed and checked from this table
+#: without importing torch; the module is imported the first time an entry is needed.
+BUILTIN_MODELS = MappingProxyType({
+    "logcnn-xs": "logcnn", "logcnn-s": "logcnn", "logcnn-m": "logcnn",
+    "unet-xs": "unet", "unet-s": "unet", "unet-m": "unet",
+    "unet-cond-xs": "unet", "unet-cond-s": "unet", "unet-cond-m": "unet",
+})
 
 # Ceilings on what a network description may ask for. The registered variants stay far
 # below them (the largest, unet-m and logcnn-m, have under 0.6 M parameters, receptive
@@ -90,6 +105,19 @@ class ModelEntry:
 _REGISTRY: dict[str, ModelEntry] = {}
 
 
+def _load_builtin(name) -> None:
+    """Import the module that registers the built-in variant ``name`` (nothing for other names).
+
+    A module being imported -- one registering its own variants -- is already in
+    ``sys.modules`` and is left alone.
+    """
+    module = BUILTIN_MODELS.get(name) if isinstance(name, str) else None
+    if module is not None and name not in _REGISTRY:
+        full = f"{__package__}.{module}"
+        if full not in sys.modules:
+            importlib.import_module(full)
+
+
 def register_model(name: str, constructor: Callable = None, *, description: str = "", **defaults):
     """Register the network variant ``name``, built as ``constructor(**defaults, **overrides)``.
 
@@ -120,6 +148,7 @@ def register_model(name: str, constructor: Callable = None, *, description: str 
     InputError
         ``name`` is already registered, or a default is not an argument of the constructor.
     """
+    _load_builtin(name)
     if name in _REGISTRY:
         raise InputError(f"model name {name!r} is already registered")
 
@@ -144,12 +173,13 @@ def register_model(name: str, constructor: Callable = None, *, description: str 
 
 
 def list_models() -> list[str]:
-    """Sorted names of every registered network variant."""
-    return sorted(_REGISTRY)
+    """Sorted names of every network variant: the built-in ones and any registered since (no torch needed)."""
+    return sorted(set(_REGISTRY) | set(BUILTIN_MODELS))
 
 
 def model_entry(name) -> ModelEntry:
     """The :class:`ModelEntry` registered as ``name``; :class:`InputError` listing the names otherwise."""
+    _load_builtin(name)
     try:
         return _REGISTRY[name]
     except (KeyError, TypeError):
@@ -238,21 +268,31 @@ def _check_limit(key, value, ceiling, nested=0):
         raise InputError(f"model argument {key} must not be a mapping")
 
 
-class _ShapesOnly(TorchFunctionMode):
-    """Skip in-place operations on meta tensors (weight initialisation): there is nothing to
-    compute, and torch's first meta random-number call costs about a second of set-up."""
+@functools.lru_cache(maxsize=1)
+def _shapes_only_mode():
+    """The torch function mode of :func:`_meta_shapes` (defined on first use: it needs torch)."""
+    import torch
+    from torch.overrides import TorchFunctionMode
 
-    def __torch_function__(self, func, types, args=(), kwargs=None):
-        name = getattr(func, "__name__", "")
-        if (name.endswith("_") and not name.endswith("__") and args
-                and isinstance(args[0], torch.Tensor) and args[0].is_meta):
-            return args[0]
-        return func(*args, **(kwargs or {}))
+    class ShapesOnly(TorchFunctionMode):
+        """Skip in-place operations on meta tensors (weight initialisation): there is nothing to
+        compute, and torch's first meta random-number call costs about a second of set-up."""
+
+        def __torch_function__(self, func, types, args=(), kwargs=None):
+            name = getattr(func, "__name__", "")
+            if (name.endswith("_") and not name.endswith("__") and args
+                    and isinstance(args[0], torch.Tensor) and args[0].is_meta):
+                return args[0]
+            return func(*args, **(kwargs or {}))
+
+    return ShapesOnly
 
 
 def _meta_shapes(name, resolved):
     """Build variant ``name`` on the meta device, check its size; list of (tensor name, shape)."""
-    with torch.device("meta"), _ShapesOnly():
+    import torch
+
+    with torch.device("meta"), _shapes_only_mode()():
         network = model_entry(name).constructor(**resolved)
     count = sum(p.numel() for p in network.parameters())
     if count > MAX_PARAMETERS:
