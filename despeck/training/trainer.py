@@ -17,91 +17,40 @@ rasters, checkpoint to resume from) before any training starts, sets up the CPU
   every global batch, validation measures are combined over the processes, and only
   process 0 writes files (config, metrics, checkpoints, the model).
 
-Every file the trainer writes (checkpoints, ``metrics.csv``, ``config.yaml``, the model)
-goes through a temporary file that is synced and size-checked before it is renamed into
-place, so a full disk or a kill never leaves a half-written file; a write error stops
-training with one line naming the file. SIGINT and SIGTERM stop training with
-:class:`TrainingInterrupted` (its ``exit_code`` is 130 or 143), whose message names the
-last checkpoint; ``resume=True`` continues from it, or starts afresh when the run was
-stopped before its first checkpoint. A loss or weights that become NaN or infinite stop
+This module holds the fit loop; the run folder (safe writes, checkpoints, the metrics
+log, resuming) is :mod:`despeck.training.run_folder`, the clean stop on SIGINT and
+SIGTERM (:class:`TrainingInterrupted`, exit code 130 or 143, naming the last checkpoint)
+:mod:`despeck.training.interrupts`, and the export of the best weights as a model file
+:mod:`despeck.training.export`. A loss or weights that become NaN or infinite stop
 training with :class:`TrainingDiverged` at the step where it happened.
-
-At the end the best weights are exported with :func:`despeck.models.save_model_file`;
-its ``training`` metadata says how the model was trained (``mode``: simulated speckle on
-clean references, or ``pairs`` / ``sublooks`` of real data with their files and looks).
 """
 
 from __future__ import annotations
 
-import csv
-import functools
-import io
+import dataclasses
 import logging
-import math
 import os
 import signal
-import tempfile
-import threading
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import lightning.pytorch as pl
 import torch
 
-from ..atomic import publish, sibling_temp, write_problem
 from ..cpu import bf16_supported, usable_cores  # re-exported: callers and tests know them here
-from ..errors import ConfigError, DespeckError, InputError, ModelFileError
-from .config import TrainConfig, config_to_dict, dump_config, parse_duration
+from ..errors import ConfigError, InputError, ModelFileError
+from .config import TrainConfig, dump_config, parse_duration
+from .export import export_best, init_from_model_file
+from .interrupts import stop_on_signals
+from .outcome import TrainingDiverged, TrainingInterrupted, TrainingWarning, TrainResult  # re-exported
+from .run_folder import (AtomicCheckpointIO, MetricsLogger, check_same_run, metrics_rows_until, prepare_output,
+                         read_checkpoint, write_text_atomically)
 
 __all__ = ["train", "TrainResult", "EpochTimeBudget", "bf16_supported", "usable_cores", "configure_cpu",
-           "TrainingInterrupted", "TrainingDiverged", "TrainingWarning", "ProcessLayout", "process_layout"]
-
-
-class TrainingInterrupted(DespeckError):
-    """Training was stopped by a signal (SIGINT: Ctrl-C, or SIGTERM: a scheduler or ``kill``).
-
-    Attributes
-    ----------
-    signum : int
-        The signal.
-    exit_code : int
-        ``128 + signum`` (130 for SIGINT, 143 for SIGTERM), the shell convention.
-    checkpoint : Path or None
-        The last checkpoint, from which ``resume=True`` continues (None if there is none).
-    """
-
-    def __init__(self, message, *, signum, checkpoint=None):
-        super().__init__(message)
-        self.signum = int(signum)
-        self.exit_code = 128 + self.signum
-        self.checkpoint = checkpoint
-
-
-class TrainingDiverged(ConfigError):
-    """The training loss or the weights became NaN or infinite (usually: the learning rate is too high)."""
-
-
-class TrainingWarning(UserWarning):
-    """Something the user should know about a training run that does not stop it."""
-
-
-@dataclass
-class TrainResult:
-    """What a finished run produced."""
-
-    output_dir: Path
-    model_path: Path
-    config_path: Path
-    metrics_path: Path
-    best_checkpoint: Path
-    best_metrics: dict = field(default_factory=dict)
-    epochs: int = 0
-    steps: int = 0
-    stopped_by: str = ""
-    #: global rank of this process (0 unless trained by several processes; only 0 writes files)
-    rank: int = 0
+           "TrainingInterrupted", "TrainingDiverged", "TrainingWarning", "ProcessLayout", "process_layout",
+           "read_checkpoint"]
 
 
 @dataclass(frozen=True)
@@ -231,239 +180,6 @@ class EpochTimeBudget(pl.Callback):
         self.longest_epoch = float(state.get("longest_epoch", 0.0))
 
 
-def _atomic_write_bytes(path: Path, data, error=ConfigError, what="file") -> None:
-    """Write ``data`` to ``path`` through a synced, size-checked temporary file; one-line ``error`` on failure."""
-    path = Path(path)
-    tmp = None
-    try:
-        path.parent.mkdir(parents=True, exist_ok=True)
-        tmp = sibling_temp(path)
-        with open(tmp, "wb") as f:
-            f.write(data)
-            f.flush()
-        size = os.path.getsize(tmp)
-        if size != len(data):
-            raise OSError(f"only {size} of {len(data)} bytes were written")
-        publish(tmp, path)  # fsync, then rename
-    except OSError as exc:
-        problem = write_problem(path.parent, exc, tmp)
-        reason = problem.text if problem else (exc.strerror or str(exc))
-        raise error(f"cannot write {what} {path}: {reason}") from None
-    finally:
-        if tmp is not None:
-            tmp.unlink(missing_ok=True)
-
-
-def _atomic_write_text(path: Path, text: str) -> None:
-    _atomic_write_bytes(path, text.encode("utf-8"), ConfigError, "training output")
-
-
-def _prepare_output(config: TrainConfig, resume: bool, rank: int = 0):
-    """The output folder, checked writable, and whether there is a checkpoint to resume from.
-
-    The processes other than 0 of a distributed run write nothing and only follow
-    process 0's decision (which they reach from the same files).
-    """
-    out = Path(config.output.dir).expanduser()
-    if rank != 0:
-        return out, resume and (out / "checkpoints" / "last.ckpt").is_file()
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-        fd, probe = tempfile.mkstemp(prefix=".write-test.", dir=out)
-        os.close(fd)
-        os.unlink(probe)
-    except OSError as exc:
-        raise ConfigError(f"config key output.dir: cannot write to {out} ({exc.strerror or exc})") from None
-    last = out / "checkpoints" / "last.ckpt"
-    if resume and not last.is_file():
-        # Killed before its first checkpoint (or never started): there is nothing to
-        # continue, and nothing of value to keep -- start the run afresh.
-        started = (out / "metrics.csv").exists() or (out / "config.yaml").exists()
-        warnings.warn(
-            f"nothing to resume in {out}: "
-            + ("the run stopped before its first checkpoint" if started else "no run was started there")
-            + "; starting afresh", TrainingWarning, stacklevel=3)
-        return out, False
-    if not resume and last.exists():
-        raise ConfigError(
-            f"config key output.dir: {out} already holds a training run; pass --resume to continue it "
-            "or choose another output.dir"
-        )
-    if not resume and (out / "metrics.csv").exists():
-        raise ConfigError(
-            f"config key output.dir: {out} holds a training run stopped before its first checkpoint; "
-            "pass --resume to start it afresh or choose another output.dir"
-        )
-    return out, resume
-
-
-def read_checkpoint(path) -> dict:
-    """Load a despeck training checkpoint as plain data (``weights_only``: no code runs).
-
-    Raises
-    ------
-    ModelFileError
-        Missing, corrupt, foreign or newer-format checkpoint.
-    """
-    from .module import CHECKPOINT_FORMAT, CHECKPOINT_VERSION
-
-    path = Path(path)
-    if not path.is_file():
-        raise ModelFileError(f"checkpoint {path} does not exist")
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")  # notes about pickle protocols of foreign files
-            ckpt = torch.load(path, map_location="cpu", weights_only=True)
-    except Exception as exc:  # torch raises many types for corrupt or pickle-bearing files
-        first = (str(exc).splitlines() or [type(exc).__name__])[0][:160]
-        raise ModelFileError(f"checkpoint {path} is corrupt or not a plain despeck checkpoint ({first})") from None
-    info = ckpt.get("despeck") if isinstance(ckpt, dict) else None
-    if not isinstance(info, dict) or info.get("format") != CHECKPOINT_FORMAT:
-        raise ModelFileError(f"checkpoint {path} was not written by despeck train")
-    if int(info.get("format_version", 0)) > CHECKPOINT_VERSION:
-        raise ModelFileError(
-            f"checkpoint {path} uses format version {info.get('format_version')}, newer than this despeck reads "
-            f"(up to {CHECKPOINT_VERSION}); upgrade despeck"
-        )
-    if "state_dict" not in ckpt:
-        raise ModelFileError(f"checkpoint {path} holds no weights")
-    return ckpt
-
-
-# Settings a resumed run may change: they do not alter what is computed.
-_RESUMABLE_CHANGES = {"budget", "trainer.progress", "trainer.threads", "trainer.log_every_n_steps",
-                      "trainer.processes_per_node", "trainer.nodes", "data.num_workers", "output"}
-
-
-def _flatten(d, prefix=""):
-    flat = {}
-    for k, v in d.items():
-        key = f"{prefix}{k}"
-        if isinstance(v, dict) and k not in ("kwargs",):
-            flat.update(_flatten(v, key + "."))
-        else:
-            flat[key] = v
-    return flat
-
-
-def _check_same_run(config: TrainConfig, saved_path: Path) -> None:
-    """Refuse to resume with settings that would make the result differ from an uninterrupted run."""
-    import yaml
-
-    from .config import config_from_dict, read_yaml
-
-    if not saved_path.is_file():
-        return
-    try:
-        saved = config_to_dict(config_from_dict(read_yaml(saved_path.read_text(encoding="utf-8"))))
-    except (ConfigError, yaml.YAMLError, OSError):
-        raise ConfigError(f"cannot resume: the saved run configuration {saved_path} is unreadable") from None
-    old, new = _flatten(saved), _flatten(config_to_dict(config))
-    for key in sorted(set(old) | set(new)):
-        if key in _RESUMABLE_CHANGES or key.split(".")[0] in _RESUMABLE_CHANGES:
-            continue
-        if old.get(key) != new.get(key):
-            raise ConfigError(
-                f"config key {key}: {new.get(key)!r} differs from {old.get(key)!r} in the run being resumed "
-                f"({saved_path}); resume with the same settings or start a new output.dir"
-            )
-
-
-def _metrics_rows_until(path: Path, step: int):
-    """Header and rows of a metrics CSV logged at or before ``step`` (None if there is no file).
-
-    Rows after the last checkpoint belong to work that a kill threw away; the resumed
-    run logs those steps again.
-    """
-    if not path.is_file():
-        return None
-    with path.open(newline="") as f:
-        rows = list(csv.reader(f))
-    if not rows or "step" not in rows[0]:
-        return None
-    i = rows[0].index("step")
-    return [rows[0]] + [r for r in rows[1:] if len(r) > i and (not r[i] or float(r[i]) <= step)]
-
-
-class _MetricsLogger(pl.loggers.Logger):
-    """``metrics.csv``: one row per logging call, columns sorted by name (the layout of
-    Lightning's CSVLogger). Every flush rewrites the whole file through a temporary file,
-    so the file on disk is always complete; a resumed run starts from the rows of the run
-    it continues (``previous_rows``: header and rows, as from :func:`_metrics_rows_until`).
-    """
-
-    def __init__(self, path: Path, previous_rows=None, flush_every: int = 20, write: bool = True):
-        super().__init__()
-        self.path = Path(path)
-        self.write = bool(write)  # False in the processes other than 0 of a distributed run
-        self.flush_every = max(1, int(flush_every))
-        self.rows = []
-        if previous_rows:
-            header = previous_rows[0]
-            self.rows = [dict(zip(header, row)) for row in previous_rows[1:]]
-        self._written = len(self.rows)
-
-    @property
-    def name(self):
-        return ""
-
-    @property
-    def version(self):
-        return ""
-
-    @property
-    def save_dir(self):
-        return str(self.path.parent)
-
-    @property
-    def log_dir(self):
-        return str(self.path.parent)
-
-    def log_hyperparams(self, params, *args, **kwargs):
-        pass  # the resolved config is saved as config.yaml
-
-    def log_metrics(self, metrics, step=None):
-        row = {k: (v.item() if isinstance(v, torch.Tensor) else v) for k, v in metrics.items()}
-        row["step"] = len(self.rows) if step is None else step
-        self.rows.append(row)
-        if (row["step"] + 1) % self.flush_every == 0:
-            self.save()
-
-    def save(self):
-        if not self.write or not self.rows or self._written == len(self.rows) and self.path.is_file():
-            return
-        keys = sorted(set().union(*self.rows))
-        buf = io.StringIO()
-        writer = csv.DictWriter(buf, fieldnames=keys, lineterminator="\n")
-        writer.writeheader()
-        writer.writerows(self.rows)
-        _atomic_write_bytes(self.path, buf.getvalue().encode("utf-8"), ConfigError, "training metrics")
-        self._written = len(self.rows)
-
-    def finalize(self, status):
-        if status == "failed":
-            try:  # keep what can be kept; the error that stopped training is the one to report
-                self.save()
-            except (DespeckError, OSError):
-                pass
-        else:
-            self.save()
-
-
-class _AtomicCheckpointIO(pl.plugins.TorchCheckpointIO):
-    """Lightning checkpoint writer that never leaves a half-written checkpoint.
-
-    Lightning's own writer stages the file in the system temporary folder and moves it,
-    which is neither atomic across file systems nor safe on a full disk; here the
-    checkpoint is written beside its destination, synced, size-checked and renamed.
-    """
-
-    def save_checkpoint(self, checkpoint, path, storage_options=None):
-        buf = io.BytesIO()
-        torch.save(checkpoint, buf)
-        _atomic_write_bytes(Path(path), buf.getbuffer(), ModelFileError, "checkpoint")
-
-
 class _NoAdverts(logging.Filter):
     """Drop Lightning's "Tip: try installing ..." notes for other products from its log."""
 
@@ -493,58 +209,6 @@ class _DivergenceGuard(pl.Callback):
             )
 
 
-def _stop_on_signals(fn):
-    """Run ``train`` with SIGINT and SIGTERM turned into :class:`TrainingInterrupted`.
-
-    The signal interrupts whatever runs (checkpoints are written atomically, so none is
-    left half-written); the message names the last checkpoint and how to continue.
-    """
-
-    class _Signalled(BaseException):  # not an Exception: nothing on the way catches it
-        pass
-
-    @functools.wraps(fn)
-    def wrapper(config, *args, **kwargs):
-        if threading.current_thread() is not threading.main_thread():
-            return fn(config, *args, **kwargs)  # handlers can only be installed in the main thread
-        fired = []
-
-        def handler(signum, frame):  # noqa: ARG001
-            if fired:
-                return  # already stopping: let the clean-up finish
-            fired.append(signum)
-            raise _Signalled(signum)
-
-        previous = {s: signal.signal(s, handler) for s in (signal.SIGINT, signal.SIGTERM)}
-        try:
-            return fn(config, *args, **kwargs)
-        except _Signalled as exc:
-            signum = exc.args[0]
-        finally:
-            for s, h in previous.items():
-                signal.signal(s, h)
-        raise _interrupted(signum, Path(config.output.dir).expanduser()) from None
-
-    return wrapper
-
-
-def _interrupted(signum, out: Path) -> TrainingInterrupted:
-    name = signal.Signals(signum).name
-    last = out / "checkpoints" / "last.ckpt"
-    if not last.is_file():
-        return TrainingInterrupted(
-            f"training interrupted by {name} before the first checkpoint; nothing was kept in {out}; "
-            "run the same command with --resume to start it afresh", signum=signum)
-    try:
-        ckpt = read_checkpoint(last)
-        when = f" (epoch {int(ckpt['epoch']) + 1}, step {int(ckpt['global_step'])})"
-    except (ModelFileError, KeyError, TypeError, ValueError):
-        when = ""
-    return TrainingInterrupted(
-        f"training interrupted by {name}; the last checkpoint is {last}{when}; "
-        "run the same command with --resume to continue from it", signum=signum, checkpoint=last)
-
-
 def _stop_started_processes(trainer) -> None:
     """Kill the processes Lightning started for this node's share of a distributed run (none alone)."""
     launcher = trainer.strategy.launcher
@@ -559,31 +223,7 @@ def _wait_started_processes(trainer) -> None:
         proc.wait()
 
 
-def _init_from_model_file(network, source) -> None:
-    """Copy the weights of model file ``source`` (a path or a bundled name) into ``network``.
-
-    Fine-tuning starts from them; the file's network must be the same architecture with
-    the same arguments (one-line ConfigError naming the key otherwise).
-    """
-    from ..models import load_model_file, resolve_model_path
-
-    path = resolve_model_path(source)
-    try:
-        donor = load_model_file(path)
-    except DespeckError as exc:
-        raise ConfigError(f"config key model.init: {exc}") from None
-    d_net = donor.network
-    if (getattr(d_net, "architecture", None) != network.architecture
-            or getattr(d_net, "architecture_kwargs", None) != network.architecture_kwargs):
-        raise ConfigError(
-            f"config key model.init: {path} holds a {getattr(d_net, 'architecture', '?')} network with "
-            f"{getattr(d_net, 'architecture_kwargs', {})}, but model.name/model.kwargs ask for "
-            f"{network.architecture} with {network.architecture_kwargs}; set model.name to match"
-        )
-    network.load_state_dict(d_net.state_dict())
-
-
-@_stop_on_signals
+@stop_on_signals
 def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks=()) -> TrainResult:
     """Train a despeckling network as ``config`` says and export the best model.
 
@@ -616,18 +256,18 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
         SIGINT or SIGTERM arrived.
     """
     from lightning.pytorch.callbacks import EarlyStopping, LearningRateMonitor, ModelCheckpoint, TQDMProgressBar
-    from ..models import Despeckler, create_model, save_model_file
+    from ..models import create_model
     from .data import TrainingData
     from .module import DespeckleModule
 
     progress = config.trainer.progress if progress is None else bool(progress)
     layout = process_layout(config)
-    out, resume = _prepare_output(config, resume, layout.rank)
+    out, resume = prepare_output(config, resume, layout.rank)
     ckpt_dir = out / "checkpoints"
     last = ckpt_dir / "last.ckpt"
     resume_ckpt = read_checkpoint(last) if resume else None
     if resume:
-        _check_same_run(config, out / "config.yaml")
+        check_same_run(config, out / "config.yaml")
 
     if config.trainer.precision == "bf16" and not bf16_supported():
         raise ConfigError("config key trainer.precision: bf16 needs a CPU with native bfloat16 "
@@ -641,7 +281,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
     except InputError as exc:
         raise ConfigError(f"config key model.kwargs: {exc}") from None
     if config.model.init and resume_ckpt is None:
-        _init_from_model_file(network, config.model.init)
+        init_from_model_file(network, config.model.init)
     if resume_ckpt is not None:
         info = resume_ckpt["despeck"]
         if info.get("architecture") != network.architecture or info.get("kwargs") != network.architecture_kwargs:
@@ -682,9 +322,9 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
 
     config_path = out / "config.yaml"
     if layout.rank == 0:
-        _atomic_write_text(config_path, dump_config(config))
+        write_text_atomically(config_path, dump_config(config))
     metrics_path = out / "metrics.csv"
-    previous = _metrics_rows_until(metrics_path, int(resume_ckpt["global_step"])) if resume_ckpt else None
+    previous = metrics_rows_until(metrics_path, int(resume_ckpt["global_step"])) if resume_ckpt else None
 
     lightning_log = logging.getLogger("lightning.pytorch")
     previous_level = lightning_log.level
@@ -699,7 +339,7 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
             # Lightning's notes about deliberate choices (no workers on a small CPU, an
             # existing log folder on resume) are not user errors.
             # A run stopped before its first validation has no monitored value yet: said
-            # once, in our words, below.
+            # once, in our words, by export_best.
             for message in (".*does not have many workers.*", ".*Experiment logs directory.*",
                             ".*exists and is not empty.*", ".*Checkpoint directory.*", ".*treespec.*",
                             ".*could not find the monitored key.*"):
@@ -721,9 +361,9 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
                 precision="bf16-mixed" if config.trainer.precision == "bf16" else "32-true",
                 max_epochs=config.budget.max_epochs if config.budget.max_epochs else -1,
                 max_steps=config.budget.max_steps if config.budget.max_steps else -1,
-                callbacks=cbs, logger=_MetricsLogger(metrics_path, previous, config.trainer.log_every_n_steps,
-                                                     write=layout.rank == 0),
-                plugins=[_AtomicCheckpointIO()],
+                callbacks=cbs, logger=MetricsLogger(metrics_path, previous, config.trainer.log_every_n_steps,
+                                                    write=layout.rank == 0),
+                plugins=[AtomicCheckpointIO()],
                 default_root_dir=str(out),
                 enable_progress_bar=progress, enable_model_summary=progress,
                 num_sanity_val_steps=0, deterministic=True, benchmark=False,
@@ -748,54 +388,16 @@ def train(config: TrainConfig, *, resume: bool = False, progress=None, callbacks
 
     if trainer.interrupted:  # pragma: no cover - Lightning turns Ctrl-C into an exit
         raise KeyboardInterrupt
+    result = TrainResult(
+        output_dir=out, model_path=out / config.output.model_file, config_path=config_path,
+        metrics_path=metrics_path, best_checkpoint=Path(checkpoint.best_model_path or last),
+        epochs=int(trainer.current_epoch), steps=int(trainer.global_step), rank=layout.rank)
     if layout.rank != 0:  # process 0 exports the model
-        return TrainResult(
-            output_dir=out, model_path=out / config.output.model_file, config_path=config_path,
-            metrics_path=metrics_path, best_checkpoint=Path(checkpoint.best_model_path or last),
-            epochs=int(trainer.current_epoch), steps=int(trainer.global_step), rank=layout.rank)
-    best_path = Path(checkpoint.best_model_path) if checkpoint.best_model_path else last
-    if not best_path.is_file():
-        raise ModelFileError(f"training ended before the first checkpoint; nothing to export in {ckpt_dir}")
-    if not checkpoint.best_model_path:
-        per_epoch = config.data.patches_per_epoch // config.data.batch_size
-        warnings.warn(
-            f"training stopped at step {trainer.global_step}, before the first validation (an epoch is "
-            f"{per_epoch} steps): the model has no validation measures and no bias correction; "
-            "allow at least one whole epoch", TrainingWarning, stacklevel=2)
-    best = read_checkpoint(best_path)
-    prefix = "despeckler.network."
-    network.load_state_dict({k[len(prefix):]: v for k, v in best["state_dict"].items() if k.startswith(prefix)})
-    best_metrics = dict(best["despeck"].get("metrics") or {})
-    model = Despeckler(network, looks=looks, log_bias=float(best_metrics.get("val_log_bias", 0.0)),
-                       log_scale=config.model.log_scale, point_false_alarm=config.model.point_false_alarm)
-    if model.conditioned and module.loss_fn.name == "mse_log":
-        # A looks-aware model keeps mean backscatter over its whole range of looks and
-        # correlations only with a bias per condition (despeck.training.calibration).
-        from .calibration import calibrate_log_bias_table
-
-        model.log_bias = 0.0
-        model.correlation_unknown = config.speckle.condition_dropout > 0
-        model.log_bias_table = calibrate_log_bias_table(model, looks_range=model.looks_range,
-                                                        seed=config.trainer.seed)
+        return result
     stopped_by = ("time budget" if budget is not None and budget.stopped
                   else "early stopping" if early is not None and early.stopped_epoch
                   else "max_steps" if config.budget.max_steps and trainer.global_step >= config.budget.max_steps
                   else "max_epochs")
-    cfg = config_to_dict(config)
-    model_path = save_model_file(
-        out / config.output.model_file, model,
-        normalisation={**module.loss_fn.describe()},
-        training={
-            "mode": mode,
-            "data": data.describe(),
-            "config": {k: cfg[k] for k in ("model", "speckle", "loss", "optim", "budget")},
-            "epochs": int(trainer.current_epoch), "steps": int(trainer.global_step),
-            "threads": threads, "precision": config.trainer.precision, "stopped_by": stopped_by,
-        },
-        metrics={k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in best_metrics.items()},
-    )
-    return TrainResult(
-        output_dir=out, model_path=model_path, config_path=config_path, metrics_path=metrics_path,
-        best_checkpoint=best_path, best_metrics=best_metrics, epochs=int(trainer.current_epoch),
-        steps=int(trainer.global_step), stopped_by=stopped_by,
-    )
+    return export_best(config, dataclasses.replace(result, stopped_by=stopped_by),
+                       validated=bool(checkpoint.best_model_path), network=network, module=module, data=data,
+                       looks=looks, mode=mode, threads=threads)
