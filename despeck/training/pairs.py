@@ -4,7 +4,7 @@ Without clean references a network can still learn to despeckle from two looks o
 the same reflectivity whose speckle is independent (Noise2Noise): one look is the
 input, the other the target, and a loss whose minimiser is the target's conditional
 mean (``gamma_nll``, or ``mse_log`` with the ``ln L - psi(L)`` correction for the
-target's looks) learns the reflectivity. Two sources of such pairs are read here:
+target's looks) learns the reflectivity. Two sources of such pairs are used:
 
 * **Dates** (``data.pairs``): two co-registered acquisitions on the same grid. Where
   the ground changed between them the target is not another look of the input, so
@@ -16,12 +16,15 @@ target's looks) learns the reflectivity. Two sources of such pairs are read here
   resolution along the split axis than the full scene, so a model trained on them
   sees a slightly different image than it will be applied to.
 
-Samples are pure functions of ``(seed, epoch, index)`` as in
-:mod:`despeck.training.data`, so resuming reproduces an uninterrupted run. Validation
-uses the bottom ``val_fraction`` of every pair's rows, never drawn for training, and
-reports what can be measured without a reference: the loss on fixed held-out patches,
-the ENL of the output on homogeneous areas found automatically in the strip, and the
-mean of the ratio input / output there (1 for a filter that keeps the mean).
+Reading the dates and sub-looks and making a source of each scene (looks, change
+mask, positions) is :mod:`despeck.training.pair_sources`, whose names this module
+re-exports; here are the datasets and the validation. Samples are pure functions of
+``(seed, epoch, index)`` as in :mod:`despeck.training.data`, so resuming reproduces an
+uninterrupted run. Validation uses the bottom ``val_fraction`` of every pair's rows,
+never drawn for training, and reports what can be measured without a reference: the
+loss on fixed held-out patches, the ENL of the output on homogeneous areas found
+automatically in the strip, and the mean of the ratio input / output there (1 for a
+filter that keeps the mean).
 
 References
 ----------
@@ -36,18 +39,18 @@ House (ratio change detection between multilook images; sub-look processing; fro
 from __future__ import annotations
 
 import math
-import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import torch
 from torch.utils.data import Dataset
 
 from ..change import change_mask, change_thresholds, correlated_window_factor  # the change test, re-exported
-from ..errors import ConfigError, DespeckError, InputError, RasterError
-from ..speckle import enl_intensity, estimate_looks, homogeneous_blocks, split_sublooks
+from ..errors import ConfigError, InputError, RasterError
+from ..speckle import enl_intensity, homogeneous_blocks
 from .config import TrainConfig
-from .data import EpochPatches, PatchLoaders, PositionTable, allowed_positions, augment, resolve_raster_paths
+from .pair_sources import MIN_KEPT_FRACTION, PairSource, make_pair_source, read_date_pair, read_slc_sublooks
+from .references import resolve_raster_paths
+from .sampling import EpochPatches, PatchLoaders, augment, patch_item
 
 __all__ = [
     "change_mask",
@@ -61,229 +64,10 @@ __all__ = [
     "read_slc_sublooks",
 ]
 
-# A training or validation patch must have at least this fraction of its pixels in the
-# loss (valid on every view and unchanged), so steps are not wasted on changed areas.
-_MIN_KEPT_FRACTION = 0.5
-
 # Homogeneous blocks used per pair for the validation ENL and mean-ratio measures (the
 # most homogeneous first; half calibrate the exported mean, half are measured).
 _MAX_BLOCKS_PER_PAIR = 64
 _MIN_BLOCK_UNCHANGED = 0.9
-
-
-# --------------------------------------------------------------------------- reading
-
-def _read(path, units, band):
-    """Intensity, validity and grid of one date (one-line errors)."""
-    from ..raster import open_scene
-
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            with open_scene(path, units=units) as reader:
-                intensity, valid = reader.read(band=band)
-                grid = (reader.width, reader.height, reader.crs, reader.transform)
-    except DespeckError:
-        raise
-    except (OSError, ValueError) as exc:
-        raise RasterError(f"{path}: cannot read ({exc})") from None
-    valid = np.asarray(valid, dtype=bool) & np.isfinite(intensity) & (intensity > 0)
-    return np.where(valid, intensity, 0).astype(np.float32), valid, grid
-
-
-def read_date_pair(first, second, *, units=None, band=1):
-    """Read two co-registered dates as intensities on one grid.
-
-    Returns
-    -------
-    views : ndarray of float32, shape (2, h, w)
-        The two dates' intensities (0 where invalid).
-    valid : ndarray of bool, shape (h, w)
-        Valid on both dates.
-
-    Raises
-    ------
-    RasterError
-        Unreadable files, or the second date on another grid (size, pixel geometry or CRS).
-    """
-    a, va, (wa, ha, crs_a, tf_a) = _read(first, units, band)
-    b, vb, (wb, hb, crs_b, tf_b) = _read(second, units, band)
-    what = None
-    if (wa, ha) != (wb, hb):
-        what = f"{wb}x{hb} pixels against {wa}x{ha}"
-    elif not tf_a.almost_equals(tf_b):
-        what = f"transform {tuple(round(v, 6) for v in tf_b[:6])} against {tuple(round(v, 6) for v in tf_a[:6])}"
-    elif crs_a != crs_b:
-        what = f"CRS {crs_b} against {crs_a}"
-    if what:
-        raise RasterError(f"data.pairs: {second} is not on the grid of {first} ({what}); co-register the two dates first")
-    return np.stack([a, b]), va & vb
-
-
-def read_slc_sublooks(path, count, *, axis="azimuth", oversampling=1.0, taper=None, centre=0.0, units=None, band=1):
-    """Read a single-look complex file and split it into ``count`` sub-look intensities.
-
-    Returns
-    -------
-    views : ndarray of float32, shape (count, h, w)
-        Sub-look intensities ``|z_k|^2`` (0 where invalid), each scaled by
-        :func:`despeck.speckle.split_sublooks` to the full scene's mean.
-    valid : ndarray of bool, shape (h, w)
-
-    Raises
-    ------
-    ConfigError
-        The file holds real (not complex) samples, or is too short along ``axis``.
-    RasterError
-        Unreadable file.
-    """
-    from ..raster import open_scene
-
-    try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            with open_scene(path, units=units) as reader:
-                if reader.units != "complex":
-                    raise ConfigError(
-                        f"config key data.slc: {path} holds real data ({reader.units}), not complex samples; "
-                        "sub-looks need a single-look complex file (complex data type or I/Q bands)"
-                    )
-                z, valid = reader.read_complex(band=band)  # the samples, phase kept
-    except DespeckError:
-        raise
-    except (OSError, ValueError) as exc:
-        raise RasterError(f"{path}: cannot read ({exc})") from None
-    try:
-        looks = split_sublooks(z, count, axis=axis, oversampling=oversampling, taper=taper, centre=centre)
-    except InputError as exc:
-        raise ConfigError(f"config key data.sublooks: {path}: {exc}") from None
-    views = (looks.real ** 2 + looks.imag ** 2).astype(np.float32)
-    valid = valid & np.all(views > 0, axis=0)
-    return np.where(valid, views, np.float32(0)), valid
-
-
-# --------------------------------------------------------------------------- sources
-
-@dataclass
-class PairSource:
-    """Co-registered views of one scene with independent speckle, in memory.
-
-    ``views[k]`` is a linear intensity; ``looks[k]`` its looks as used by the loss
-    (configured or estimated) and ``looks_estimated[k]`` the estimate (None if the
-    scene had too few homogeneous blocks). ``keep`` marks the pixels that enter the
-    loss: valid on every view and not flagged as changed.
-    """
-
-    name: str
-    kind: str
-    files: list
-    views: np.ndarray
-    valid: np.ndarray
-    keep: np.ndarray
-    looks: np.ndarray
-    looks_estimated: list
-    log_means: np.ndarray
-    val_start: int
-    train: PositionTable
-    val: PositionTable
-    changed_fraction: float = 0.0
-    #: lag-1 speckle correlation (rows, cols) measured on the first view, for conditioned networks
-    correlation: tuple = (0.0, 0.0)
-
-    def describe(self) -> dict:
-        d = {
-            "files": [str(f) for f in self.files],
-            "looks": [round(float(v), 4) for v in self.looks],
-            "looks_estimated": [None if v is None else round(float(v), 4) for v in self.looks_estimated],
-            "speckle_correlation_lag1": [round(float(v), 4) for v in self.correlation],
-        }
-        if self.kind == "pair":
-            d["changed_fraction"] = round(self.changed_fraction, 5)
-        else:
-            d["sublooks"] = int(self.views.shape[0])
-        return d
-
-
-def _estimate(views, valid):
-    out = []
-    for v in views:
-        try:
-            out.append(float(estimate_looks(v, valid)))
-        except InputError:
-            out.append(None)
-    return out
-
-
-def _make_source(name, kind, files, views, valid, config: TrainConfig) -> PairSource:
-    d = config.data
-    p = d.patch_size
-    h, w = valid.shape
-    if h < p or w < p:
-        raise ConfigError(f"config key data.patch_size: {p} is larger than {name} ({w}x{h} pixels)")
-    if not valid.any():
-        raise RasterError(f"{name}: no pixel is valid on every view; nothing to train on")
-    if h < 2 * p:
-        raise ConfigError(
-            f"config key data.val_fraction: {name} has {h} rows; pair training needs at least {2 * p} "
-            f"(twice data.patch_size) to hold a validation strip below the training rows"
-        )
-    estimated = _estimate(views, valid)
-    configured = config.speckle.looks
-    if configured == "auto":
-        missing = [f for f, e in zip(files if kind == "pair" else [f"sub-look {k + 1}" for k in range(len(views))],
-                                     estimated) if e is None or not math.isfinite(e)]
-        if missing:
-            raise ConfigError(f"config key speckle.looks: auto cannot estimate the looks of {name} ({missing[0]}: "
-                              "too few homogeneous 16x16 blocks); set speckle.looks to a number")
-        looks = np.array(estimated, dtype=np.float64)
-    else:
-        looks = np.full(len(views), float(configured))
-        for e in estimated:
-            if e is not None and math.isfinite(e) and not 1 / 1.5 <= e / float(configured) <= 1.5:
-                warnings.warn(f"{name}: speckle.looks is {float(configured):g} but the looks estimated on the data "
-                              f"are {e:.2f}; set speckle.looks: auto to use the estimates", UserWarning, stacklevel=3)
-                break
-    try:
-        # The speckle correlation of the views: conditioned networks are told it (sub-looks
-        # are coarser, more correlated, than the full-resolution scene they will be applied
-        # to) and the change test counts independent samples with it.
-        from ..looks import measure_scene_correlation
-
-        measured = measure_scene_correlation(views[0], valid)
-    except InputError:
-        measured = None
-    correlation = measured.lag1 if measured is not None else (0.0, 0.0)
-    changed = np.zeros_like(valid)
-    if kind == "pair":
-        changed = change_mask(views[0], views[1], valid, looks_first=looks[0], looks_second=looks[1],
-                              window=d.change_window, false_alarm=d.change_false_alarm,
-                              correlation=None if measured is None else (measured.rows, measured.cols))
-    keep = valid & ~changed
-    log_means = np.array([float(np.mean(np.log(v[valid].astype(np.float64)))) for v in views])
-    val_rows = min(max(p, math.ceil(d.val_fraction * h)), h - p)
-    val_start = h - val_rows
-
-    def table(lo, hi):
-        return PositionTable(allowed_positions(valid, p, d.min_valid_fraction, lo, hi)
-                             & allowed_positions(keep, p, _MIN_KEPT_FRACTION, lo, hi))
-
-    changed_fraction = float(changed.sum() / max(valid.sum(), 1))
-    return PairSource(name, kind, list(files), views, valid, keep, looks, estimated, log_means, val_start,
-                      table(0, val_start), table(val_start, h), changed_fraction, correlation)
-
-
-def _item(noisy, target, valid, keep, looks, offset, cond=None):
-    cond_looks, cond_corr = cond if cond is not None else (looks, (0.0, 0.0))
-    return {
-        "cond_looks": torch.tensor(float(cond_looks), dtype=torch.float32),
-        "cond_corr": torch.tensor(tuple(float(v) for v in cond_corr), dtype=torch.float32),
-        "noisy": torch.from_numpy(np.ascontiguousarray(noisy, dtype=np.float32))[None],
-        "target": torch.from_numpy(np.ascontiguousarray(target, dtype=np.float32))[None],
-        "valid": torch.from_numpy(np.ascontiguousarray(valid, dtype=bool))[None],
-        "weight": torch.from_numpy(np.ascontiguousarray(keep, dtype=np.float32))[None],
-        "looks": torch.tensor(looks, dtype=torch.float32),
-        "log_offset": torch.tensor(offset, dtype=torch.float32),
-    }
 
 
 def _crop(src: PairSource, r0, c0, p, i, j):
@@ -314,7 +98,7 @@ class PairPatchDataset(EpochPatches):
             if t % 2:  # a quarter turn swaps rows and columns
                 corr = corr[::-1]
         offset = src.log_means[i] + c.data.offset_jitter * float(rng.standard_normal())
-        return _item(noisy, target, valid, keep, src.looks[j], offset, (src.looks[i], corr))
+        return patch_item(noisy, target, valid, src.looks[j], offset, (src.looks[i], corr), weight=keep)
 
 
 class PairValidationSet(Dataset):
@@ -341,7 +125,7 @@ class PairValidationSet(Dataset):
         if not refs:
             raise ConfigError(
                 "config key data.val_fraction: no pair has a validation strip with a "
-                f"{p}x{p} patch that is valid and at least {_MIN_KEPT_FRACTION:.0%} unchanged; "
+                f"{p}x{p} patch that is valid and at least {MIN_KEPT_FRACTION:.0%} unchanged; "
                 "raise data.val_fraction or lower data.patch_size"
             )
         rng = np.random.default_rng([c.trainer.seed, 2])
@@ -354,8 +138,8 @@ class PairValidationSet(Dataset):
             r0, c0 = src.val.position(k - (int(cum[f - 1]) if f else 0))
             i, j = (int(v) for v in rng.choice(src.views.shape[0], size=2, replace=False))
             noisy, target, valid, keep = _crop(src, r0, c0, p, i, j)
-            items.append(_item(noisy, target, valid, keep, src.looks[j], src.log_means[i],
-                                (src.looks[i], tuple(src.correlation))))
+            items.append(patch_item(noisy, target, valid, src.looks[j], src.log_means[i],
+                                    (src.looks[i], tuple(src.correlation)), weight=keep))
         self.items = items
         self.blocks = []  # (source, row, col, window)
         for src in sources:
@@ -427,7 +211,7 @@ class PairValidationSet(Dataset):
                 x = torch.from_numpy(np.stack([crops[k] for k in chunk])[:, None])
                 v = torch.from_numpy(np.stack([valids[k] for k in chunk])[:, None])
                 off = torch.tensor([offsets[k] for k in chunk], dtype=torch.float32)
-                y = despeckler(x, v, off, looks=float(src.looks[0]),
+                y = despeckler(x, v, off, looks=src.looks[0],
                                correlation=tuple(src.correlation))[:, 0].double().cpu().numpy()
                 for k, out in zip(chunk, y):
                     outputs[k] = out[m:out.shape[0] - m, m:out.shape[1] - m]
@@ -478,18 +262,18 @@ class PairTrainingData(PatchLoaders):
             views, valid = read_date_pair(a[0], b[0], units=d.units, band=d.band)
             name = f"{a[0].name} + {b[0].name}"
             count(name, views.size)
-            sources.append(_make_source(name, "pair", [a[0], b[0]], views, valid, config))
+            sources.append(make_pair_source(name, "pair", [a[0], b[0]], views, valid, config))
         for path in resolve_raster_paths(d.slc, "data.slc") if d.slc else []:
             views, valid = read_slc_sublooks(path, d.sublooks, axis=d.split_axis, oversampling=d.slc_oversampling,
                                              taper=d.slc_taper, centre=d.slc_centre, units=d.units, band=d.band)
             name = f"{path.name} ({d.sublooks} sub-looks along {d.split_axis})"
             count(name, views.size)
-            sources.append(_make_source(name, "sublooks", [path], views, valid, config))
+            sources.append(make_pair_source(name, "sublooks", [path], views, valid, config))
         if not any(s.train.total for s in sources):
             p = d.patch_size
             raise RasterError(
                 f"no {p}x{p} training patch with at least {d.min_valid_fraction:.0%} valid and "
-                f"{_MIN_KEPT_FRACTION:.0%} unchanged pixels in {sources[0].name}"
+                f"{MIN_KEPT_FRACTION:.0%} unchanged pixels in {sources[0].name}"
                 f"{' ...' if len(sources) > 1 else ''}; lower data.min_valid_fraction or data.patch_size"
             )
         self.sources = sources
