@@ -1,17 +1,4 @@
-"""Despeckling on a Dask cluster: many scenes one task each, or one huge scene chunk by chunk.
-
-Optional: needs ``pip install despeck[dask]`` (``dask[distributed]``, ``xarray``,
-``rioxarray``); importing this module without them raises one line saying so.
-
-**Many scenes** (:func:`apply_many`): one task per file on a ``dask.distributed``
-cluster -- the address of a running scheduler, a :class:`distributed.Client`, or a
-local cluster of single-threaded worker processes started for the call and bound to
-``127.0.0.1``. Each task loads the model file itself and streams its scene with
-:func:`despeck.inference.despeckle_file`, exactly as ``despeck apply`` does, so outputs
-are the same files. Runs are idempotent and resumable: outputs that exist are skipped
-(before submitting and again when a task claims its output, :mod:`despeck.atomic`), so
-several clusters or ``apply`` runs may share a folder without writing an output twice.
-A file that fails is reported with its one-line error; the other files go on.
+"""One huge scene held in an ``xarray.DataArray``, despeckled chunk by chunk with Dask, and written.
 
 **One huge scene** (:func:`despeckle_dataarray`): an ``xarray.DataArray`` (e.g. from
 ``rioxarray.open_rasterio(path, chunks=...)``) is despeckled lazily, chunk by chunk,
@@ -35,243 +22,29 @@ through despeck's own writer (claimed, written to a temporary file, read back, r
 
 from __future__ import annotations
 
-import contextlib
 import copy
 import dataclasses
-import logging
 import math
 import os
 import pathlib
-import threading
-import time
-import uuid
 import warnings
 
+import dask
+import dask.array as dsa
 import numpy as np
+import rioxarray  # noqa: F401 - registers the .rio accessor (CRS, transform, nodata)
+import xarray as xr
 
-from .errors import DespeckError, InputError
+from ..errors import DespeckError, InputError
 
-try:
-    import dask
-    import dask.array as dsa
-    import distributed
-    import rioxarray  # noqa: F401 - registers the .rio accessor (CRS, transform, nodata)
-    import xarray as xr
-except ImportError as exc:  # pragma: no cover - the extra is installed in the test environment
-    raise ImportError(f"despeck.distributed needs the dask extra ({exc.name} is missing): "
-                      "pip install 'despeck[dask]'") from None
+__all__ = ["despeckle_dataarray", "write_dataarray", "DEFAULT_CHUNK"]
 
-__all__ = ["FileResult", "apply_many", "open_client", "despeckle_dataarray", "write_dataarray", "DEFAULT_CHUNK"]
 
 #: Default chunk side of :func:`despeckle_dataarray` (pixels): a multiple of the output
 #: tile (512) and of every registered network's pooling grid; one chunk with its halo and
 #: the tiles in flight takes a few hundred MB per worker.
 DEFAULT_CHUNK = 2048
 
-
-# --------------------------------------------------------------------------- clusters
-
-@contextlib.contextmanager
-def open_client(client=None, *, workers=None, threads_per_worker=1, processes=True):
-    """A ``distributed.Client`` for ``client``: itself, a scheduler address, or a new local cluster.
-
-    Parameters
-    ----------
-    client : distributed.Client, str or None
-        A client (used as is, not closed), the address of a running scheduler
-        (``tcp://host:8786``), or None / ``"local"`` for a local cluster bound to
-        127.0.0.1 that is shut down on exit.
-    workers : int, optional
-        Workers of a local cluster; default the usable cores divided by
-        ``threads_per_worker``.
-    threads_per_worker : int
-        Threads of each local worker (tasks running at once in it).
-    processes : bool
-        Local workers are processes (default) or threads of this process.
-
-    Raises
-    ------
-    InputError
-        The scheduler cannot be reached.
-    """
-    if isinstance(client, distributed.Client):
-        yield client
-        return
-    if client is None or str(client).strip().lower() == "local":
-        from .cpu import usable_cores
-
-        n = workers or max(1, usable_cores() // max(1, int(threads_per_worker)))
-        with distributed.LocalCluster(n_workers=int(n), threads_per_worker=int(threads_per_worker),
-                                      processes=processes, protocol="tcp", host="127.0.0.1", dashboard_address=None,
-                                      silence_logs=logging.ERROR) as cluster, \
-                distributed.Client(cluster) as new:
-            yield new
-        return
-    try:
-        new = distributed.Client(str(client), timeout="20s")
-    except (OSError, TimeoutError) as exc:
-        raise InputError(f"dask scheduler {client}: cannot connect ({' '.join(str(exc).split())[:160]})") from None
-    try:
-        yield new
-    finally:
-        new.close()
-
-
-# --------------------------------------------------------------------------- many scenes
-
-@dataclasses.dataclass
-class FileResult:
-    """What happened to one input of :func:`apply_many`.
-
-    ``status`` is ``written``, ``skipped`` (the output exists), ``busy`` (another
-    process is writing it) or ``failed`` (``message`` says why, in one line);
-    ``warnings`` are the task's warnings (one line each).
-    """
-
-    input: pathlib.Path
-    output: pathlib.Path
-    status: str
-    seconds: float = 0.0
-    message: str = ""
-    warnings: list = dataclasses.field(default_factory=list)
-    worker: str = ""
-
-
-_models = threading.local()
-
-
-def _task_model(path):
-    """The model of ``path`` for this worker thread, loaded once per thread and file version."""
-    from .models import load_model_file
-
-    st = os.stat(path)
-    key = (os.path.realpath(path), st.st_mtime_ns, st.st_size)
-    cache = getattr(_models, "cache", None)
-    if cache is None or cache[0] != key:
-        cache = _models.cache = (key, load_model_file(path))
-    return cache[1]
-
-
-def _one_line(exc) -> str:
-    return " ".join(str(exc).split()) or type(exc).__name__
-
-
-def _apply_one(src, dst, model_path, options) -> FileResult:
-    """One task: despeckle ``src`` into ``dst`` (runs on a worker)."""
-    from rasterio.errors import RasterioError
-
-    from .atomic import OutputBusyError
-    from .inference import despeckle_file
-
-    src, dst = pathlib.Path(src), pathlib.Path(dst)
-    overwrite = bool(options.get("overwrite"))
-    worker = ""
-    with contextlib.suppress(ValueError):
-        worker = distributed.get_worker().address
-    if dst.exists() and not overwrite:
-        return FileResult(src, dst, "skipped", worker=worker)
-    start = time.perf_counter()
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        try:
-            despeckle_file(src, dst, _task_model(model_path), progress=False, **options)
-            status, message = "written", ""
-        except OutputBusyError as exc:
-            status, message = "busy", _one_line(exc)
-        except (DespeckError, OSError, RasterioError) as exc:
-            if dst.exists() and not overwrite:
-                status, message = "skipped", "written meanwhile by another process"
-            else:
-                status = "failed"
-                message = _one_line(exc) if isinstance(exc, DespeckError) else f"{src}: {_one_line(exc)}"
-    notes = list(dict.fromkeys(" ".join(str(w.message).split()) for w in caught))
-    return FileResult(src, dst, status, time.perf_counter() - start, message, notes, worker)
-
-
-def apply_many(inputs, outputs, model_path, client=None, *, threads=1, overwrite=False, units=None,
-               out_units=None, tile=None, overlap=None, bf16=False, looks=None, cog=False,
-               on_result=None) -> list[FileResult]:
-    """Despeckle many scenes on a Dask cluster, one task per file.
-
-    Parameters
-    ----------
-    inputs, outputs : sequence of path-like
-        Input rasters and their outputs, pairwise (e.g. from ``despeck apply``'s
-        planning); outputs that exist are skipped unless ``overwrite``.
-    model_path : path-like
-        Model file (``.safetensors``); each worker loads it (once per thread).
-    client : distributed.Client, str or None
-        Where to run: a client, a scheduler address, or None / ``"local"`` for a local
-        cluster of single-threaded worker processes, one per usable core divided by
-        ``threads``, started for this call (see :func:`open_client`).
-    threads : int
-        Torch threads of each task (default 1: the cluster's workers are the parallelism).
-    overwrite, units, out_units, tile, overlap, bf16, looks, cog
-        As for :func:`despeck.inference.despeckle_file`.
-    on_result : callable, optional
-        Called with each :class:`FileResult` as it arrives (in completion order).
-
-    Returns
-    -------
-    list of FileResult
-        In the order of ``inputs``. A task that could not run at all (a worker lost
-        repeatedly) is reported as failed too; nothing is raised for one file.
-
-    Raises
-    ------
-    InputError
-        ``inputs`` and ``outputs`` differ in length, the model file is missing, or the
-        scheduler cannot be reached.
-    """
-    inputs = [pathlib.Path(p) for p in inputs]
-    outputs = [pathlib.Path(p) for p in outputs]
-    if len(inputs) != len(outputs):
-        raise InputError(f"apply_many: {len(inputs)} inputs but {len(outputs)} outputs")
-    model_path = pathlib.Path(model_path).expanduser().resolve()
-    if not model_path.is_file():
-        raise InputError(f"model file {model_path} does not exist")
-    if isinstance(threads, bool) or not isinstance(threads, int) or threads < 1:
-        raise InputError(f"threads must be a whole number >= 1, got {threads!r}")
-    options = dict(overwrite=overwrite, units=units, out_units=out_units, tile=tile, overlap=overlap,
-                   threads=threads, bf16=bf16, looks=looks, cog=cog)
-    results = [None] * len(inputs)
-
-    def report(i, result):
-        results[i] = result
-        if on_result is not None:
-            on_result(result)
-
-    todo = []
-    for i, (src, dst) in enumerate(zip(inputs, outputs)):
-        if dst.exists() and not overwrite:
-            report(i, FileResult(src, dst, "skipped"))
-        else:
-            todo.append(i)
-    if not todo:
-        return results
-    run = uuid.uuid4().hex[:8]
-    from .cpu import usable_cores
-
-    # A local cluster gets one single-threaded worker per ``threads`` usable cores, so
-    # tasks of ``threads`` torch threads each never oversubscribe the machine.
-    with open_client(client, workers=max(1, usable_cores() // threads), threads_per_worker=1) as c:
-        futures = {}
-        for i in todo:
-            f = c.submit(_apply_one, str(inputs[i]), str(outputs[i]), str(model_path), options,
-                         key=f"despeck-apply-{run}-{i}", pure=False, retries=0)
-            futures[f] = i
-        for f in distributed.as_completed(list(futures)):
-            i = futures[f]
-            try:
-                result = f.result()
-            except Exception as exc:  # noqa: BLE001 - a lost worker or a bug: that file fails, the rest go on
-                result = FileResult(inputs[i], outputs[i], "failed",
-                                    message=f"{inputs[i]}: the task failed ({type(exc).__name__}: {_one_line(exc)})")
-            report(i, result)
-    return results
-
-
-# --------------------------------------------------------------------------- one huge scene
 
 @dataclasses.dataclass
 class _DataArrayScene:
@@ -289,7 +62,7 @@ class _DataArrayScene:
     _windows: dict = dataclasses.field(default_factory=dict)
 
     def read(self, window, band=1):  # noqa: ARG002 - one band per object
-        from .looks import scene_windows
+        from ..looks import scene_windows
 
         if not self._windows:
             spots = scene_windows(self.height, self.width)
@@ -305,7 +78,7 @@ class _DataArrayScene:
 
 def _to_intensity_block(raw, units, nodata):
     """Linear intensity of raw samples, 0 where invalid (by units, non-finite or nodata)."""
-    from .raster import to_intensity
+    from ..raster import to_intensity
 
     intensity, ok = to_intensity(np.asarray(raw), units)
     if nodata is not None and not (isinstance(nodata, float) and math.isnan(nodata)):
@@ -316,8 +89,8 @@ def _to_intensity_block(raw, units, nodata):
 def _despeckle_block(raw, *, model, units, nodata, log_offset, condition, tile, overlap, threads, bf16,
                      channels_last):
     """One chunk with its halo: despeckled samples in ``units``; invalid pixels keep their value."""
-    from .inference import despeckle_array
-    from .raster import from_intensity
+    from ..inference import despeckle_array
+    from ..raster import from_intensity
 
     intensity = _to_intensity_block(raw, units, nodata)
     ok = intensity > 0
@@ -352,7 +125,7 @@ def _source_scene(da, units):
     the file's values; a 2-D selection of one band of a multi-band file is ambiguous and
     is not matched.
     """
-    from .raster import open_scene
+    from ..raster import open_scene
 
     source = (da.encoding or {}).get("source")
     if not source or not os.path.isfile(str(source)):
@@ -423,11 +196,11 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
         Not a DataArray of 2 or 3 dimensions, unknown units, bad tile options, no
         valid pixel.
     """
-    from .inference import InferenceWarning, array_sample, condition_for_model, resolve_tiling
-    from .looks import describe_speckle, speckle_tags
-    from .models import Despeckler, load_model_file
-    from .provenance import model_provenance, provenance_tags, tiling_text, without_provenance
-    from .raster import SPECKLE_TAGS, check_units
+    from ..inference import InferenceWarning, array_sample, condition_for_model, resolve_tiling
+    from ..looks import describe_speckle, speckle_tags
+    from ..models import Despeckler, load_model_file
+    from ..provenance import model_provenance, provenance_tags, tiling_text, without_provenance
+    from ..raster import SPECKLE_TAGS, check_units
 
     if not isinstance(da, xr.DataArray) or da.ndim not in (2, 3) or 0 in da.shape:
         raise InputError("despeckle_dataarray expects an xarray.DataArray of shape (y, x) or (band, y, x), got "
@@ -538,8 +311,8 @@ def write_dataarray(da, path, *, units="intensity", overwrite=False, cog=False, 
     """
     from rasterio.windows import Window
 
-    from .provenance import PREFIX
-    from .raster import check_units, open_output, to_intensity
+    from ..provenance import PREFIX
+    from ..raster import check_units, open_output, to_intensity
 
     if not isinstance(da, xr.DataArray) or da.ndim not in (2, 3):
         raise InputError(f"write_dataarray expects a DataArray of shape (y, x) or (band, y, x), got {da!r:.80}")
