@@ -77,6 +77,7 @@ data. ICML 2018, arXiv:1803.04189 (training on pairs of independent noisy views)
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import math
 import pathlib
@@ -96,7 +97,8 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import bench_starter  # noqa: E402  (the measures and the CPU description of the starter benchmark)
 
-from despeck import bm3d_log, filters  # noqa: E402
+from despeck import filters  # noqa: E402
+bm3d_log = importlib.import_module("despeck.filters.bm3d_log")  # the module, not the filter function of that name
 from despeck.inference import despeckle_array  # noqa: E402
 from despeck.models import bundled_model_path, load_model_file, read_model_metadata  # noqa: E402
 from despeck.scene_families import make_family_scene  # noqa: E402

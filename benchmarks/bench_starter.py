@@ -60,6 +60,7 @@ speed on 1024 x 1024) about one minute.
 from __future__ import annotations
 
 import argparse
+import importlib
 import json
 import math
 import os
@@ -73,7 +74,8 @@ from scipy import ndimage
 ROOT = pathlib.Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT / "scripts"))
 
-from despeck import bm3d_log, filters, metrics  # noqa: E402
+from despeck import filters, metrics  # noqa: E402
+bm3d_log = importlib.import_module("despeck.filters.bm3d_log")  # the module, not the filter function of that name
 from despeck.cpu import cpu_description  # noqa: E402
 from despeck.inference import despeckle_array  # noqa: E402
 from despeck.models import load_model_file  # noqa: E402

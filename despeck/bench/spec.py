@@ -5,15 +5,16 @@ from __future__ import annotations
 import pathlib
 from dataclasses import dataclass, field
 
-from .. import bm3d_log, filters
+from .. import filters
 from ..errors import ConfigError, InputError
+from ..filters.bm3d_log import available as bm3d_available
 from ..speckle import check_looks
 
 __all__ = ["Method", "BenchScene", "parse_option_value", "parse_method", "load_scene_list", "DEFAULT_METHODS"]
 
 #: Methods run when none are given: every classical filter with its default window
 #: (bm3d-log only when its optional package is installed).
-DEFAULT_METHODS = tuple(n for n in filters.FILTERS if n != "bm3d-log" or bm3d_log.available())
+DEFAULT_METHODS = tuple(n for n in filters.FILTERS if n != "bm3d-log" or bm3d_available())
 
 
 # --------------------------------------------------------------------------- methods
