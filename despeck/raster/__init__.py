@@ -24,7 +24,8 @@ The package's modules, lowest first:
 - :mod:`~despeck.raster.reader` -- :class:`SceneReader` (intensity, or complex samples);
 - :mod:`~despeck.raster.writer` -- :class:`SceneWriter`, the named output profile, read-back, COG;
 - :mod:`~despeck.raster.scene` -- whole bands in memory;
-- :mod:`~despeck.raster.streaming` -- a scene through a function tile by tile, with a halo.
+- :mod:`~despeck.raster.streaming` -- the streaming engine: a scene band by band through a function
+  on strips of full rows, with a halo, a progress bar and the atomic output (:func:`open_stream`).
 """
 
 from __future__ import annotations
@@ -36,7 +37,7 @@ from .gdal_env import GDAL_CACHE_MB, limit_gdal_cache, quiet_native_error_printe
 from .paths import OutputFolderError, check_output_path
 from .reader import SceneReader, open_scene
 from .scene import Scene, read_scene, write_scene
-from .streaming import process_file, read_with_halo
+from .streaming import RasterStream, Strip, open_stream, process_file, read_with_halo
 from .units import OUTPUT_UNITS, UNITS, UnitsWarning, check_units, from_intensity, to_intensity
 from .writer import OUTPUT_PROFILE, OUTPUT_TILE, SPECKLE_TAGS, SceneWriter, open_output
 
@@ -62,6 +63,9 @@ __all__ = [
     "check_output_path",
     "OutputFolderError",
     "OutputBusyError",
+    "open_stream",
+    "RasterStream",
+    "Strip",
     "read_with_halo",
     "process_file",
     "limit_gdal_cache",
