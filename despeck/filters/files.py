@@ -1,10 +1,12 @@
-"""Filtering raster files: the SAR bands of a scene strip by strip through the engine, into a GeoTIFF.
+"""Filtering raster files: the SAR bands of a scene strip by strip, into a GeoTIFF.
 
-Strips of full rows are read with a halo of the method's reach and run through the
-filter's plan (:mod:`despeck.filters.engine`), so the file's result is bit-identical
-to filtering the whole scene in memory; filters without a strip plan (``bm3d-log``)
-read each band whole. Scene-level values (looks, the sigma filter's point
-threshold) are taken once per band.
+The package's streaming engine (:mod:`despeck.raster.streaming`) reads strips of full
+rows with a halo of the method's reach above and below, and writes the results; each
+strip's part inside the scene runs through the filter's plan
+(:mod:`despeck.filters.engine`, which cuts it into tiles), so the file's result is
+bit-identical to filtering the whole scene in memory. Filters without a strip plan
+(``bm3d-log``) get each band whole as one strip. Scene-level values (looks, the sigma
+filter's point threshold) are taken once per band.
 """
 
 from __future__ import annotations
@@ -73,10 +75,8 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
         ``point_threshold``), and the first of those as ``looks``,
         ``looks_estimated`` and ``options``.
     """
-    from tqdm.auto import tqdm
-
-    from .. import raster
     from ..provenance import provenance_tags
+    from ..raster.streaming import open_stream
 
     registered = filter_entry(method)
     name = registered.name
@@ -85,8 +85,9 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
     if looks is not None:
         looks = check_looks(looks)
     in_path = pathlib.Path(in_path)
-    raster.check_output_path(out_path, [in_path], overwrite=overwrite)
-    with raster.open_scene(in_path, units=units) as reader:
+    with open_stream(in_path, out_path, units=units, out_units=out_units, overwrite=overwrite, cog=cog,
+                     progress=progress, description=f"{name} {in_path.name}") as stream:
+        reader = stream.reader
         h, w = reader.height, reader.width
         if window > max(h, w):
             raise InputError(f"{in_path}: window {window} is larger than the scene ({w} x {h} pixels); "
@@ -97,23 +98,24 @@ def filter_raster(method, in_path, out_path, *, looks=None, window=None, units=N
         plans = [registered.plan(e["looks"], window, **e["options"]) if registered.plan else None for e in done]
         if registered.require is not None:
             registered.require()  # e.g. an optional package, before any progress bar or file
-        bar = tqdm(total=h * len(bands), unit="row", desc=f"{name} {in_path.name}", disable=not progress, leave=False)
-        with raster.open_output(out_path, like=reader, units=out_units, band_count=len(bands),
-                                overwrite=overwrite, cog=cog) as writer:
-            writer.update_tags(**provenance_tags(name, options={"window": window, **options}))
+        nworkers = check_workers(workers)
+        stream.create_output(band_count=len(bands))
+        stream.update_tags(**provenance_tags(name, options={"window": window, **options}))
+        with ThreadPoolExecutor(nworkers) as pool:
             for k, (entry, plan) in enumerate(zip(done, plans), start=1):
                 description = reader.descriptions[entry["band"] - 1] if entry["band"] <= len(reader.descriptions) else None
                 if description or entry["band"] != k:  # output band k is input band entry["band"]
-                    writer.set_description(k, description or "")
-                if registered.plan is None:
-                    _filter_whole_band(name, reader, writer, entry["band"], k, looks=entry["looks"], window=window,
-                                       options=entry["options"], workers=workers)
-                    bar.update(h)
-                    continue
-                _filter_strips(plan, reader, writer, entry["band"], k, workers, bar)
+                    stream.set_description(k, description or "")
+                if plan is None:
+                    # no strip plan (bm3d-log): the whole band is one strip
+                    whole = _whole_band(registered.function, looks=entry["looks"], window=window,
+                                        options=entry["options"], workers=workers)
+                    stream.map_strips(whole, band=entry["band"], out_band=k, rows=h)
+                else:
+                    stream.map_strips(_strip_filter(plan, pool if nworkers > 1 else None), band=entry["band"],
+                                      out_band=k, halo=(plan.halo, 0), rows=strip_rows(w, plan.halo))
             # The output is no longer L-look speckle: record the input's looks under input_*.
-            writer.update_tags(input_looks=f"{float(done[0]['looks']):.4g}", input_looks_source=done[0]["looks_source"])
-        bar.close()
+            stream.update_tags(input_looks=f"{float(done[0]['looks']):.4g}", input_looks_source=done[0]["looks_source"])
     first = done[0]
     return {
         "method": name,
@@ -167,38 +169,29 @@ def _band_settings(name, reader, band, looks, options, in_path) -> dict:
             "looks_source": looks_source, "options": options}
 
 
-def _filter_strips(plan, reader, writer, band, out_band, workers, bar):
-    """Filter one band of ``reader`` strip by strip into ``out_band`` of ``writer``."""
-    from ..raster.windows import row_window
+def _strip_filter(plan, pool):
+    """The strip function of a filter with a plan: the strip's scene part through the plan's tiles, its own rows kept.
 
-    nworkers = check_workers(workers)
-    h, w = reader.height, reader.width
-    rows = strip_rows(w, plan.halo)
-    with ThreadPoolExecutor(nworkers) as pool:
-        for r0 in range(0, h, rows):
-            r1 = min(r0 + rows, h)
-            s0, s1 = max(r0 - plan.halo, 0), min(r1 + plan.halo, h)
-            data, ok = reader.read(window=row_window(s0, s1, w), band=band)
-            data = np.where(ok, data, 0.0)
-            # the strip with its halo rows, as an image of its own whose top and
-            # bottom context is real data (or the scene's edge)
-            result = np.empty((s1 - s0, w), dtype=np.float32)
-            run_tiles(plan, data, ok, result, pool if nworkers > 1 else None)
-            core = slice(r0 - s0, r0 - s0 + (r1 - r0))
-            core_valid = ok[core]
-            result = result[core]
-            result[~core_valid] = 0.0
-            writer.write(result, row_window(r0, r1, w), band=out_band, valid=core_valid)
-            bar.update(r1 - r0)
+    The strip's halo rows beyond the scene are left out: a filter's neighbourhoods
+    treat the outside of the scene as missing data (zero and invalid, as in
+    :func:`~despeck.filters.engine.pad_block`), so each output pixel sees what it sees
+    when the whole scene is filtered at once.
+    """
+
+    def run(strip):
+        data, ok, own = strip.scene_part()
+        result = np.empty(data.shape, dtype=np.float32)
+        run_tiles(plan, data, ok, result, pool)
+        return result[own]
+
+    return run
 
 
-def _filter_whole_band(name, reader, writer, band, out_band, *, looks, window, options, workers):
-    """Methods without a strip plan (bm3d-log): read the whole band, filter it in memory, write it."""
-    from ..raster.windows import row_window
+def _whole_band(function, *, looks, window, options, workers):
+    """The strip function of a filter without a strip plan (bm3d-log): one strip holds the whole band."""
 
-    h, w = reader.height, reader.width
-    data, ok = reader.read(band=band)
-    filter_function = filter_entry(name).function
-    result = filter_function(np.where(ok, data, 0.0), looks=looks, window=window, mask=ok, workers=workers, **options)
-    result[~ok] = 0.0
-    writer.write(result, row_window(0, h, w), band=out_band, valid=ok)
+    def run(strip):
+        data, ok, _ = strip.scene_part()
+        return function(data, looks=looks, window=window, mask=ok, workers=workers, **options)
+
+    return run
