@@ -27,9 +27,8 @@ from torch import nn
 
 from despeck.cli import main
 from despeck.errors import InputError, RasterError
-from despeck.inference import (
-    InferenceWarning, _read_plan, _stream, bf16_supported, despeckle_array, despeckle_file, resolve_tiling,
-)
+from despeck.inference import InferenceWarning, bf16_supported, despeckle_array, despeckle_file, resolve_tiling
+from despeck.inference.blend import read_plan, stream_tiles
 from despeck.models import Despeckler, create_model, save_model_file
 from despeck.tiling import TileGrid
 
@@ -191,13 +190,13 @@ def test_speed_options_give_the_same_result(rng, monkeypatch):
     model = _conv_model(2)
     x = _scene(rng, (160, 160))
     base = despeckle_array(x, model, tile=48, overlap=16, threads=1, channels_last=False, progress=False)
-    monkeypatch.setattr("despeck.inference._TRIAL_MIN_PIXELS", 0)
+    monkeypatch.setattr("despeck.inference.runner.TRIAL_MIN_PIXELS", 0)
     for cl in (True, None):  # None: both formats timed on a crop of the first tile, the faster kept
         got = despeckle_array(x, model, tile=48, overlap=16, batch_size=2, threads=1, channels_last=cl,
                               progress=False)
         np.testing.assert_allclose(got, base, rtol=1e-5)
     assert next(model.parameters()).is_contiguous()  # memory format restored
-    monkeypatch.setattr("despeck.inference.bf16_supported", lambda: False)
+    monkeypatch.setattr("despeck.inference.runner.bf16_supported", lambda: False)
     with pytest.warns(InferenceWarning, match="no native bfloat16"):
         fallback = despeckle_array(x, model, tile=48, overlap=16, bf16=True, progress=False)
     np.testing.assert_allclose(fallback, base, rtol=1e-5)
@@ -248,8 +247,8 @@ def test_stream_memory_does_not_grow_with_height():
     # Peak buffers depend on tile size and width only; every row is read and emitted once, in order.
     grid_short = TileGrid.fitted((300, 50), 64, 16, 4)
     grid_tall = TileGrid.fitted((30000, 50), 64, 16, 4)
-    cap_short = max(u - k for k, u in zip(*_read_plan(grid_short.rows, 16)))
-    cap_tall = max(u - k for k, u in zip(*_read_plan(grid_tall.rows, 16)))
+    cap_short = max(u - k for k, u in zip(*read_plan(grid_short.rows, 16)))
+    cap_tall = max(u - k for k, u in zip(*read_plan(grid_tall.rows, 16)))
     assert cap_tall == cap_short <= 64 + 16
 
     reads, emits = [], []
@@ -265,7 +264,7 @@ def test_stream_memory_does_not_grow_with_height():
         assert source.shape == est.shape
 
     grid = TileGrid.fitted((rows, 50), 64, 16, 4)
-    _stream(grid, read_rows, emit_rows, lambda t: t.copy(), 2, None, chunk_rows=16)
+    stream_tiles(grid, read_rows, emit_rows, lambda t: t.copy(), 2, chunk_rows=16)
     assert [r for r, _ in reads] == [0] + [r for _, r in reads[:-1]] and reads[-1][1] == rows
     assert [r for r, _ in emits] == [0] + [r for _, r in emits[:-1]] and emits[-1][1] == rows
 
