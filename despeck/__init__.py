@@ -11,4 +11,10 @@ Layers, lowest first (a module imports only from its own layer or below):
 5. :mod:`despeck.cli` -- the ``despeck`` command.
 """
 
+import logging as _logging
+
 __version__ = "0.1.0"
+
+# A library says nothing unless its user configures logging (common practice);
+# ``despeck -v`` does so for the command line (despeck.cli.verbose_logging).
+_logging.getLogger(__name__).addHandler(_logging.NullHandler())

@@ -5,7 +5,8 @@ raises on purpose. Each specific error also subclasses the matching built-in
 (``ValueError`` for bad values, ``OSError`` for files) so ordinary ``except``
 clauses keep working. Messages are one line: what was expected, what was
 received, and, where possible, how to fix it. The command line prints them as
-``despeck: error: <message>`` and exits with status 2.
+``despeck: error: <message>`` and exits with status 1, or 2 for an
+:class:`OptionError` (the exit statuses are in :mod:`despeck.cli.exit_codes`).
 """
 
 from __future__ import annotations
@@ -13,6 +14,7 @@ from __future__ import annotations
 __all__ = [
     "DespeckError",
     "InputError",
+    "OptionError",
     "RasterError",
     "ConfigError",
     "ModelFileError",
@@ -26,6 +28,10 @@ class DespeckError(Exception):
 
 class InputError(DespeckError, ValueError):
     """A value given to a function or an option is out of range or inconsistent."""
+
+
+class OptionError(InputError):
+    """A command-line option's value is refused before any input file is read (a usage error)."""
 
 
 class RasterError(DespeckError, OSError):
