@@ -5,17 +5,19 @@ output is written to a temporary file beside its destination and renamed when
 complete and read back; existing outputs are skipped unless ``--overwrite``, so an
 interrupted batch run restarts where it stopped. An input that cannot be read or an
 output that cannot be written fails that file only (one line each, a summary at the
-end, exit status 2); an output folder that can take no file (read-only, full) stops
-every later output into it at once. Several ``apply`` runs may share a batch: an
-output another run is writing is skipped (``--busy``), and one another run finished
-meanwhile is skipped as well (checked when the output is claimed, not only at the
-start). ``--shard K/N`` gives a job array's task K its part of the sorted inputs. The
-work itself is :func:`despeck.inference.despeckle_file`.
+end; exit status 3 when other outputs are complete, 1 when none is); an output
+folder that can take no file (read-only, full) stops every later output into it at
+once. Several ``apply`` runs may share a batch: an output another run is writing is
+skipped (``--busy``), and one another run finished meanwhile is skipped as well
+(checked when the output is claimed, not only at the start). ``--shard K/N`` gives a
+job array's task K its part of the sorted inputs. The work itself is
+:func:`despeck.inference.despeckle_file`.
 """
 
 from __future__ import annotations
 
 import glob
+import logging
 import os
 import pathlib
 import signal
@@ -23,8 +25,11 @@ import sys
 import time
 import warnings
 
-from ..errors import DespeckError, InputError, ModelFileError
-from . import silence_library_noise
+from ..errors import DespeckError, InputError, ModelFileError, OptionError
+from . import check_threads, one_line_warnings
+from .exit_codes import batch_status, option_values, raise_terminated
+
+log = logging.getLogger(__name__)
 
 # Files a folder input contributes (other rasters can still be named one by one).
 _RASTER_SUFFIXES = {".tif", ".tiff"}
@@ -62,7 +67,8 @@ def add_arguments(parser):
                         help="replace existing outputs (inputs are never overwritten)")
     parser.add_argument("--busy", choices=("skip", "fail"), default="skip",
                         help="an output another despeck process is writing at the same time: skip it with a "
-                             "warning (default; exit status 0) or count it as failed")
+                             "warning (default; exit status 0) or count it as failed (exit status 1, or 3 when "
+                             "other outputs are complete)")
     parser.add_argument("--shard", metavar="K/N",
                         help="process only part K of N (1 <= K <= N) of the inputs, for job arrays: the inputs are "
                              "sorted by path, duplicates removed, and the file at position i (from 0) goes to part "
@@ -77,16 +83,16 @@ def add_arguments(parser):
 
 
 def parse_shard(text) -> tuple[int, int]:
-    """``"K/N"`` -> ``(K, N)`` with whole numbers ``1 <= K <= N``; InputError otherwise."""
+    """``"K/N"`` -> ``(K, N)`` with whole numbers ``1 <= K <= N``; OptionError otherwise."""
     parts = str(text).strip().split("/")
     try:
         if len(parts) != 2:
             raise ValueError
         k, n = (int(p.strip()) for p in parts)
     except ValueError:
-        raise InputError(f"--shard expects K/N with whole numbers (e.g. 2/8), got {text!r}") from None
+        raise OptionError(f"--shard expects K/N with whole numbers (e.g. 2/8), got {text!r}") from None
     if n < 1 or not 1 <= k <= n:
-        raise InputError(f"--shard K/N needs 1 <= K <= N, got {text!r}")
+        raise OptionError(f"--shard K/N needs 1 <= K <= N, got {text!r}")
     return k, n
 
 
@@ -142,11 +148,11 @@ def expand_inputs(patterns) -> list[pathlib.Path]:
 
 
 def plan_outputs(inputs, *, out=None, out_dir=None, suffix=DEFAULT_SUFFIX) -> list[pathlib.Path]:
-    """Output path of each input; refuses --out with several inputs and clashing outputs."""
+    """Output path of each input; refuses (:class:`OptionError`) --out with several inputs and clashing outputs."""
     if out is not None and len(inputs) != 1:
-        raise InputError(f"--out names one file but {len(inputs)} inputs matched; use --out-dir")
+        raise OptionError(f"--out names one file but {len(inputs)} inputs matched; use --out-dir")
     if out is None and not suffix and out_dir is None:
-        raise InputError("--suffix is empty and no --out-dir given: outputs would replace the inputs")
+        raise OptionError("--suffix is empty and no --out-dir given: outputs would replace the inputs")
     outputs = []
     for path in inputs:
         if out is not None:
@@ -159,9 +165,9 @@ def plan_outputs(inputs, *, out=None, out_dir=None, suffix=DEFAULT_SUFFIX) -> li
     for src, dst in zip(inputs, outputs):
         key = os.path.realpath(dst)
         if key in input_keys:
-            raise InputError(f"{dst}: output would overwrite the input {input_keys[key]}; change --suffix or --out-dir")
+            raise OptionError(f"{dst}: output would overwrite the input {input_keys[key]}; change --suffix or --out-dir")
         if key in by_target:
-            raise InputError(f"{by_target[key]} and {src} would both be written to {dst}; use separate --out-dir runs")
+            raise OptionError(f"{by_target[key]} and {src} would both be written to {dst}; use separate --out-dir runs")
         by_target[key] = src
     return outputs
 
@@ -179,9 +185,45 @@ def load_model(path):
     return load_model_file(path)
 
 
-def _raise_on_term(signum, frame):  # noqa: ARG001
-    # SIGTERM becomes an exception so the writer's context manager removes its temporary file.
-    raise KeyboardInterrupt
+class SkippedOutput(UserWarning):
+    """An output left alone because another despeck process is writing it (one line per output)."""
+
+
+def _same_note(text, category):
+    # The same note about many files is shown once: compared without its leading "path: ".
+    # Skipped outputs are one line each.
+    if issubclass(category, SkippedOutput):
+        return text
+    return text.split(": ", 1)[1] if ": " in text else text
+
+
+def check_options(args) -> None:
+    """Refuse (:class:`OptionError`) bad --threads and --looks values before any file is read."""
+    from ..speckle import check_looks
+
+    check_threads(args.threads)
+    looks = getattr(args, "looks", None)
+    if looks is not None and str(looks).strip().lower() != "auto":
+        with option_values():
+            check_looks(looks, "--looks")
+
+
+def _log_written(dst) -> None:
+    """Log (INFO) the looks and tiling an output records (its ``input_looks*`` and ``despeck_tiling`` tags)."""
+    if not log.isEnabledFor(logging.INFO):
+        return
+    import rasterio
+
+    from ..provenance import PREFIX
+
+    try:
+        with rasterio.open(dst) as ds:
+            tags = ds.tags()
+    except (OSError, rasterio.errors.RasterioError) as exc:  # the output was verified; say why and go on
+        log.debug("%s: tags not read back (%s)", dst, exc)
+        return
+    log.info("%s: input looks %s (%s), %s", dst, tags.get("input_looks", "?"), tags.get("input_looks_source", "?"),
+             tags.get(f"{PREFIX}tiling", "tiling not recorded"))
 
 
 def run(args) -> int:
@@ -193,6 +235,7 @@ def run(args) -> int:
     os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
     from ..inference import resolve_tiling
 
+    check_options(args)
     part = parse_shard(args.shard) if getattr(args, "shard", None) is not None else None
     inputs = expand_inputs(args.inputs)
     # Outputs are planned on the whole list, so every shard refuses the same clashes.
@@ -204,28 +247,21 @@ def run(args) -> int:
         outputs = [output_of[str(src)] for src in inputs]
         if not args.quiet:
             print(f"shard {part[0]}/{part[1]}: {len(inputs)} of {total} input(s)")
-    if args.threads is not None and args.threads < 1:
-        raise InputError(f"--threads must be at least 1, got {args.threads}")
     model = load_model(args.model)
-    shown = set()
+    log.info("model %s: receptive field %d pixels", args.model or starter_model_path(), model.receptive_field)
+    if not getattr(args, "dask", None):
+        from ..cpu import usable_cores
 
-    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
-        # The same note about many files is printed once: compare it without its "path: ".
-        text = str(message)
-        key = text.split(": ", 1)[1] if ": " in text else text
-        if key not in shown:
-            shown.add(key)
-            print(f"despeck: warning: {text}", file=sys.stderr)
-
-    previous = signal.signal(signal.SIGTERM, _raise_on_term)
+        log.info("%d thread(s)%s", args.threads or usable_cores(),
+                 "" if args.threads else " (every core this process may use)")
+    # SIGTERM becomes an exception so the writer's context manager removes its temporary file.
+    previous = signal.signal(signal.SIGTERM, raise_terminated)
     try:
-        with warnings.catch_warnings():
-            warnings.simplefilter("always")
-            silence_library_noise()
-            warnings.showwarning = show
+        with one_line_warnings(key=_same_note):
             # Check the tile options once, before any file is touched.
             side = 2 * max(model.receptive_field, args.tile or 1)
-            resolve_tiling((side, side), model, tile=args.tile, overlap=args.overlap)
+            with option_values():
+                resolve_tiling((side, side), model, tile=args.tile, overlap=args.overlap)
             if getattr(args, "dask", None):
                 counts = _run_dask(args, inputs, outputs)
             else:
@@ -235,7 +271,8 @@ def run(args) -> int:
     if not args.quiet and len(inputs) > 1:
         extra = "".join(f", {counts[k]} {k}" for k in ("busy", "not attempted") if counts[k])
         print(f"{counts['written']} written, {counts['skipped']} skipped, {counts['failed']} failed{extra}")
-    return 2 if counts["failed"] or counts["not attempted"] else 0
+    return batch_status(complete=counts["written"] + counts["skipped"],
+                        incomplete=counts["failed"] + counts["not attempted"])
 
 
 def _one_line(exc) -> str:
@@ -258,11 +295,13 @@ def _run_dask(args, inputs, outputs) -> dict:
         if status == "failed":
             print(f"despeck: error: {result.message}", file=sys.stderr)
         elif status == "busy":
-            print(f"despeck: warning: {result.message}; skipped", file=sys.stderr)
+            warnings.warn(f"{result.message}; skipped", SkippedOutput, stacklevel=1)
         elif not args.quiet:
             what = (f"({result.seconds:.1f} s on {result.worker or 'a worker'})" if status == "written"
                     else f"{result.message or 'exists'}, skipped")
             print(f"{result.input} -> {result.output} {what}")
+        if status == "written":
+            _log_written(result.output)
 
     model_path = args.model if args.model is not None else starter_model_path()
     apply_many(inputs, outputs, model_path, args.dask, threads=args.threads or 1, overwrite=args.overwrite,
@@ -311,7 +350,7 @@ def _run_all(args, inputs, outputs, model) -> dict:
                 print(f"despeck: error: {exc}", file=sys.stderr)
             else:
                 counts["busy"] += 1
-                print(f"despeck: warning: {exc}; skipped", file=sys.stderr)
+                warnings.warn(f"{exc}; skipped", SkippedOutput, stacklevel=1)
             continue
         except OutputFolderError as exc:
             counts["failed"] += 1
@@ -335,4 +374,5 @@ def _run_all(args, inputs, outputs, model) -> dict:
         counts["written"] += 1
         if not args.quiet:
             print(f"{src} -> {dst} ({time.perf_counter() - start:.1f} s)")
+        _log_written(dst)
     return counts

@@ -6,7 +6,12 @@ scene, from ``--image`` and its companions. The work is :func:`despeck.bench.run
 
 from __future__ import annotations
 
-from ..errors import InputError
+import logging
+
+from ..errors import OptionError
+from .exit_codes import OK, option_values
+
+log = logging.getLogger(__name__)
 
 
 def add_arguments(parser):
@@ -40,21 +45,44 @@ def _ints(text, count, option):
     except ValueError:
         values = []
     if len(values) != count:
-        raise InputError(f"{option} expects {count} comma-separated integers, got {text!r}")
+        raise OptionError(f"{option} expects {count} comma-separated integers, got {text!r}")
     return values
+
+
+def _is_model_spec(spec) -> bool:
+    text = str(spec).strip().lower()
+    return text.startswith("model:") or text.endswith(".safetensors")
+
+
+def check_options(args) -> None:
+    """Refuse (:class:`OptionError`) inconsistent options and bad values before any file is read.
+
+    Filter --method specifications are parsed here (name, options, window, looks); a
+    ``model:PATH`` one is checked when its file is read, like --model elsewhere.
+    """
+    from ..bench import parse_method
+    from ..speckle import check_looks
+
+    single = [args.image, args.reference, args.areas, args.looks, args.units,
+              args.reference_units] + args.area + args.point
+    if args.scenes and any(v not in (None, []) for v in single):
+        raise OptionError("give either --scenes or --image (with its options), not both")
+    if not args.scenes and not args.image:
+        raise OptionError("give a scene list with --scenes or one scene with --image")
+    if args.areas and args.area:
+        raise OptionError("give homogeneous areas either as --areas GEOJSON or as --area boxes, not both")
+    with option_values():
+        if args.looks is not None:
+            check_looks(args.looks, "--looks")
+        for spec in args.method:
+            if not _is_model_spec(spec):
+                parse_method(spec)
 
 
 def run(args) -> int:
     from ..bench import BenchScene, run_benchmark
 
-    single = [args.image, args.reference, args.areas, args.looks, args.units,
-              args.reference_units] + args.area + args.point
-    if args.scenes and any(v not in (None, []) for v in single):
-        raise InputError("give either --scenes or --image (with its options), not both")
-    if not args.scenes and not args.image:
-        raise InputError("give a scene list with --scenes or one scene with --image")
-    if args.areas and args.area:
-        raise InputError("give homogeneous areas either as --areas GEOJSON or as --area boxes, not both")
+    check_options(args)
     crop = _ints(args.crop, 3, "--crop") if args.crop else None
     if args.scenes:
         scenes = args.scenes
@@ -64,12 +92,17 @@ def run(args) -> int:
         scenes = [BenchScene(image=args.image, reference=args.reference, reference_units=args.reference_units,
                              looks=args.looks, areas=areas,
                              points=points, units=args.units)]
+    log.info("%s, methods: %s", f"scene list {scenes}" if args.scenes else f"scene {args.image}",
+             ", ".join(args.method) if args.method else "the list's, else every classical filter")
     result = run_benchmark(scenes, args.method or None, args.out_dir, crop=crop, overwrite=args.overwrite,
                            progress=not args.quiet)
+    for s in result["scenes"]:
+        log.info("%s: looks %.3g (%s)", s["name"], s["looks"], s["looks_source"])
+    log.info("wrote %s", result["report"])
     if not args.quiet:
         for s in result["scenes"]:
             how = s["looks_source"]
             print(f"{s['name']}: looks {s['looks']:.3g} ({how}), {s['areas']} areas ({s['areas_source']}), "
                   f"{s['points']} point targets ({s['points_source']})")
         print(f"report: {result['report']}")
-    return 0
+    return OK

@@ -1,11 +1,18 @@
 """``despeck filter``: run one classical speckle filter on a raster and write the result.
 
-The work is :func:`despeck.filters.filter_raster`; this module only parses options.
+The work is :func:`despeck.filters.filter_raster`; this module parses options and
+refuses bad values of them (exit status 2) before the input is read.
 """
 
 from __future__ import annotations
 
-from ..errors import InputError
+import logging
+
+from ..errors import OptionError
+from . import check_threads
+from .exit_codes import OK, option_values
+
+log = logging.getLogger(__name__)
 
 
 def add_arguments(parser):
@@ -23,6 +30,7 @@ def add_arguments(parser):
                         help="method-specific option, repeatable (e.g. damping=2 for frost, xi=0.8 for improved-sigma)")
     parser.add_argument("--band", type=int, metavar="N",
                         help="filter only SAR band N (from 1); default: every band, like apply")
+    parser.add_argument("--threads", type=int, metavar="N", help="CPU threads (default: all cores)")
     parser.add_argument("--units", choices=("intensity", "amplitude", "db", "complex"),
                         help="units of the input (default: detected, else linear intensity)")
     parser.add_argument("--out-units", choices=("intensity", "amplitude", "db"),
@@ -41,25 +49,59 @@ def parse_options(items) -> dict:
     for item in items or ():
         key, eq, value = str(item).partition("=")
         if not eq or not key.strip():
-            raise InputError(f"--option expects KEY=VALUE, got {item!r}")
+            raise OptionError(f"--option expects KEY=VALUE, got {item!r}")
         options[key.strip().replace("-", "_")] = parse_option_value(value)
     return options
 
 
+def check_options(args) -> dict:
+    """The method options of ``args``, after refusing (:class:`OptionError`) bad option values.
+
+    Checked before the input is read: the method's name and option names, --window,
+    --looks, --band and --threads. Values only the filter can judge for a scene (an
+    option's range, looks outside the improved sigma filter's domain) are refused when
+    the filter is set up for the scene (exit status 1).
+    """
+    from ..filters import check_options as check_method_options
+    from ..filters import check_window, filter_entry
+    from ..speckle import check_looks
+
+    check_threads(args.threads)
+    if args.band is not None and args.band < 1:
+        raise OptionError(f"--band must be a band number from 1, got {args.band}")
+    options = parse_options(args.option)
+    with option_values():
+        entry = filter_entry(args.method)
+        check_method_options(entry.name, options)
+        check_window(entry.window(args.window), "--window")
+        if args.looks is not None:
+            check_looks(args.looks, "--looks")
+    return options
+
+
 def run(args) -> int:
+    from ..cpu import usable_cores
     from ..filters import filter_raster
 
+    options = check_options(args)
+    log.info("%s: %d thread(s)%s", args.method, args.threads or usable_cores(),
+             "" if args.threads else " (every core this process may use)")
     info = filter_raster(
         args.method, args.input, args.output, looks=args.looks, window=args.window, units=args.units,
         out_units=args.out_units, overwrite=args.overwrite, progress=not args.quiet, band=args.band,
-        cog=getattr(args, "cog", False), **parse_options(args.option),
+        cog=getattr(args, "cog", False), workers=args.threads, **options,
     )
+    for entry in info["bands"]:
+        log.info("band %d: looks %.3g (%s), window %d", entry["band"], entry["looks"],
+                 entry.get("looks_source", "option"), info["window"])
+    log.info("wrote %s", info["output"])
     if not args.quiet:
         for entry in info["bands"]:
-            how = "estimated from the scene" if entry["looks_estimated"] else "given"
+            how = ("given" if not entry["looks_estimated"] else
+                   "recorded in the file's looks tag" if entry.get("looks_source") == "tag" else "estimated from the scene")
             extra = "".join(f", {k}={v:.6g}" if isinstance(v, float) else f", {k}={v}"
                             for k, v in entry["options"].items())
             label = f"band {entry['band']}: " if len(info["bands"]) > 1 or args.band is not None else ""
             print(f"{info['method']}: {label}window {info['window']}, looks {entry['looks']:.3g} ({how}){extra} "
                   f"-> {info['output']}")
-    return 0
+    return OK

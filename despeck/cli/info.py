@@ -12,15 +12,18 @@ which the output says.
 from __future__ import annotations
 
 import json
+import logging
 import math
-import sys
 import warnings
 
 from .. import looks as looks_mod
 from .. import raster
 from ..errors import InputError
+from .exit_codes import OK
 
 SAMPLE_PIXELS = 1_000_000
+
+log = logging.getLogger(__name__)
 
 
 def add_arguments(parser):
@@ -79,12 +82,15 @@ def run(args) -> int:
         warnings.simplefilter("always", raster.UnitsWarning)
         info = describe(args.scene, units=args.units)
     notes = [str(w.message) for w in caught] + info["notes"]
+    for b in info["band_info"]:
+        log.info("band %d: looks %s, source %s (%s)", b["band"], "n/a" if b["enl"] is None else f"{b['enl']:.3g}",
+                 b["looks_source"], b["looks_detail"])
     if args.json:
         info["notes"] = notes
         if isinstance(info["nodata"], float) and not math.isfinite(info["nodata"]):
             info["nodata"] = str(info["nodata"])  # "nan", "inf": JSON numbers cannot hold them
         print(json.dumps(info, indent=2, allow_nan=False))
-        return 0
+        return OK
     sample = "" if info["sample_step"] == 1 else f" (from every {info['sample_step']}th row and column)"
     lines = [
         f"scene        {info['path']}",
@@ -105,6 +111,6 @@ def run(args) -> int:
         lines.append(f"{'':<12} speckle correlation at lag 1: {c['rows_lag1_lag2'][0]:.2f} down rows, "
                      f"{c['cols_lag1_lag2'][0]:.2f} along columns ({'white' if white else 'correlated'}; {c['detail']})")
     print("\n".join(lines))
-    for note in notes:
-        print(f"despeck: warning: {note}", file=sys.stderr)
-    return 0
+    for note in notes:  # shown by the command's one-line printer
+        warnings.warn(note, stacklevel=1)
+    return OK

@@ -9,12 +9,15 @@ gives the same output.
 
 from __future__ import annotations
 
+import logging
 import signal
-import sys
 import warnings
 
 from .. import raster, speckle
-from ..errors import InputError
+from ..errors import OptionError
+from .exit_codes import OK, option_values, raise_terminated
+
+log = logging.getLogger(__name__)
 
 
 def add_arguments(parser):
@@ -38,23 +41,24 @@ def add_arguments(parser):
     parser.add_argument("--quiet", "-q", action="store_true", help="no progress bar or summary")
 
 
-def _raise_on_term(signum, frame):  # noqa: ARG001
-    raise KeyboardInterrupt
-
-
 def run(args) -> int:
-    looks = speckle.check_looks(args.looks, "--looks")
-    if args.correlated and looks < 1:
-        raise InputError(f"--looks must be at least 1 with --correlated (single looks are summed), got {args.looks:g}")
-    if args.seed is not None and args.seed < 0:
-        raise InputError(f"--seed must be a non-negative integer, got {args.seed}")
-    seed = args.seed
-    if seed is None:
-        import numpy as np
+    with option_values():  # bad values are usage errors (exit status 2), refused before CLEAN is read
+        looks = speckle.check_looks(args.looks, "--looks")
+        if args.correlated and looks < 1:
+            raise OptionError(f"--looks must be at least 1 with --correlated (single looks are summed), "
+                              f"got {args.looks:g}")
+        if args.seed is not None and args.seed < 0:
+            raise OptionError(f"--seed must be a non-negative integer, got {args.seed}")
+        seed = args.seed
+        if seed is None:
+            import numpy as np
 
-        seed = int(np.random.SeedSequence().entropy % (2**63))
-    field = speckle.SpeckleField(looks, seed=seed, correlated=args.correlated,
-                                 oversampling=args.oversampling, taper=args.taper)
+            seed = int(np.random.SeedSequence().entropy % (2**63))
+        field = speckle.SpeckleField(looks, seed=seed, correlated=args.correlated,
+                                     oversampling=args.oversampling, taper=args.taper)
+    log.info("%s speckle, looks %g (given by --looks), seed %d, halo %d pixels",
+             "correlated" if args.correlated else "white", looks, seed, field.halo)
+
     def apply(intensity, valid, row, col):
         return field.speckle(intensity, row, col)
 
@@ -77,10 +81,10 @@ def run(args) -> int:
     if args.correlated:
         settings.update(oversampling=f"{args.oversampling:g}", taper=args.taper)
     tags.update(provenance_tags("simulate", options=settings))
-    # SIGTERM becomes KeyboardInterrupt, so the writer removes its temporary file and claim.
-    previous = signal.signal(signal.SIGTERM, _raise_on_term)
+    # SIGTERM becomes an exception, so the writer removes its temporary file and claim.
+    previous = signal.signal(signal.SIGTERM, raise_terminated)
     try:
-        with warnings.catch_warnings(record=True) as caught:
+        with warnings.catch_warnings():  # shown by the command's one-line printer
             warnings.simplefilter("always", raster.UnitsWarning)
             path = raster.process_file(
                 args.clean, args.output, apply, halo=field.halo, units=args.units, out_units=args.out_units,
@@ -89,8 +93,7 @@ def run(args) -> int:
             )
     finally:
         signal.signal(signal.SIGTERM, previous)
-    for w in caught:
-        print(f"despeck: warning: {w.message}", file=sys.stderr)
+    log.info("wrote %s", path)
     if not args.quiet:
         print(f"wrote {path} ({kind} speckle, {args.looks:g} looks, seed {seed})")
-    return 0
+    return OK

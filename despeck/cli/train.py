@@ -2,20 +2,27 @@
 
 Thin: parses options, loads and checks the config (with ``--set`` overrides), runs
 :func:`despeck.training.train` and prints where the results went. Warnings are shown as
-one line each (``despeck: warning: ...``), once. SIGINT and SIGTERM end the command with
-status 130 and 143 and one line naming the last checkpoint.
+one line each (``despeck: warning: ...``), once, by the command's printer. SIGINT and
+SIGTERM end the command with status 130 and 143 and one line naming the last checkpoint.
 """
 
 from __future__ import annotations
 
 import json
+import logging
 import os
 import sys
-import warnings
+import textwrap
 
-EPILOG = ("exit status: 0 when the model file is written; 2 on an error (one line: bad config, "
-          "unwritable output, diverged training); 130 on SIGINT (Ctrl-C) and 143 on SIGTERM, after "
-          "naming the last checkpoint: the same command with --resume continues from it")
+from .exit_codes import EPILOG as EXIT_STATUSES
+from .exit_codes import OK
+
+log = logging.getLogger(__name__)
+
+EPILOG = textwrap.fill(
+    "The model file is written when the run ends (exit status 0). An error (bad config, unwritable output, "
+    "diverged training) is one line and exit status 1. SIGINT (130) and SIGTERM (143) end the run after naming "
+    "the last checkpoint: the same command with --resume continues from it.", 78) + "\n\n" + EXIT_STATUSES
 
 
 def add_arguments(parser) -> None:
@@ -30,37 +37,24 @@ def add_arguments(parser) -> None:
     parser.add_argument("--quiet", action="store_true", help="no progress bars or model summary")
 
 
-def _one_line_warnings():
-    shown = set()
-
-    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
-        # Library warnings come with source lines and advice for developers: first line only, once.
-        text = (str(message).strip().splitlines() or [category.__name__])[0]
-        if text not in shown:
-            shown.add(text)
-            print(f"despeck: warning: {text}", file=sys.stderr)
-
-    return show
-
-
 def run(args) -> int:
     from ..training import load_config, train
     from ..training.trainer import TrainingInterrupted
 
     config = load_config(args.config, args.overrides)
-    with warnings.catch_warnings():
-        warnings.showwarning = _one_line_warnings()
-        try:
-            result = train(config, resume=args.resume, progress=False if args.quiet else None)
-        except TrainingInterrupted as exc:
-            if os.environ.get("LOCAL_RANK", "0") == "0":  # one report per machine, from its first process
-                print(f"despeck: {exc}", file=sys.stderr)
-            return exc.exit_code
+    log.info("config %s%s", args.config, f" with {len(args.overrides)} --set override(s)" if args.overrides else "")
+    try:
+        result = train(config, resume=args.resume, progress=False if args.quiet else None)
+    except TrainingInterrupted as exc:
+        if os.environ.get("LOCAL_RANK", "0") == "0":  # one report per machine, from its first process
+            print(f"despeck: {exc}", file=sys.stderr)
+        return exc.exit_code  # 128 + the signal: exit_codes.INTERRUPTED or TERMINATED
     if result.rank != 0:  # another process of a distributed run: process 0 reports
-        return 0
+        return OK
     shown = {k: round(v, 4) if isinstance(v, float) else v for k, v in result.best_metrics.items()}
     print(f"model: {result.model_path}")
     print(f"metrics: {result.metrics_path}  config: {result.config_path}")
     print(f"stopped by {result.stopped_by} after {result.epochs} epochs, {result.steps} steps; "
           f"best validation: {json.dumps(shown)}")
-    return 0
+    log.info("wrote %s", result.model_path)
+    return OK
