@@ -17,7 +17,8 @@ def condition_for_model(model, info, corr, name="scene"):
     does not extrapolate) and the note says so. The correlation is passed when it is
     reliable (:attr:`despeck.looks.SpeckleCorrelation.reliable`); otherwise a model that
     can run blind (``correlation_unknown``) is not told it.
-    Models that are not looks-aware get the looks only (for the point-target test).
+    Models that are not looks-aware get the looks (for the point-target test), and the
+    correlation only when they carry a bias table (to look their bias up).
     """
     notes = []
     rng = _model_range(model)
@@ -30,7 +31,10 @@ def condition_for_model(model, info, corr, name="scene"):
                      f"for; applied it as for {clamped:g} looks, expect {what} (train or fine-tune for these looks)")
         L = clamped
     if not getattr(model, "conditioned", False):
-        return L, None, notes
+        # a bias table (self-supervised models) is still looked up at the scene's correlation
+        # as measured: texture reads as some correlation, which is nearer than none
+        table = getattr(model, "log_bias_table", None) is not None
+        return L, (corr.lag1 if table else None), notes
     if not corr.reliable:
         if getattr(model, "correlation_unknown", False):
             return L, None, notes  # the model runs without being told the correlation

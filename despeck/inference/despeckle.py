@@ -108,7 +108,8 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
     cond_looks = cond_corr = None
     if condition is not None:
         cond_looks, cond_corr = condition
-    elif getattr(model, "conditioned", False) or looks is not None:
+    elif getattr(model, "conditioned", False) or getattr(model, "log_bias_table", None) is not None \
+            or looks is not None:
         from ..looks import describe_array
 
         # only looks-aware networks use the correlation: others are not warned about it

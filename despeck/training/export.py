@@ -3,9 +3,9 @@
 ``model.init`` starts a run from the weights of a model file of the same architecture
 (:func:`init_from_model_file`). At the end, :func:`export_best` loads the best
 checkpoint's weights into the network, wraps it in a :class:`~despeck.models.Despeckler`
-with the validation's log bias (for looks-aware ``mse_log`` models, a table of biases
-calibrated on simulated constant areas, :mod:`despeck.training.calibration`) and saves
-it with :func:`despeck.models.save_model_file`; its ``training`` metadata says how the
+with the validation's log bias (for looks-aware and self-supervised ``mse_log`` models, a
+table of biases calibrated on simulated constant areas, :mod:`despeck.training.calibration`)
+and saves it with :func:`despeck.models.save_model_file`; its ``training`` metadata says how the
 model was trained (``mode``: simulated speckle on clean references, or ``pairs`` /
 ``sublooks`` of real data with their files and looks).
 """
@@ -90,15 +90,11 @@ def export_best(config: TrainConfig, result: TrainResult, *, validated: bool, ne
     best_metrics = dict(best["despeck"].get("metrics") or {})
     model = Despeckler(network, looks=looks, log_bias=float(best_metrics.get("val_log_bias", 0.0)),
                        log_scale=config.model.log_scale, point_false_alarm=config.model.point_false_alarm)
-    if model.conditioned and module.loss_fn.name == "mse_log":
-        # A looks-aware model keeps mean backscatter over its whole range of looks and
-        # correlations only with a bias per condition (despeck.training.calibration).
-        from .calibration import calibrate_log_bias_table
+    # Looks-aware and self-supervised mse_log models keep mean backscatter over the
+    # conditions they meet only with a bias per condition (despeck.training.calibration).
+    from .calibration import calibrate_for_export
 
-        model.log_bias = 0.0
-        model.correlation_unknown = config.speckle.condition_dropout > 0
-        model.log_bias_table = calibrate_log_bias_table(model, looks_range=model.looks_range,
-                                                        seed=config.trainer.seed)
+    calibration = calibrate_for_export(model, loss_name=module.loss_fn.name, data=data, config=config)
     cfg = config_to_dict(config)
     model_path = save_model_file(
         result.output_dir / config.output.model_file, model,
@@ -109,6 +105,7 @@ def export_best(config: TrainConfig, result: TrainResult, *, validated: bool, ne
             "config": {k: cfg[k] for k in ("model", "speckle", "loss", "optim", "budget")},
             "epochs": result.epochs, "steps": result.steps,
             "threads": threads, "precision": config.trainer.precision, "stopped_by": result.stopped_by,
+            **({"calibration": calibration} if calibration else {}),
         },
         metrics={k: (None if isinstance(v, float) and not math.isfinite(v) else v) for k, v in best_metrics.items()},
     )
