@@ -177,7 +177,8 @@ def test_cli_bench_single_scene(scene, tmp_path, capsys):
     assert main(args) == 0
     assert "report:" in capsys.readouterr().out
     assert (tmp_path / "rep" / "report.md").exists()
-    assert main(args) == 2  # exists
+    assert main(args) == 1  # exists: an output problem (despeck.cli.exit_codes.FAILED)
+    # bad option values are usage errors (exit_codes.USAGE), refused before any file is read
     assert main(["bench", str(tmp_path / "rep2"), "--image", str(img), "--method", "lee:window=2"]) == 2
     assert main(["bench", str(tmp_path / "rep2")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
@@ -260,7 +261,7 @@ def test_overwrite_refuses_a_folder_holding_an_input(scene, tmp_path, capsys):
     img = _tif(data / "noisy.tif", noisy)
     before = _tree(data)
     args = ["bench", str(data), "--image", str(img), "--looks", "1", "--method", "lee", "--overwrite", "--quiet"]
-    assert main(args) == 2
+    assert main(args) == 1
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and err[0].startswith("despeck: error:") and "holds an input" in err[0]
     assert _tree(data) == before
@@ -319,7 +320,7 @@ def test_bench_errors_name_the_file(scene, tmp_path, capsys):
     }
     for expected, text in cases.items():
         (tmp_path / "scenes.yaml").write_text(text)
-        assert main(["bench", str(tmp_path / "out"), "--scenes", str(tmp_path / "scenes.yaml"), "--quiet"]) == 2
+        assert main(["bench", str(tmp_path / "out"), "--scenes", str(tmp_path / "scenes.yaml"), "--quiet"]) == 1
         (line,) = capsys.readouterr().err.strip().splitlines()
         assert line.startswith("despeck: error: ") and expected in line, line
     (tmp_path / "scenes.yaml").write_text("scenes: [noisy.tif]\nmethods: [lee, median]\n")
@@ -328,7 +329,7 @@ def test_bench_errors_name_the_file(scene, tmp_path, capsys):
     img = str(tmp_path / "noisy.tif")
     for option, value in (("--point", "0,500"), ("--area", "0,0,200,20"), ("--crop", "0,0,300")):
         assert main(["bench", str(tmp_path / "out"), "--image", img, "--looks", "1", option, value,
-                     "--method", "lee", "--quiet"]) == 2
+                     "--method", "lee", "--quiet"]) == 1  # outside this scene: an input error
         (line,) = capsys.readouterr().err.strip().splitlines()
         assert line.startswith("despeck: error: ") and "noisy.tif" in line, line
     # a named array scene is named too

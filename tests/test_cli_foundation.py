@@ -114,30 +114,34 @@ def bad_cases(tmp_path, clean):
     existing = tmp_path / "taken.tif"
     existing.write_bytes(b"keep me")
     out = tmp_path / "out.tif"
+    # (argv, word the error line names, exit status): 1 for a refused file or its data,
+    # 2 for an option value refused before any file is read (despeck.cli.exit_codes)
     return [
-        (["simulate", tmp_path / "absent.tif", out, "--looks", 1], "absent.tif"),
-        (["simulate", text, out, "--looks", 1], "readme.tif"),
-        (["simulate", blank, out, "--looks", 1], "blank.tif"),
-        (["simulate", db, out, "--looks", 1, "--units", "intensity"], "db.tif"),
-        (["simulate", clean, out, "--looks", 1, "--units", "complex"], "clean.tif"),
-        (["simulate", clean, out, "--looks", 0], "--looks"),
-        (["simulate", clean, out, "--looks", -2], "--looks"),
-        (["simulate", clean, out, "--looks", "inf"], "--looks"),
-        (["simulate", clean, out, "--looks", 1, "--correlated", "--oversampling", 0.5], "oversampling"),
-        (["simulate", clean, clean, "--looks", 1, "--overwrite"], "clean.tif"),
-        (["simulate", clean, existing, "--looks", 1], "taken.tif"),
-        (["info", tmp_path / "absent.tif"], "absent.tif"),
-        (["info", blank], "blank.tif"),
-        (["info", clean, "--units", "complex"], "clean.tif"),
+        (["simulate", tmp_path / "absent.tif", out, "--looks", 1], "absent.tif", 1),
+        (["simulate", text, out, "--looks", 1], "readme.tif", 1),
+        (["simulate", blank, out, "--looks", 1], "blank.tif", 1),
+        (["simulate", db, out, "--looks", 1, "--units", "intensity"], "db.tif", 1),
+        (["simulate", clean, out, "--looks", 1, "--units", "complex"], "clean.tif", 1),
+        (["simulate", clean, out, "--looks", 0], "--looks", 2),
+        (["simulate", clean, out, "--looks", -2], "--looks", 2),
+        (["simulate", clean, out, "--looks", "inf"], "--looks", 2),
+        (["simulate", clean, out, "--looks", 1, "--correlated", "--oversampling", 0.5], "oversampling", 2),
+        (["simulate", clean, out, "--looks", 0.5, "--correlated"], "--looks", 2),
+        (["simulate", clean, out, "--looks", 1, "--seed", -1], "--seed", 2),
+        (["simulate", clean, clean, "--looks", 1, "--overwrite"], "clean.tif", 1),
+        (["simulate", clean, existing, "--looks", 1], "taken.tif", 1),
+        (["info", tmp_path / "absent.tif"], "absent.tif", 1),
+        (["info", blank], "blank.tif", 1),
+        (["info", clean, "--units", "complex"], "clean.tif", 1),
     ]
 
 
 def test_bad_input_one_line_error_and_nothing_written(tmp_path, clean, capsys):
-    for argv, named in bad_cases(tmp_path, clean):
+    for argv, named, status in bad_cases(tmp_path, clean):
         before = sorted(p.name for p in tmp_path.rglob("*"))
         clean_bytes = clean.read_bytes()
         code, stdout, stderr = run_cli(argv, capsys)
-        assert code == 2, argv
+        assert code == status, argv
         lines = stderr.strip().splitlines()
         assert len(lines) == 1 and lines[0].startswith("despeck: error:"), (argv, stderr)
         assert named in lines[0], (argv, stderr)

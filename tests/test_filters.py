@@ -381,11 +381,12 @@ def test_cli_filter_writes_a_georeferenced_output_and_reports_estimated_looks(tm
     assert "estimated from the scene" in out and "damping=2" in out
 
 
-def test_cli_filter_bad_input_exits_2_with_one_line(tmp_path, capsys):
+def test_cli_filter_bad_input_exits_non_zero_with_one_line(tmp_path, capsys):
     rng = np.random.default_rng(11)
     src = tmp_path / "scene.tif"
     _write_tif(src, gamma_speckle((40, 40), 1, rng=rng))
-    assert main(["filter", "lee", str(src), str(src), "--looks", "1"]) == 2
+    # the output is the input: an input/output error (1); bad option values: usage errors (2)
+    assert main(["filter", "lee", str(src), str(src), "--looks", "1"]) == 1
     assert main(["filter", "wavelet", str(src), str(tmp_path / "o.tif")]) == 2
     assert main(["filter", "lee", str(src), str(tmp_path / "o.tif"), "--window", "6"]) == 2
     assert main(["filter", "lee", str(src), str(tmp_path / "o.tif"), "--looks", "0"]) == 2

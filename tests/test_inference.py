@@ -396,9 +396,10 @@ def test_killed_command_leaves_nothing_at_destination(rng, tmp_path):
         proc.send_signal(sig)
         proc.wait(timeout=30)
         assert not out.exists()
-    # SIGTERM is turned into a clean abort that also removes the temporary file.
+    # SIGTERM is turned into a clean abort that also removes the temporary file, exit status
+    # 128 + 15 (the shell's convention for a signal, common practice).
     assert not list(tmp_path.glob(".out_SIGTERM.tif.*.tmp"))
-    assert procs[signal.SIGTERM][0].returncode == 130
+    assert procs[signal.SIGTERM][0].returncode == 143
 
 
 def test_cli_batch_skips_finished_outputs(rng, tmp_path, capsys):
@@ -437,7 +438,7 @@ def test_cli_default_model_is_the_starter_model(rng, tmp_path, capsys, monkeypat
     src = _write_tif(tmp_path / "s.tif", _scene(rng, (30, 30)), tags={"LOOKS": "1"})
     missing = tmp_path / "weights" / "starter.safetensors"
     monkeypatch.setattr("despeck.cli.apply.starter_model_path", lambda: missing)
-    assert main(["apply", str(src), "--quiet"]) == 2
+    assert main(["apply", str(src), "--quiet"]) == 1
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "bundled starter model is not installed" in err[0] and "--model" in err[0]
     missing.parent.mkdir()
@@ -454,22 +455,23 @@ def _bad_cases(tmp_path, rng):
     blocker = tmp_path / "a_file"
     blocker.write_text("not a folder")
     base = ["apply", str(src), "--model", str(model)]
+    # exit status 1: a file is missing or refused; 2: an option's value is refused (usage error)
     return [
-        (["apply", str(tmp_path / "nothing*.tif"), "--model", str(model)], "no input file matched"),
-        (["apply", str(tmp_path / "missing.tif"), "--model", str(model)], "no such file or folder"),
-        (base + ["--out", str(src)], "would overwrite the input"),
-        (["apply", str(src), "--model", str(corrupt)], "corrupt.safetensors"),
-        (["apply", str(src), "--model", str(tmp_path / "none.safetensors")], "does not exist"),
-        (base + ["--tile", "7"], "smaller than the model's receptive field"),
-        (base + ["--tile", "32", "--overlap", "40"], "smaller than the tile size"),
-        (base + ["--out-dir", str(blocker / "sub")], "cannot create output directory"),
-        (base + ["--suffix", ""], "replace the inputs"),
+        (["apply", str(tmp_path / "nothing*.tif"), "--model", str(model)], "no input file matched", 1),
+        (["apply", str(tmp_path / "missing.tif"), "--model", str(model)], "no such file or folder", 1),
+        (base + ["--out", str(src)], "would overwrite the input", 2),
+        (["apply", str(src), "--model", str(corrupt)], "corrupt.safetensors", 1),
+        (["apply", str(src), "--model", str(tmp_path / "none.safetensors")], "does not exist", 1),
+        (base + ["--tile", "7"], "smaller than the model's receptive field", 2),
+        (base + ["--tile", "32", "--overlap", "40"], "smaller than the tile size", 2),
+        (base + ["--out-dir", str(blocker / "sub")], "cannot create output directory", 1),
+        (base + ["--suffix", ""], "replace the inputs", 2),
     ]
 
 
 def test_cli_bad_input_one_line_errors(rng, tmp_path, capsys):
-    for argv, match in _bad_cases(tmp_path, rng):
-        assert main(argv) == 2, argv
+    for argv, match, code in _bad_cases(tmp_path, rng):
+        assert main(argv) == code, argv
         err = capsys.readouterr().err.strip().splitlines()
         assert len(err) == 1 and err[0].startswith("despeck: error:") and match in err[0], (argv, err)
     assert sorted(p.name for p in tmp_path.iterdir()) == ["a_file", "corrupt.safetensors", "m.safetensors", "s.tif"]
