@@ -11,7 +11,8 @@ SIGKILL, GeoTIFFs cut off part-way and model files edited by hand following the
 safetensors layout. Outputs are read back with rasterio (GDAL), an outside reader.
 
 What each case expects is the contract in ``docs/faults.md``: bad input and faults end
-with one line ``despeck: error: ...`` and a non-zero exit status, nothing is left at the
+with one line ``despeck: error: ...`` and a non-zero exit status (1 for an input or
+processing error, 2 for a refused option value, 3 for a partial batch), nothing is left at the
 destination (no output, temporary or lock file), inputs and files despeck did not
 write are untouched, and exit status 0 means every output is complete and readable.
 
@@ -147,8 +148,12 @@ def error_lines(stderr: str) -> list:
     return [ln for ln in stderr.splitlines() if ln.startswith("despeck: error:")]
 
 
-def clean_error(proc, *words, code=2) -> list:
-    """Problems with a refusal: the exit status, exactly one error line holding ``words``, no traceback."""
+def clean_error(proc, *words, code) -> list:
+    """Problems with a refusal: the exit status ``code``, exactly one error line holding ``words``, no traceback.
+
+    The statuses are the contract of ``docs/faults.md``: 1 an input or processing error,
+    2 a usage error (an option value refused before any input is read), 3 a partial batch.
+    """
     problems = []
     if proc.returncode != code:
         problems.append(f"exit {proc.returncode}, expected {code}")
@@ -294,7 +299,7 @@ def full_disk_apply(d):
     out = d / "clean.tif"
     args = ["apply", src, "--model", model, "--out", out, "--threads", 2, "--quiet"]
     p = run(args, cwd=d, limit=1 << 17)
-    problems = clean_error(p, out.name, "file size limit")
+    problems = clean_error(p, out.name, "file size limit", code=1)
     if out.exists() or hidden(d):
         problems.append(f"left on disk: {[out.name] if out.exists() else []} {hidden(d)}")
     rerun = run(args, cwd=d)
@@ -311,7 +316,7 @@ def full_disk_simulate(d):
     out = d / "speckled.tif"
     p = run(["simulate", clean, out, "--looks", 1, "--seed", 1, "--quiet"], cwd=d, limit=1 << 20,
             env={"GDAL_NUM_THREADS": "2"})
-    problems = clean_error(p, out.name, "file size limit")
+    problems = clean_error(p, out.name, "file size limit", code=1)
     if out.exists() or hidden(d):
         problems.append(f"left on disk: {hidden(d)}")
     return p.returncode, first_line(p.stderr), "nothing (no output, temporary or lock)", problems
@@ -331,7 +336,7 @@ def full_tmpfs(d):
     STDERR.append(p.stderr)
     if p.returncode == 97 or "unshare failed" in p.stderr or "Operation not permitted" in p.stderr:
         raise Skip(f"cannot mount a tmpfs here: {first_line(p.stderr)[:120]}")
-    problems = clean_error(p, "small", "no space left")
+    problems = clean_error(p, "small", "no space left", code=1)
     left = p.stdout.split()
     if left:
         problems.append(f"left in the full folder: {left}")
@@ -354,7 +359,7 @@ def read_only_folder(d):
             p = run(args, cwd=d, drop_dac=drop)
             codes.append(p.returncode)
             first = first or first_line(p.stderr)
-            problems += clean_error(p, "ro", "output folder")
+            problems += clean_error(p, "ro", "output folder", code=1)
         left = [x.name for x in ro.iterdir()]
     finally:
         ro.chmod(0o755)
@@ -378,7 +383,7 @@ def read_only_out_dir(d):
         left = [x.name for x in ro.iterdir()]
     finally:
         ro.chmod(0o755)
-    problems = clean_error(p, "ro")
+    problems = clean_error(p, "ro", code=1)
     if "1 failed, 2 not attempted" not in p.stdout:
         problems.append("no summary '... 1 failed, 2 not attempted'")
     if left:
@@ -448,7 +453,7 @@ def cut_off_batch(d):
     model = model_file(d / "m.safetensors")
     out = d / "out"
     p = run(["apply", inp / "*.tif", "--model", model, "--out-dir", out, "--threads", 1], cwd=d)
-    problems = clean_error(p, "b.tif", "cut off or damaged")
+    problems = clean_error(p, "b.tif", "cut off or damaged", code=3)
     if "2 written, 0 skipped, 1 failed" not in p.stdout:
         problems.append("no summary '2 written, 0 skipped, 1 failed'")
     names = sorted(x.name for x in out.iterdir()) if out.exists() else []
@@ -464,7 +469,7 @@ def cut_off_batch(d):
 def cut_off_info(d):
     cut = cut_off(d)
     p = run(["info", cut], cwd=d)
-    return p.returncode, first_line(p.stderr), "nothing written (info)", clean_error(p, "cut.tif", "cut off")
+    return p.returncode, first_line(p.stderr), "nothing written (info)", clean_error(p, "cut.tif", "cut off", code=1)
 
 
 @case("model file: NaN weight, given to `apply`")
@@ -479,7 +484,7 @@ def nan_weights(d):
     src = write_tif(d / "scene.tif", speckle((64, 64)))
     out = d / "out.tif"
     p = run(["apply", src, "--model", bad, "--out", out, "--threads", 1, "--quiet"], cwd=d)
-    problems = clean_error(p, "nan.safetensors", "NaN")
+    problems = clean_error(p, "nan.safetensors", "NaN", code=1)
     if out.exists() or hidden(d):
         problems.append("output or temporary left")
     return p.returncode, first_line(p.stderr), "nothing", problems
@@ -493,7 +498,7 @@ def absurd_bias(d):
     src = write_tif(d / "scene.tif", speckle((64, 64)))
     out = d / "out.tif"
     p = run(["apply", src, "--model", bad, "--out", out, "--threads", 1, "--quiet"], cwd=d)
-    problems = clean_error(p, "bias.safetensors", "log_bias")
+    problems = clean_error(p, "bias.safetensors", "log_bias", code=1)
     if out.exists() or hidden(d):
         problems.append("output or temporary left")
     return p.returncode, first_line(p.stderr), "nothing", problems
@@ -510,7 +515,7 @@ def giant_architecture(d):
     t0 = time.monotonic()
     p = run(["apply", src, "--model", bad, "--out", out, "--threads", 1, "--quiet"], cwd=d, timeout=120)
     seconds = time.monotonic() - t0
-    problems = clean_error(p, "giant.safetensors", "300000")
+    problems = clean_error(p, "giant.safetensors", "300000", code=1)
     if seconds > 30:
         problems.append(f"took {seconds:.0f} s (a network was built?)")
     if out.exists():
@@ -530,7 +535,7 @@ def nested_header(d):
     good.unlink()
     src = write_tif(d / "scene.tif", speckle((64, 64)))
     p = run(["apply", src, "--model", bad, "--out", d / "out.tif", "--threads", 1, "--quiet"], cwd=d)
-    return p.returncode, first_line(p.stderr), "nothing", clean_error(p, "deep.safetensors", "nested")
+    return p.returncode, first_line(p.stderr), "nothing", clean_error(p, "deep.safetensors", "nested", code=1)
 
 
 @case("training: `--set optim.lr=1e-3` (exponent notation)")
@@ -611,7 +616,7 @@ def killed_then_resume(d):
     proc.wait()
     again = run(train_args(out, "budget.max_epochs=1"), cwd=d)
     resumed = run(train_args(out, "budget.max_epochs=1") + ["--resume"], cwd=d)
-    problems = clean_error(again, "--resume")
+    problems = clean_error(again, "--resume", code=1)
     if resumed.returncode != 0 or "starting afresh" not in resumed.stderr:
         problems.append(f"--resume: exit {resumed.returncode}, {first_line(resumed.stderr)!r}")
     what = _model_readable(out / "model.safetensors")
@@ -625,7 +630,7 @@ def killed_then_resume(d):
 def full_disk_train(d):
     out = d / "run"
     p = run(train_args(out, "budget.max_epochs=2"), cwd=d, limit=60_000)
-    problems = clean_error(p, "cannot write", "file size limit")
+    problems = clean_error(p, "cannot write", "file size limit", code=1)
     left = sorted(x.name for x in out.rglob("*.ckpt")) + hidden(out)
     if left or (out / "model.safetensors").exists():
         problems.append(f"left: {left}")
@@ -636,7 +641,7 @@ def full_disk_train(d):
 def diverged(d):
     out = d / "run"
     p = run(train_args(out, "optim.lr=1e3", "budget.max_epochs=2"), cwd=d)
-    problems = clean_error(p, "training diverged", "optim.lr")
+    problems = clean_error(p, "training diverged", "optim.lr", code=1)
     if "looks" in first_line(p.stderr):
         problems.append("talks about looks")
     if (out / "model.safetensors").exists():
@@ -649,7 +654,7 @@ def overlap(d):
     src = write_tif(d / "s.tif", speckle((64, 64)))
     model = model_file(d / "m.safetensors")
     p = run(["apply", src, "--model", model, "--out", d / "o.tif", "--overlap", 100000, "--quiet"], cwd=d)
-    problems = clean_error(p, "overlap (100000)")
+    problems = clean_error(p, "overlap (100000)", code=2)
     if (d / "o.tif").exists() or hidden(d):
         problems.append("output left")
     return p.returncode, first_line(p.stderr), "nothing", problems
@@ -660,7 +665,7 @@ def tile(d):
     src = write_tif(d / "s.tif", speckle((64, 64)))
     model = model_file(d / "m.safetensors")
     p = run(["apply", src, "--model", model, "--out", d / "o.tif", "--tile", 100000, "--quiet"], cwd=d)
-    problems = clean_error(p, "tile (100000)")
+    problems = clean_error(p, "tile (100000)", code=2)
     if (d / "o.tif").exists() or hidden(d):
         problems.append("output left")
     return p.returncode, first_line(p.stderr), "nothing", problems
@@ -671,7 +676,7 @@ def window(d):
     src = write_tif(d / "s.tif", speckle((64, 64)))
     t0 = time.monotonic()
     p = run(["filter", "boxcar", src, d / "o.tif", "--window", 100001, "--looks", 1], cwd=d)
-    problems = clean_error(p, "window")
+    problems = clean_error(p, "--window", code=2)
     if (d / "o.tif").exists() or hidden(d):
         problems.append("output left")
     return p.returncode, first_line(p.stderr), f"nothing; refused in {time.monotonic() - t0:.1f} s", problems
@@ -681,7 +686,7 @@ def window(d):
 def sigma_looks(d):
     src = write_tif(d / "s.tif", speckle((64, 64)))
     p = run(["filter", "improved-sigma", src, d / "o.tif", "--looks", "1e-3", "--quiet"], cwd=d)
-    problems = clean_error(p, "looks", "domain")
+    problems = clean_error(p, "looks", "domain", code=1)
     if (d / "o.tif").exists() or hidden(d):
         problems.append("output left")
     return p.returncode, first_line(p.stderr), "nothing", problems
@@ -768,7 +773,7 @@ def looks_outside(d):
 def too_small(d):
     src = write_tif(d / "small.tif", speckle((20, 20), seed=2))
     p = run(["filter", "lee", src, d / "o.tif", "--quiet"], cwd=d)
-    problems = clean_error(p, "--looks")
+    problems = clean_error(p, "--looks", code=1)
     i = run(["info", src], cwd=d)
     if i.returncode != 0 or "assumed 1 look" not in i.stderr:
         problems.append(f"info: exit {i.returncode}, no 'assumed 1 look' warning")
@@ -799,7 +804,7 @@ def bench_input(d):
     (data / "notes.txt").write_text("field notes")
     before = tree(data)
     p = run(["bench", data, "--image", img, "--looks", 1, "--method", "lee", "--overwrite", "--quiet"], cwd=d)
-    problems = clean_error(p, "holds an input")
+    problems = clean_error(p, "holds an input", code=1)
     if tree(data) != before:
         problems.append("the folder changed")
     return p.returncode, first_line(p.stderr), "folder unchanged (scene and notes.txt kept)", problems
@@ -815,10 +820,10 @@ def bench_unrelated(d):
     (rep / "notes.txt").write_text("field notes")
     before = tree(rep)
     p = run(["bench", rep, "--image", img, "--looks", 1, "--method", "lee", "--overwrite", "--quiet"], cwd=d)
-    problems = clean_error(p, "notes.txt")
+    problems = clean_error(p, "notes.txt", code=1)
     (rep / "notes.txt").unlink()
     here = run(["bench", ".", "--image", img, "--looks", 1, "--method", "lee", "--overwrite", "--quiet"], cwd=rep)
-    problems += clean_error(here, "current directory")
+    problems += clean_error(here, "current directory", code=1)
     (rep / "notes.txt").write_text("field notes")
     if tree(rep) != before:
         problems.append("the report folder changed")
