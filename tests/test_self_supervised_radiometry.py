@@ -148,14 +148,43 @@ def test_sublook_trained_model_keeps_mean_backscatter_at_full_resolution(sublook
 def test_sublook_model_is_calibrated_at_the_full_resolution_condition(sublook_model):
     model, slc = sublook_model
     (site,) = model.metadata["training"]["calibration"]["site_conditions"]
-    # The table's site column is the full image's condition (the one apply meets), not the
+    # The table's site band is the full image's condition (the one apply meets), not the
     # sub-looks': the full image's intensity |z|^2 has one look (exponential; Oliver &
     # Quegan 1998, ch. 4) and the lag-1 correlation of the whole band, 0.576 on both axes
-    # by the Siegert relation. 0.25 and 0.08: project tolerances of the measurements on
-    # 192 x 192 pixels of a textured scene.
+    # by the Siegert relation.
     assert site["image"] == f"{slc} (full resolution)"
-    assert abs(site["looks"] - 1.0) < 0.25
     theory = _siegert_lag1(SYSTEM["oversampling"])
     assert theory == pytest.approx(0.576, abs=0.001)
-    assert all(abs(v - theory) < 0.08 for v in site["speckle_correlation_lag1"])
-    assert any(abs(c - np.mean(site["speckle_correlation_lag1"])) < 1e-4 for c in model.log_bias_table["corr"])
+    # What apply tells (despeck.looks on the textured image; 0.25 and 0.08: project
+    # tolerances of those measurements on 192 x 192 pixels) ...
+    assert abs(site["looks"] - 1.0) < 0.25
+    assert all(abs(v - theory) < 0.08 for v in site["told_correlation_lag1"])
+    # ... and the speckle itself, from the complex samples, where texture cancels:
+    # 192 x 191 neighbour pairs give a standard error near 0.005 (0.03: about 6 of them).
+    assert site["speckle_correlation_lag1"] == pytest.approx([theory, theory], abs=0.03)
+    lo, hi = model.metadata["training"]["calibration"]["site_bands"][0]
+    assert lo < np.mean(site["told_correlation_lag1"]) < hi
+    assert sum(lo - 1e-3 <= c <= hi + 1e-3 for c in model.log_bias_table["corr"]) == 3  # its ends and centre
+
+
+def test_texture_free_speckle_correlation_of_dates_and_complex_samples():
+    # A textured scene (the test site) seen twice and once as complex samples through the
+    # system. Outside references: the lag-1 correlation of ln I1 - ln I2 for one look is
+    # 6 Li2(rho) / pi^2 (covariance of the logs of two correlated exponential intensities;
+    # Xie, Pierce & Ulaby 2002, from memory; Li2 from scipy.special.spence), and the
+    # intensity correlation is |complex correlation|^2 (Siegert; Goodman 1985).
+    from scipy.special import spence
+
+    from despeck.training.site_conditions import (log_ratio_lag1, slc_speckle_correlation,
+                                                  speckle_correlation_from_log_ratio)
+
+    rho = _siegert_lag1(SYSTEM["oversampling"])
+    scene = make_scene((256, 256), rng=41)
+    rng = np.random.default_rng(42)
+    first, second = (simulate_correlated_intensity(scene, 1.0, rng=rng, **SYSTEM) for _ in range(2))
+    r = log_ratio_lag1(first, second, np.ones(scene.shape, bool))
+    # 256 x 255 neighbour pairs per axis, three times correlated: standard error about 0.006.
+    assert r == pytest.approx([6 * spence(1 - rho) / math.pi ** 2] * 2, abs=0.025)
+    assert speckle_correlation_from_log_ratio(6 * spence(1 - rho) / math.pi ** 2, 1.0) == pytest.approx(rho, abs=0.01)
+    z = simulate_correlated_slc(scene, rng=43, **SYSTEM)
+    assert slc_speckle_correlation(z, np.ones(scene.shape, bool)) == pytest.approx([rho, rho], abs=0.02)

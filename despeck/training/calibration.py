@@ -7,33 +7,55 @@ over the area (log-normal approximation; see :mod:`despeck.models.wrapper`). ``s
 depends on how much speckle is left, hence on the looks and the speckle correlation of
 the scene. Such a model therefore carries a *table* of log biases over a grid of looks
 and lag-1 correlations, measured here on simulated constant areas:
-``log_bias(L, rho) = -ln(mean output / mean input)`` over the patches' cores, with the
-network told the condition, which :meth:`despeck.models.Despeckler.bias_for`
-interpolates at apply time. The speckle has unit mean, so the input's mean is unbiased
-for the reflectivity (Oliver & Quegan 1998, ch. 4); dividing by it rather than by the
-known reflectivity removes most of the sampling noise of the patches from the table
-(the output follows the input's sample), a control variate.
+``log_bias = -ln(mean output / mean input)`` over the patches' cores, which
+:meth:`despeck.models.Despeckler.bias_for` interpolates at apply time at the condition
+apply measured (:mod:`despeck.looks`). Speckle has unit mean, so the input's mean is
+unbiased for the reflectivity (Oliver & Quegan 1998, ch. 4); dividing by it rather than
+by the known reflectivity takes most of the patches' sampling noise out of the table
+(the output follows the input's sample: a control variate).
 
-Which models get a table (:func:`calibrate_for_export`): every ``mse_log`` model that
-is looks-aware, and every ``mse_log`` model trained self-supervised (``data.pairs``,
-``data.slc``), looks-aware or not. A self-supervised model meets scenes of a condition
-it was not trained on: a model trained on sub-looks (coarser along the split axis, more
-correlated) is applied to the full-resolution image, and any model may be applied to a
-white-speckle scene. The single log bias measured on the validation strips of its own
-training views holds for that training condition only: a small network that is not told
-the condition, trained for seconds on the sub-looks of a simulated SLC scene (oversampling
-1.3, Hamming taper), left +0.14 dB on the full-resolution image and +0.73 dB on white
-speckle; on a pair of dates, +0.43 dB on white speckle. The table holds the bias at every
-condition of the grid, and at the conditions the model will meet on the user's data:
-each date of ``data.pairs`` and the full-resolution intensity ``|z|^2`` of each
-``data.slc`` scene, their looks and correlation measured as apply measures them
-(:func:`despeck.looks.describe_array`; :func:`measure_site_conditions`). Apply then looks the bias up at the scene's measured
-condition, for networks that take the condition as input and for those that do not.
+**Which models.** Every ``mse_log`` model that is looks-aware, and every ``mse_log``
+model trained self-supervised (``data.pairs``, ``data.slc``), looks-aware or not
+(:func:`calibrate_for_export`). A self-supervised model meets other conditions than it
+was trained on: a model trained on sub-looks (coarser along the split axis) is applied
+to the full-resolution image, and any model may meet white speckle. A single log bias,
+measured on the validation strips of the training views, holds for the training
+condition only: a small network that is not told the condition, trained for seconds on
+the sub-looks of a simulated SLC scene (oversampling 1.3, Hamming taper), left +0.14 dB
+on the full-resolution image and +0.73 dB on white speckle; trained on a pair of dates,
++0.43 dB on white speckle (``tests/test_self_supervised_radiometry.py``'s site).
 
-Correlated speckle for a target lag-1 correlation ``rho`` uses an untapered band
-whose oversampling gives that correlation (:func:`despeck.speckle.intensity_correlation_theory`,
-solved with :func:`scipy.optimize.brentq`), or a Hamming taper beyond what an
-untapered band reaches below oversampling 2.5.
+**Grid cells** simulate speckle of the cell's correlation on both axes and tell the
+model that correlation: an untapered band whose oversampling gives it
+(:func:`despeck.speckle.intensity_correlation_theory`, solved with
+:func:`scipy.optimize.brentq`), or a Hamming taper beyond what an untapered band
+reaches below oversampling 2.5.
+
+**The user's own condition** (self-supervised models;
+:mod:`despeck.training.site_conditions`). The output of these networks follows the
+speckle they *see*, hardly what they are told: on the fine-tuning benchmark's site,
+speckle of lag-1 correlation 0.576 needs the same bias within 0.006 dB whether the
+model is told 0.576 or 0.62, while speckle that truly has 0.62 needs 0.14 dB more (a
+model fine-tuned for 5 minutes on a pair). Apply tells the correlation that
+:mod:`despeck.looks` measures on the scene's most homogeneous blocks; texture left in
+them reads as extra correlation (0.58-0.60 there) and the reading scatters between
+scenes (0.576-0.645 over 256 x 768-pixel scenes). A table indexed by that reading and
+measured on speckle *of* that correlation therefore misses by the table's slope times
+the reading's error (2 dB per unit of correlation, about +0.05 dB on average and up to
++0.19 dB on one scene for that model). So around the condition of the user's images
+the table holds the bias of *their* speckle:
+
+* the speckle's own correlation is measured where the reflectivity cancels -- on the
+  log-ratio of the two dates of each pair, or on the complex samples of each SLC scene
+  (the full-resolution image, not its sub-looks);
+* what apply will tell is measured on each image (each date; the full-resolution
+  intensity ``|z|^2`` of each SLC scene) as apply measures it, and how far that reading
+  spreads over the images' 256 x 256-pixel pieces (at least 0.03, at most 0.1);
+* over that band of told correlations (overlapping sites merged), the table's cells
+  simulate speckle of the measured speckle correlation and tell the model the band's
+  values; grid values inside the band are left out. Outside the band the grid cells
+  stand: a scene whose reading is far from the user's images (white speckle, another
+  sensor) is calibrated as what it reads.
 
 References
 ----------
@@ -47,23 +69,25 @@ data. ICML 2018, arXiv:1803.04189 (training on independent noisy views).
 from __future__ import annotations
 
 import math
-import warnings
-from dataclasses import dataclass
 
 import numpy as np
 import torch
 from scipy import optimize
 
-from ..errors import DespeckError, RasterError
 from ..models.wrapper import UNKNOWN_CORRELATION
 from ..speckle import gamma_speckle, intensity_correlation_theory, log_intensity_mean, simulate_correlated_intensity
 
-__all__ = ["system_for_correlation", "calibrate_log_bias_table", "DEFAULT_CORR_GRID", "SiteCondition",
-           "measure_site_conditions", "correlation_grid", "calibrate_for_export"]
+__all__ = ["system_for_correlation", "calibrate_log_bias_table", "DEFAULT_CORR_GRID", "correlation_grid",
+           "calibrate_for_export"]
 
 DEFAULT_CORR_GRID = (0.0, 0.25, 0.5, 0.7)
-# A site correlation closer than this to a grid value replaces nothing and adds no column.
+# A grid value closer than this to a site band is left out (the band's ends stand for it).
 _SAME_CORRELATION = 0.01
+# Half-width of a site band: the spread of the apply-time measurement on the user's
+# 256-pixel pieces, kept within these bounds.
+_MIN_HALF_BAND, _MAX_HALF_BAND = 0.03, 0.10
+# Highest lag-1 correlation the simulated systems reach (Hamming taper, oversampling 2.5: 0.86).
+_MAX_CORRELATION = 0.85
 
 
 def system_for_correlation(rho: float):
@@ -85,80 +109,48 @@ def _looks_grid(lo: float, hi: float):
     return [float(v) for v in np.exp(np.linspace(math.log(lo), math.log(hi), n))]
 
 
-@dataclass(frozen=True)
-class SiteCondition:
-    """Looks and lag-1 speckle correlation of one of the user's images, as apply measures them."""
+def _bands(sites):
+    """Site bands ``[(lo, hi, centre, told, speckle)]`` of told mean correlation (see the module notes).
 
-    name: str
-    looks: float
-    correlation: tuple  # lag-1 (rows, cols)
-    detail: str = ""
-
-    @property
-    def mean_correlation(self) -> float:
-        """The table's correlation axis: the mean of the two lag-1 values."""
-        return float(np.mean(self.correlation))
-
-    def describe(self) -> dict:
-        return {"image": self.name, "looks": round(self.looks, 4),
-                "speckle_correlation_lag1": [round(float(v), 4) for v in self.correlation], "measured": self.detail}
-
-
-def measure_site_conditions(data, config) -> list:
-    """The conditions a self-supervised model will meet: one :class:`SiteCondition` per image.
-
-    Each date of every pair as it is, and the full-resolution intensity of every SLC scene
-    (not its sub-looks: the model is applied to the full image), measured by
-    :func:`despeck.looks.describe_array` -- the measurement apply makes. Images whose
-    speckle cannot be measured (too few homogeneous blocks) are left out with a warning.
+    A site covers its told mean +- its spread on 256-pixel pieces (at least 0.03, at most
+    0.1); overlapping sites make one band, told and speckle correlations averaged.
     """
-    from ..looks import describe_array
-    from ..raster import open_scene
-
-    sites = []
-    for src in getattr(data, "sources", []):
-        if src.kind == "pair":
-            images = [(str(f), view, src.valid) for f, view in zip(src.files, src.views)]
+    bands = []
+    for s in sorted(sites, key=lambda s: s.told_mean):
+        half = float(np.clip(s.told_spread, _MIN_HALF_BAND, _MAX_HALF_BAND))
+        lo, hi = max(s.told_mean - half, 0.0), min(s.told_mean + half, _MAX_CORRELATION)
+        if bands and lo <= bands[-1]["hi"]:
+            band = bands[-1]
+            band["hi"] = max(band["hi"], hi)
+            band["members"].append(s)
         else:
-            path = src.files[0]
-            try:
-                with warnings.catch_warnings():
-                    warnings.simplefilter("ignore")
-                    with open_scene(path, units=config.data.units) as reader:
-                        full, valid = reader.read(band=config.data.band)
-            except DespeckError:
-                raise
-            except (OSError, ValueError) as exc:
-                raise RasterError(f"{path}: cannot read ({exc})") from None
-            valid = np.asarray(valid, dtype=bool) & np.isfinite(full) & (full > 0)
-            images = [(f"{path} (full resolution)", np.where(valid, full, 0).astype(np.float32), valid)]
-        for name, image, valid in images:
-            info, corr, notes = describe_array(image, valid)
-            if info.source != "estimate" or corr.source != "measured":
-                warnings.warn(f"{name}: its speckle could not be measured ({'; '.join(notes)}); the bias table "
-                              "has no column for it", UserWarning, stacklevel=2)
-                continue
-            sites.append(SiteCondition(name, float(info.value), tuple(float(v) for v in corr.lag1),
-                                       f"{info.detail}; {corr.detail}"))
-    return sites
+            bands.append({"lo": lo, "hi": hi, "members": [s]})
+    out = []
+    for band in bands:
+        m = band["members"]
+        told = tuple(float(np.clip(np.mean([s.told[k] for s in m]), 0.0, _MAX_CORRELATION)) for k in (0, 1))
+        speckle = tuple(float(np.clip(np.mean([s.speckle[k] for s in m]), 0.0, _MAX_CORRELATION)) for k in (0, 1))
+        out.append((band["lo"], band["hi"], float(np.mean(told)), told, speckle))
+    return out
 
 
-def _site_columns(sites):
-    """``{rho: (rows, cols)}``: one column per distinct site correlation (closer than 0.01: the first kept)."""
-    columns = {}
-    for s in sites:
-        rho = float(np.clip(s.mean_correlation, 0.0, 0.95))
-        if all(abs(rho - c) >= _SAME_CORRELATION for c in columns):
-            columns[rho] = tuple(float(np.clip(v, 0.0, 0.95)) for v in s.correlation)
-    return columns
+def _cells(base, sites):
+    """Table columns ``[(axis value, told (rows, cols), simulated speckle (rows, cols))]``, increasing."""
+    bands = _bands(sites)
+    cells = [(float(c), (float(c), float(c)), (float(c), float(c))) for c in base
+             if all(not lo - _SAME_CORRELATION < float(c) < hi + _SAME_CORRELATION for lo, hi, *_ in bands)]
+    for lo, hi, centre, told, speckle in bands:
+        for t in sorted({lo, centre, hi}):
+            shifted = tuple(float(np.clip(v + t - centre, 0.0, _MAX_CORRELATION)) for v in told)
+            cells.append((t, shifted, speckle))
+    cells.sort(key=lambda c: c[0])
+    merged = [c for i, c in enumerate(cells) if i == 0 or c[0] - cells[i - 1][0] >= 1e-6]
+    return merged
 
 
 def correlation_grid(sites=(), base=DEFAULT_CORR_GRID) -> list:
-    """The table's correlation axis: ``base`` with each site's mean lag-1 correlation (replacing base
-    values closer than 0.01 to it)."""
-    columns = _site_columns(sites)
-    grid = [float(c) for c in base if all(abs(float(c) - r) >= _SAME_CORRELATION for r in columns)]
-    return sorted(grid + list(columns))
+    """The table's correlation axis: ``base`` outside the sites' bands, and each band's ends and centre."""
+    return [c[0] for c in _cells(base, sites)]
 
 
 def _system(rows: float, cols: float):
@@ -169,10 +161,10 @@ def _system(rows: float, cols: float):
     return (osr, osc), tr
 
 
-def _noisy_patches(L, told, *, side, patches, rng):
-    """Constant unit-reflectivity patches of L-look speckle with lag-1 correlation ``told`` (rows, cols)."""
+def _noisy_patches(L, speckle, *, side, patches, rng):
+    """Constant unit-reflectivity patches of L-look speckle with lag-1 correlation ``speckle`` (rows, cols)."""
     clean = np.ones((side, side), dtype=np.float32)
-    rows, cols = told
+    rows, cols = speckle
     if rows < 0:
         # The blind mode (correlation not told) is calibrated on a mix of white and
         # correlated (lag-1 0.5) speckle, half the patches each.
@@ -205,10 +197,10 @@ def calibrate_log_bias_table(despeckler, *, looks_range, corr_grid=DEFAULT_CORR_
     side, patches : int
         Size and number of constant patches per grid cell.
     seed : int
-    sites : sequence of SiteCondition
-        Conditions measured on the user's images (:func:`measure_site_conditions`): each
-        adds a column at its mean lag-1 correlation (:func:`correlation_grid`), simulated
-        and told with its own rows and columns correlation.
+    sites : sequence of despeck.training.site_conditions.SiteCondition
+        The user's images (:func:`~despeck.training.site_conditions.measure_site_conditions`):
+        their bands replace the grid values they cover (:func:`correlation_grid`); each
+        band's cells simulate the site's speckle and tell the model what apply will tell.
 
     Returns
     -------
@@ -217,11 +209,10 @@ def calibrate_log_bias_table(despeckler, *, looks_range, corr_grid=DEFAULT_CORR_
     """
     lo, hi = float(looks_range[0]), float(looks_range[1])
     looks_grid = _looks_grid(lo, hi)
-    columns = _site_columns(sites)
-    grid = correlation_grid(sites, corr_grid)
-    told = [columns.get(c, (c, c)) for c in grid]
-    if getattr(despeckler, "correlation_unknown", False) and grid[0] >= 0:
-        grid, told = [UNKNOWN_CORRELATION] + grid, [(UNKNOWN_CORRELATION, UNKNOWN_CORRELATION)] + told
+    cells = _cells(corr_grid, sites)
+    if getattr(despeckler, "correlation_unknown", False) and cells[0][0] >= 0:
+        blind = (UNKNOWN_CORRELATION, UNKNOWN_CORRELATION)
+        cells = [(UNKNOWN_CORRELATION, blind, blind)] + cells
     rng = np.random.default_rng([int(seed), 77])
     margin = max(despeckler.receptive_field // 2, 8)
     saved_bias, saved_table = despeckler.log_bias, despeckler.log_bias_table
@@ -234,10 +225,10 @@ def calibrate_log_bias_table(despeckler, *, looks_range, corr_grid=DEFAULT_CORR_
         with torch.inference_mode():
             for L in looks_grid:
                 row = []
-                for condition in told:
-                    noisy = _noisy_patches(L, condition, side=side, patches=patches, rng=rng)
+                for _, told, speckle in cells:
+                    noisy = _noisy_patches(L, speckle, side=side, patches=patches, rng=rng)
                     x = torch.from_numpy(np.ascontiguousarray(noisy, dtype=np.float32))[:, None]
-                    out = despeckler(x, log_offset=float(log_intensity_mean(L)), looks=L, correlation=condition)
+                    out = despeckler(x, log_offset=float(log_intensity_mean(L)), looks=L, correlation=told)
                     mean_out = float(out[:, 0].double().numpy()[core].mean())
                     mean_in = float(noisy[core].astype(np.float64).mean())
                     row.append(float(-math.log(mean_out / mean_in)))
@@ -245,7 +236,7 @@ def calibrate_log_bias_table(despeckler, *, looks_range, corr_grid=DEFAULT_CORR_
     finally:
         despeckler.log_bias, despeckler.log_bias_table = saved_bias, saved_table
         despeckler.train(was_training)
-    return {"looks": looks_grid, "corr": grid, "values": values}
+    return {"looks": looks_grid, "corr": [c[0] for c in cells], "values": values}
 
 
 def calibrate_for_export(model, *, loss_name: str, data, config):
@@ -260,6 +251,8 @@ def calibrate_for_export(model, *, loss_name: str, data, config):
     self_supervised = bool(config.data.self_supervised)
     if not (model.conditioned or self_supervised):
         return None
+    from .site_conditions import measure_site_conditions
+
     sites = measure_site_conditions(data, config) if self_supervised else []
     model.log_bias = 0.0
     model.correlation_unknown = bool(model.conditioned and config.speckle.condition_dropout > 0)
@@ -267,4 +260,5 @@ def calibrate_for_export(model, *, loss_name: str, data, config):
                                                     seed=config.trainer.seed)
     return {"method": "log bias per looks and lag-1 correlation on simulated constant areas "
                       "(despeck.training.calibration)",
-            "site_conditions": [s.describe() for s in sites]}
+            "site_conditions": [s.describe() for s in sites],
+            "site_bands": [[round(lo, 4), round(hi, 4)] for lo, hi, *_ in _bands(sites)]}
