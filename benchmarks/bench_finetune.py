@@ -50,6 +50,13 @@ columns, on an invented local survey grid.
   through the system, ``clean * |PSF|^2`` (:func:`despeck.speckle.psf_intensity_kernel`):
   no despeckler can undo the system's blur. These measures are those of
   ``benchmarks/bench_starter.py`` (its functions are reused).
+* **Radiometry over several draws.** On one draw the bias on the boxes is mostly the
+  speckle sample: the input's own reads -0.13 dB on the two boxes of the quick
+  held-out area, and a model's follows its scene's measured speckle correlation, which
+  scatters by a few hundredths between scenes. The bias is therefore also pooled over
+  ``--bias-draws`` (default 4) independent draws of the evaluation date (the first is
+  the one above), with its standard error over the draws and the draw furthest from 0;
+  bm3d-log joins the further draws only with ``--bias-draws-bm3d``.
 * **Methods.** The classical filters ``lee``, ``refined-lee`` and ``improved-sigma`` with
   the true looks (1) and default windows, ``bm3d-log`` given the system (when the
   optional ``bm3d`` package is installed), and every model through
@@ -58,7 +65,7 @@ columns, on an invented local survey grid.
 
 Usage::
 
-    python benchmarks/bench_finetune.py [--minutes 30] [--model FILE] [--slc] [--threads 2] [--out bench_output]
+    python benchmarks/bench_finetune.py [--minutes 30] [--model FILE] [--slc] [--threads 2] [--bias-draws 4] [--out bench_output]
     python benchmarks/bench_finetune.py --quick --threads 1    # 256 x 256 areas, 0.5-minute budgets
 
 The full run trains twice for ``--minutes`` (four times with ``--slc``) and then
@@ -112,6 +119,7 @@ LOOKS = 1.0
 CLASSICAL = ("lee", "refined-lee", "improved-sigma")
 SCENE_SEED = 9800   # test split; bench_starter uses 9100 and up, training scenes [0, 3, i]
 NOISE_SEED = 9900
+BIAS_SEED = 9950    # the further draws of the evaluation date for the bias (--bias-draws)
 PIXEL = 10.0
 ORIGIN = (731000.0, 5204000.0)  # invented local grid, not a real projection
 GRID = CRS.from_wkt('LOCAL_CS["Ormsund Mire survey grid (fictional)",UNIT["metre",1],'
@@ -170,8 +178,22 @@ def make_site(work, size, holdout, slc):
         for part, (r0, r1) in zip(PARTS, ((size, size + holdout), (0, size))):
             boxes, points = crop_layout(layout.homogeneous_boxes, layout.points, r0, r1)
             evaluation[part].append({"name": f"{fam}-{SCENE_SEED + i}", "noisy": third[r0:r1],
-                                     "reference": reference[r0:r1], "boxes": boxes, "points": points})
+                                     "reference": reference[r0:r1], "boxes": boxes, "points": points,
+                                     "area": i, "clean": clean, "rows": (r0, r1)})
     return pairs, slcs, evaluation
+
+
+def extra_date(scene, draw):
+    """Draw ``draw`` (>= 1) of the evaluation date of ``scene``'s area: fresh speckle of the same system."""
+    key = (scene["area"], draw)
+    if key not in _EXTRA_DATES:
+        rng = np.random.default_rng([BIAS_SEED, scene["area"], draw])
+        _EXTRA_DATES[key] = simulate_correlated_intensity(scene["clean"], LOOKS, rng=rng, **SYSTEM)
+    r0, r1 = scene["rows"]
+    return _EXTRA_DATES[key][r0:r1]
+
+
+_EXTRA_DATES = {}
 
 
 # --------------------------------------------------------------------------- training
@@ -219,7 +241,9 @@ def run_training(work, name, cfg):
             "best_validation": {k: v for k, v in result.best_metrics.items()
                                 if isinstance(v, (int, float)) and math.isfinite(v)},
             # what the trainer read: looks, measured speckle correlation, pixels flagged as changed
-            "data": read_model_metadata(result.model_path).get("training", {}).get("data", {})}
+            "data": read_model_metadata(result.model_path).get("training", {}).get("data", {}),
+            # the conditions the bias table was calibrated at (despeck.training.calibration)
+            "calibration": read_model_metadata(result.model_path).get("training", {}).get("calibration")}
     print(f"trained {name}: {result.epochs} epochs, {result.steps} steps in {seconds:.0f} s "
           f"(stopped by {result.stopped_by}); model {result.model_path}", flush=True)
     return info
@@ -238,18 +262,67 @@ def apply_method(method, noisy, valid, models, threads):
     return np.asarray(out, dtype=np.float32), time.perf_counter() - start
 
 
-def evaluate(evaluation, methods, models, threads):
+def box_sums(est, noisy, reference, boxes):
+    """``[sum estimate, sum reference, sum input]`` over the homogeneous boxes."""
+    out = np.zeros(3)
+    for r0, c0, r1, c1 in boxes:
+        out += [float(a[r0:r1, c0:c1].astype(np.float64).sum()) for a in (est, reference, noisy)]
+    return out
+
+
+def draws_bias(per_draw):
+    """Bias pooled over draws (dB, vs reference and vs input) and its standard error over the draws."""
+    a = np.asarray(per_draw)  # (draws, 3): estimate, reference, input sums
+    if a.size == 0 or a[:, 1].sum() <= 0:
+        return {}
+    per = 10 * np.log10(a[:, 0] / a[:, 1])
+    per_input = 10 * np.log10(a[:, 0] / a[:, 2])
+
+    def se(v):
+        return float(v.std(ddof=1) / math.sqrt(len(v))) if len(v) > 1 else None
+
+    return {"bias_draws_db": float(10 * math.log10(a[:, 0].sum() / a[:, 1].sum())),
+            "bias_draws_vs_input_db": float(10 * math.log10(a[:, 0].sum() / a[:, 2].sum())),
+            "bias_draws_se_db": se(per), "bias_draws_vs_input_se_db": se(per_input),
+            "bias_draws_worst_db": float(per[np.argmax(np.abs(per))]),
+            "bias_draws_per_draw_db": [round(float(v), 4) for v in per],
+            "bias_draws_vs_input_per_draw_db": [round(float(v), 4) for v in per_input],
+            "bias_draws": int(len(per))}
+
+
+def evaluate(evaluation, methods, models, threads, bias_draws=1, bm3d_draws=False):
+    """PSNR, SSIM, points and bias on the evaluation date; the bias also over ``bias_draws`` draws of it.
+
+    bm3d-log (minutes per draw) takes part in the further draws only with ``bm3d_draws``;
+    otherwise its pooled bias is that of the first draw alone.
+    """
+    def skip(m, d):
+        return d > 0 and m == "bm3d-log" and not bm3d_draws
+
     results = {}
     for part, scenes in evaluation.items():
         pools = {m: bench_starter.new_pool() for m in ["input"] + methods}
-        for s in scenes:
-            noisy, reference = s["noisy"], s["reference"]
-            valid = np.isfinite(noisy) & (noisy > 0)
-            bench_starter.measure(pools["input"], reference, noisy, noisy, valid, s["boxes"], s["points"], 0.0)
-            for m in methods:
-                est, seconds = apply_method(m, noisy, valid, models, threads)
-                bench_starter.measure(pools[m], reference, noisy, est, valid, s["boxes"], s["points"], seconds)
-        results[part] = {m: bench_starter.summarise(p) for m, p in pools.items()}
+        draws = {m: [] for m in ["input"] + methods}
+        for d in range(bias_draws):
+            sums = {m: np.zeros(3) for m in draws}
+            for s in scenes:
+                reference = s["reference"]
+                noisy = s["noisy"] if d == 0 else extra_date(s, d)
+                valid = np.isfinite(noisy) & (noisy > 0)
+                sums["input"] += box_sums(noisy, noisy, reference, s["boxes"])
+                if d == 0:
+                    bench_starter.measure(pools["input"], reference, noisy, noisy, valid, s["boxes"], s["points"], 0.0)
+                for m in methods:
+                    if skip(m, d):
+                        continue
+                    est, seconds = apply_method(m, noisy, valid, models, threads)
+                    sums[m] += box_sums(est, noisy, reference, s["boxes"])
+                    if d == 0:
+                        bench_starter.measure(pools[m], reference, noisy, est, valid, s["boxes"], s["points"], seconds)
+            for m in draws:
+                if sums[m][1] > 0 and not skip(m, d):
+                    draws[m].append(sums[m])
+        results[part] = {m: {**bench_starter.summarise(p), **draws_bias(draws[m])} for m, p in pools.items()}
         results[part]["_boxes"] = sum(len(s["boxes"]) for s in scenes)
         print(f"evaluated {part}: " + ", ".join(f"{m} {results[part][m]['psnr_db']:.2f} dB" for m in methods),
               flush=True)
@@ -274,6 +347,17 @@ def gains(results, classical, tuned_name, starter_name, scratch_name):
     return out
 
 
+def calibration_cell(calibration):
+    """The site conditions of a model's bias table, one short cell."""
+    if not calibration or not calibration.get("site_conditions"):
+        return "n/a"
+    sites = calibration["site_conditions"]
+    told = np.mean([s["told_correlation_lag1"] for s in sites])
+    speckle = np.mean([s["speckle_correlation_lag1"] for s in sites])
+    bands = ", ".join(f"{lo:.2f}-{hi:.2f}" for lo, hi in calibration.get("site_bands", []))
+    return f"{told:.3f} / {speckle:.3f}, {bands}"
+
+
 def markdown(result):
     fmt = bench_starter.fmt
     lines = [f"\nSite: {SITE}; speckle oversampling {SYSTEM['oversampling']}, {SYSTEM['taper']} taper, "
@@ -293,6 +377,24 @@ def markdown(result):
             cells.append(f"{s['psnr_db']:.2f} | {s['ssim_db']:.3f} | {fmt(s['bias_db'], '+.3f')} | "
                          f"{fmt(s['points_median_db'], '+.1f')} / {fmt(s['points_worst_db'], '+.1f')}")
         lines.append(f"| {m} | " + " | ".join(cells) + " |")
+    draws = result.get("bias_draws", 1)
+    if draws > 1:
+        bm3d_note = "" if result.get("bias_draws_bm3d") else "; bm3d-log: the first draw only"
+        lines += [f"\n### Radiometric bias pooled over {draws} draws of the evaluation date (dB on the homogeneous "
+                  f"boxes vs clean * |PSF|^2, +- standard error over the draws; vs the input's own mean; the draw "
+                  f"furthest from 0{bm3d_note})\n",
+                  "| method | " + " | ".join(f"{p}: bias dB | vs input | furthest draw" for p in PARTS) + " |",
+                  "|---|" + "---|---|---|" * len(PARTS)]
+        for m in ["input"] + result["methods"]:
+            cells = []
+            for p in PARTS:
+                s = result["evaluation"][p][m]
+                se, se_in = s.get("bias_draws_se_db"), s.get("bias_draws_vs_input_se_db")
+                cells.append(f"{fmt(s.get('bias_draws_db'), '+.3f')}" + (f" +- {se:.3f}" if se is not None else "")
+                             + f" | {fmt(s.get('bias_draws_vs_input_db'), '+.3f')}"
+                             + (f" +- {se_in:.3f}" if se_in is not None and m != "input" else "")
+                             + f" | {fmt(s.get('bias_draws_worst_db'), '+.3f')}")
+            lines.append(f"| {m} | " + " | ".join(cells) + " |")
     lines.append("\n### Gains of fine-tuning (dB-domain PSNR)\n")
     lines.append("| runs | part | fine-tuned - model as is | fine-tuned - scratch | fine-tuned - best classical "
                  "| model as is - best classical | scratch - best classical |")
@@ -305,15 +407,16 @@ def markdown(result):
                          f"{x['starter_over_best_classical_db']:+.2f} | {x['scratch_over_best_classical_db']:+.2f} |")
     lines.append("\n### Training runs\n")
     lines.append("| run | init | lr | epochs | steps | stopped by | wall s | best epoch: validation ENL, bias dB "
-                 "| pixels flagged as changed |")
-    lines.append("|---|---|---|---|---|---|---|---|---|")
+                 "| pixels flagged as changed | bias table: lag-1 correlation told / of the speckle, band |")
+    lines.append("|---|---|---|---|---|---|---|---|---|---|")
     for name, t in result["training"].items():
         v = t["best_validation"]
         flagged = [s["changed_fraction"] for s in t["data"].get("pairs", []) if "changed_fraction" in s]
         lines.append(f"| {name} | {t['init'] or 'random'} | {t['lr']:g} | {t['epochs']} | {t['steps']} | "
                      f"{t['stopped_by']} | {t['seconds']:.0f} | {fmt(v.get('epoch'), '.0f')}: "
                      f"{fmt(v.get('val_enl'), '.1f')}, {fmt(v.get('val_bias_db'), '+.3f')} | "
-                     + (", ".join(f"{100 * f:.1f} %" for f in flagged) or "n/a") + " |")
+                     + (", ".join(f"{100 * f:.1f} %" for f in flagged) or "n/a") + " | "
+                     + calibration_cell(t.get("calibration")) + " |")
     cpu = result["cpu"]
     flags = ", ".join(f"{k} {'yes' if v else 'no'}" for k, v in cpu["flags"].items())
     lines.append(f"\nCPU: {cpu['model']} ({cpu['machine']}, {cpu.get('cores_available')} cores available); {flags}; "
@@ -347,8 +450,14 @@ def main(argv=None) -> int:
     parser.add_argument("--change-false-alarm", type=float, default=CHANGE_FALSE_ALARM,
                         help=f"data.change_false_alarm of the pair runs (default {CHANGE_FALSE_ALARM:g}; "
                              "configs/pairs.yaml has 0.01, see the module notes)")
+    parser.add_argument("--bias-draws", type=int, default=4,
+                        help="draws of the evaluation date the radiometric bias is pooled over (default 4)")
+    parser.add_argument("--bias-draws-bm3d", action="store_true",
+                        help="run bm3d-log on every draw too (default: on the first; it takes minutes per draw)")
     parser.add_argument("--out", default=str(ROOT / "bench_output"), help="output folder (default bench_output/)")
     args = parser.parse_args(argv)
+    if args.bias_draws < 1:
+        parser.error(f"--bias-draws must be at least 1, got {args.bias_draws}")
 
     minutes = args.minutes if args.minutes is not None else (0.5 if args.quick else 30.0)
     size = args.size or (256 if args.quick else 768)
@@ -394,7 +503,8 @@ def main(argv=None) -> int:
     else:
         notes.append(f"bm3d-log left out: the optional bm3d package is not installed ({bm3d_log.INSTALL_HINT})")
     methods = classical + list(models)
-    results = evaluate(evaluation, methods, models, args.threads)
+    results = evaluate(evaluation, methods, models, args.threads, bias_draws=args.bias_draws,
+                       bm3d_draws=args.bias_draws_bm3d)
     boxes = {p: results[p].pop("_boxes") for p in PARTS}
     for p in PARTS:
         if not boxes[p]:
@@ -408,6 +518,7 @@ def main(argv=None) -> int:
         "model": str(model_path), "init": init, "architecture": arch, "quick": bool(args.quick),
         "minutes": minutes, "threads": args.threads, "size": size, "holdout": holdout,
         "homogeneous_boxes": boxes, "methods": methods, "training": training, "evaluation": results,
+        "bias_draws": args.bias_draws, "bias_draws_bm3d": bool(args.bias_draws_bm3d),
         "gains": {src: gains(results, classical, tuned, as_is, scratch)
                   for src, (tuned, scratch) in sources.items()},
         "cpu": bench_starter.cpu_info(), "seconds_total": time.perf_counter() - t_all, "notes": notes,
