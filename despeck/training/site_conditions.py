@@ -52,6 +52,8 @@ __all__ = ["SiteCondition", "measure_site_conditions", "log_ratio_lag1", "speckl
 #: Side of the pieces of the user's images on which the scatter of the apply-time
 #: measurement is read (the side of despeck.looks' measurement windows).
 TILE = 256
+# At most this many pieces of one image are measured for the spread.
+_MAX_TILES = 64
 # Pixel pairs below which a lag-1 measurement is not attempted.
 _MIN_PAIRS = 1000
 
@@ -161,13 +163,15 @@ def _told_spread(image, valid, whole: float) -> float:
     from ..looks import describe_array
 
     h, w = image.shape
+    corners = [(r, c) for r in range(0, max(h - TILE, 0) + 1, TILE) for c in range(0, max(w - TILE, 0) + 1, TILE)]
+    if len(corners) > _MAX_TILES:  # an even subset of a large image's pieces
+        corners = [corners[i] for i in np.linspace(0, len(corners) - 1, _MAX_TILES).round().astype(int)]
     spread = 0.0
-    for r in range(0, max(h - TILE, 0) + 1, TILE):
-        for c in range(0, max(w - TILE, 0) + 1, TILE):
-            _, corr, _ = describe_array(image[r:r + TILE, c:c + TILE], valid[r:r + TILE, c:c + TILE],
-                                        correlation_notes=False)
-            if corr.source == "measured":
-                spread = max(spread, abs(float(np.mean(corr.lag1)) - whole))
+    for r, c in corners:
+        _, corr, _ = describe_array(image[r:r + TILE, c:c + TILE], valid[r:r + TILE, c:c + TILE],
+                                    correlation_notes=False)
+        if corr.source == "measured":
+            spread = max(spread, abs(float(np.mean(corr.lag1)) - whole))
     return spread
 
 
