@@ -19,7 +19,8 @@ The package's modules, lowest first:
 - :mod:`~despeck.speckle.simulation` -- white speckle with numpy or torch generators,
   single-look complex images, multi-looking;
 - :mod:`~despeck.speckle.estimation` -- ENL of an area, looks of a scene on the
-  homogeneous blocks it finds (``1 / CV^2`` and log-IQR);
+  homogeneous blocks it finds (``1 / CV^2``, log-IQR, and the log-ratio of pixels a few
+  apart, which cancels texture);
 - :mod:`~despeck.speckle.system` -- the system response: tapers (Kaiser included),
   transfer function, PSF, theoretical intensity correlation;
 - :mod:`~despeck.speckle.correlated` -- correlated speckle (look weights for any
@@ -62,7 +63,17 @@ from .simulation import (
     simulate_intensity,
     simulate_slc,
 )
-from .estimation import enl_amplitude, enl_intensity, estimate_looks, estimate_looks_log_iqr, homogeneous_blocks
+from .estimation import (
+    enl_amplitude,
+    enl_intensity,
+    estimate_looks,
+    estimate_looks_log_iqr,
+    estimate_looks_log_ratio,
+    homogeneous_blocks,
+    log_ratio_iqr,
+    looks_from_log_ratio_iqr,
+    short_lag_correlation,
+)
 from .system import (
     KAISER_BETA,
     TAPERS,
@@ -89,5 +100,6 @@ __all__ = [
     "system_transfer", "system_psf", "psf_intensity_kernel", "simulate_correlated_slc",
     "simulate_correlated_intensity", "look_weights", "intensity_correlation_theory", "KAISER_BETA",
     "measure_speckle_correlation", "log_intensity_iqr", "looks_from_log_iqr", "estimate_looks_log_iqr",
-    "SpeckleField", "split_sublooks", "homogeneous_blocks", "estimate_looks"
+    "SpeckleField", "split_sublooks", "homogeneous_blocks", "estimate_looks", "log_ratio_iqr",
+    "looks_from_log_ratio_iqr", "estimate_looks_log_ratio", "short_lag_correlation"
 ]
