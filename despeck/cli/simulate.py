@@ -3,7 +3,7 @@
 White speckle is Gamma(L, 1/L) per pixel; ``--correlated`` averages L single looks
 of a circular Gaussian field convolved with a band-limited, Hamming-tapered,
 oversampled system response (see :class:`despeck.speckle.SpeckleField`). The scene
-is processed tile by tile, so it never needs to fit in memory, and the same seed
+is processed strip by strip, so it never needs to fit in memory, and the same seed
 gives the same output.
 """
 
