@@ -56,10 +56,12 @@ def build_parser(load_all: bool = True) -> argparse.ArgumentParser:
                         help="say what is being done (looks, threads, tiles, outputs) on standard error; "
                              "-vv for more detail")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    parser.command_parsers = {}  # name -> its sub-parser, for main() to add the chosen command's options
     for name, (module_name, help_text) in COMMANDS.items():
         p = sub.add_parser(name, help=help_text, description=help_text, epilog=EPILOG,
                            formatter_class=argparse.RawDescriptionHelpFormatter)
         # also accepted after the command; added to the top-level count
+        parser.command_parsers[name] = p
         p.add_argument("-v", "--verbose", dest="verbose_after", action="count", default=0,
                        help="as despeck -v: say what is being done; -vv for more detail")
         if load_all:
@@ -181,7 +183,7 @@ def main(argv=None) -> int:
         return USAGE
     parser = build_parser(load_all=False)
     module = importlib.import_module(f"{__name__}.{COMMANDS[chosen][0]}")
-    sub_parser = parser._subparsers._group_actions[0].choices[chosen]  # noqa: SLF001
+    sub_parser = parser.command_parsers[chosen]
     module.add_arguments(sub_parser)
     args = parser.parse_args(argv)
     verbosity = args.verbose + getattr(args, "verbose_after", 0)

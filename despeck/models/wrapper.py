@@ -48,7 +48,7 @@ from scipy import special
 from torch import nn
 
 from ..errors import InputError
-from ..speckle import check_looks_range
+from ..speckle import check_looks, check_looks_range
 
 __all__ = ["Despeckler", "DEFAULT_LOG_SCALE", "CONDITION_CHANNELS", "UNKNOWN_CORRELATION"]
 
@@ -222,8 +222,10 @@ class Despeckler(nn.Module):
         """
         L = torch.as_tensor(self.looks_range[0] if looks is None else looks, dtype=torch.float64)
         L = L.reshape(-1).expand(n) if L.numel() == 1 else L.reshape(-1)
-        if L.shape[0] != n or not bool(torch.all(L > 0)):
-            raise InputError(f"looks must be positive, one value or one per sample ({n})")
+        if L.shape[0] != n:
+            raise InputError(f"looks must be one value or one per sample ({n}), got {L.shape[0]}")
+        check_looks(float(L.min()))
+        check_looks(float(L.max()))
         if correlation is None:
             fill = UNKNOWN_CORRELATION if self.correlation_unknown else 0.0
             rho = torch.full((n, 2), fill, dtype=torch.float64)

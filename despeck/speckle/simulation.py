@@ -59,8 +59,8 @@ def gamma_speckle_torch(shape, looks, *, generator=None, dtype=None, device=None
     dtype = dtype or torch.float32
     if isinstance(looks, torch.Tensor):
         L = looks.to(dtype=torch.float64, device=device).expand(shape).clone()
-        if not bool(torch.all(L > 0)):
-            raise InputError("looks must be positive (> 0) for every sample")
+        check_looks(float(L.min()))  # the one looks rule, on the extremes of the samples' looks
+        check_looks(float(L.max()))
     else:
         L = torch.full(shape, check_looks(looks), dtype=torch.float64, device=device)
     boost = L < 1
