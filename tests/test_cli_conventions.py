@@ -163,12 +163,21 @@ def test_status_3_for_a_partial_batch(tmp_path):
     assert alone.returncode == exit_codes.FAILED
 
 
+def _default_sigint():
+    # A test run started in the background by a script (``cmd &``, nohup) hands its
+    # children SIGINT ignored, and Python then keeps it ignored instead of raising
+    # KeyboardInterrupt (Python docs, signal module: the SIGINT handler is installed
+    # only if SIGINT is not ignored at start-up; from memory). Give the child the
+    # terminal's default, as a user pressing Ctrl-C has.
+    signal.signal(signal.SIGINT, signal.SIG_DFL)
+
+
 @pytest.mark.parametrize("signum, status", [(signal.SIGINT, 130), (signal.SIGTERM, 143)])
 def test_status_130_and_143_when_simulate_is_stopped(tmp_path, signum, status):
     _tif(tmp_path / "clean.tif", 0.1 + 0.05 * np.random.default_rng(0).random((3072, 3072)), block=256)
     proc = subprocess.Popen([sys.executable, "-m", "despeck", "simulate", "clean.tif", "s.tif", "--looks", "1",
                              "--correlated", "--seed", "1", "--quiet"], cwd=tmp_path, stdout=subprocess.PIPE,
-                            stderr=subprocess.PIPE, text=True, env=ENV)
+                            stderr=subprocess.PIPE, text=True, env=ENV, preexec_fn=_default_sigint)
     deadline = time.monotonic() + 120
     while not list(tmp_path.glob(".s.tif.*.tmp")) and time.monotonic() < deadline:
         assert proc.poll() is None, proc.communicate()[1]
