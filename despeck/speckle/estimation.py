@@ -68,6 +68,12 @@ def enl_amplitude(values, mask=None) -> float:
     return amplitude_looks_from_cv(v.std() / mean)
 
 
+def square_blocks(a, w: int):
+    """The whole ``w`` x ``w`` blocks of a 2-D array, shape ``(n, w, w)``, blocks in row-major order."""
+    rows, cols = a.shape[0] // w, a.shape[1] // w
+    return a[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3).reshape(rows * cols, w, w)
+
+
 def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8, split="checker"):
     """Find the most homogeneous ``window`` x ``window`` blocks of an intensity image.
 
@@ -104,12 +110,7 @@ def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_bl
     rows, cols = x.shape[0] // window, x.shape[1] // window
     if rows == 0 or cols == 0:
         raise InputError(f"image of shape {x.shape} is smaller than one {window}x{window} block")
-    h, w = rows * window, cols * window
-
-    def blocks(a):
-        return a[:h, :w].reshape(rows, window, cols, window).transpose(0, 2, 1, 3).reshape(rows * cols, window, window)
-
-    xb, okb = blocks(np.where(ok, x, 0.0)), blocks(ok)
+    xb, okb = square_blocks(np.where(ok, x, 0.0), window), square_blocks(ok, window)
     keep = okb.all(axis=(1, 2))
     if split == "checker":
         checker = (np.add.outer(np.arange(window), np.arange(window)) % 2).astype(bool)
@@ -284,13 +285,10 @@ def _log_ratio_spread(logs, ok, lag, axis, w, fraction, min_blocks):
     if rows == 0 or cols == 0:
         raise InputError(f"image of shape {logs.shape} is smaller than one {w}x{w} block of lag-{lag} ratios")
 
-    def blocks(a):
-        return a[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3).reshape(rows * cols, w, w)
-
-    keep = np.flatnonzero(blocks(v).all(axis=(1, 2)))
+    keep = np.flatnonzero(square_blocks(v, w).all(axis=(1, 2)))
     if keep.size < int(min_blocks):
         raise InputError(f"only {keep.size} {w}x{w} blocks are free of nodata; at least {int(min_blocks)} are needed")
-    b = blocks(d)[keep]
+    b = square_blocks(d, w)[keep]
     # Halves across the lag (side by side for lags down the rows, one above the other for
     # lags along them): the ratios of the two halves share no pixel.
     h = w // 2
@@ -405,22 +403,19 @@ def short_lag_correlation(intensity, valid=None, *, lags=(2, 3), window=32, frac
     if rows == 0 or cols == 0:
         raise InputError(f"image of shape {x.shape} is smaller than one {w}x{w} block")
 
-    def cut(a):
-        return a[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3).reshape(rows * cols, w, w)
-
     # The ranking of homogeneous_blocks (halves), in float32 on views of the image: it runs on
     # every block of the sample, the measurement only on the kept ones.
-    keep = np.flatnonzero(cut(ok).all(axis=(1, 2)))
+    keep = np.flatnonzero(square_blocks(ok, w).all(axis=(1, 2)))
     if keep.size < int(min_blocks):
         raise InputError(f"only {keep.size} {w}x{w} blocks are free of nodata; at least {int(min_blocks)} are needed")
-    first = cut(np.where(ok, x, 0).astype(np.float32, copy=False))[keep, :, :w // 2].reshape(keep.size, -1)
+    first = square_blocks(np.where(ok, x, 0).astype(np.float32, copy=False), w)[keep, :, :w // 2].reshape(keep.size, -1)
     mean = first.mean(axis=1)
     keep, first, mean = keep[mean > 0], first[mean > 0], mean[mean > 0]
     if keep.size < int(min_blocks):
         raise InputError(f"only {keep.size} {w}x{w} blocks have a positive mean; at least {int(min_blocks)} are needed")
     n_keep = max(int(min_blocks), int(math.ceil(float(fraction) * keep.size)))
     chosen = keep[np.argsort(first.std(axis=1, ddof=1) / mean, kind="stable")[:n_keep]]
-    blocks = cut(x)[chosen].astype(np.float64)
+    blocks = square_blocks(x, w)[chosen].astype(np.float64)
     d = blocks / blocks.mean(axis=(1, 2), keepdims=True) - 1.0
 
     def coefficient(k, axis):
