@@ -473,7 +473,7 @@ def main(argv=None) -> int:
     print(f"model {model_path} ({arch['name']} {arch.get('kwargs')}); budget {minutes:g} min per run, "
           f"{args.threads} threads", flush=True)
 
-    out = pathlib.Path(args.out)
+    out = pathlib.Path(args.out).resolve()  # the configs written below name files relative to themselves
     work = out / ("bench_finetune" + ("_quick" if args.quick else "") + "_work")
     prepare_work(work)
     t_all = time.perf_counter()
