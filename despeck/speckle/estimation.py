@@ -74,6 +74,20 @@ def square_blocks(a, w: int):
     return a[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3).reshape(rows * cols, w, w)
 
 
+def nodata_free_blocks(ok, w: int, min_blocks: int, *, shape=None, what: str = "block") -> np.ndarray:
+    """Indices (in :func:`square_blocks` order) of the ``w`` x ``w`` blocks of mask ``ok`` that are all valid.
+
+    Raises :class:`InputError` naming the image ``shape`` (default ``ok``'s) if it holds no
+    whole block, or if fewer than ``min_blocks`` blocks are free of nodata.
+    """
+    if ok.shape[0] // w == 0 or ok.shape[1] // w == 0:
+        raise InputError(f"image of shape {tuple(shape or ok.shape)} is smaller than one {w}x{w} {what}")
+    keep = np.flatnonzero(square_blocks(ok, w).all(axis=(1, 2)))
+    if keep.size < int(min_blocks):
+        raise InputError(f"only {keep.size} {w}x{w} blocks are free of nodata; at least {int(min_blocks)} are needed")
+    return keep
+
+
 def homogeneous_blocks(intensity, valid=None, *, window=16, fraction=0.2, min_blocks=8, split="checker"):
     """Find the most homogeneous ``window`` x ``window`` blocks of an intensity image.
 
@@ -188,15 +202,8 @@ def estimate_looks_log_iqr(intensity, valid=None, *, window=32, fraction=0.2, mi
     if w < 8 or w % 2:
         raise InputError(f"window must be an even number of at least 8 pixels, got {window}")
     ok = valid_mask(x, valid, what="intensity")
-    rows, cols = x.shape[0] // w, x.shape[1] // w
-    if rows == 0 or cols == 0:
-        raise InputError(f"image of shape {x.shape} is smaller than one {w}x{w} block")
-    logs = np.log(np.where(ok, x, 1.0))[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3)
-    okb = ok[:rows * w, :cols * w].reshape(rows, w, cols, w).transpose(0, 2, 1, 3).reshape(rows * cols, w, w)
-    logs = logs.reshape(rows * cols, w, w)
-    keep = np.flatnonzero(okb.all(axis=(1, 2)))
-    if keep.size < int(min_blocks):
-        raise InputError(f"only {keep.size} {w}x{w} blocks are free of nodata; at least {int(min_blocks)} are needed")
+    keep = nodata_free_blocks(ok, w, min_blocks, shape=x.shape)
+    logs = square_blocks(np.log(np.where(ok, x, 1.0)), w)
     first = logs[keep, :, :w // 2].reshape(keep.size, -1)
     second = logs[keep, :, w // 2:].reshape(keep.size, -1)
     q1 = np.subtract(*np.percentile(first, [75, 25], axis=1))
@@ -281,13 +288,7 @@ def _log_ratio_spread(logs, ok, lag, axis, w, fraction, min_blocks):
         d, v = logs[:-lag, :] - logs[lag:, :], ok[:-lag, :] & ok[lag:, :]
     else:
         d, v = logs[:, :-lag] - logs[:, lag:], ok[:, :-lag] & ok[:, lag:]
-    rows, cols = d.shape[0] // w, d.shape[1] // w
-    if rows == 0 or cols == 0:
-        raise InputError(f"image of shape {logs.shape} is smaller than one {w}x{w} block of lag-{lag} ratios")
-
-    keep = np.flatnonzero(square_blocks(v, w).all(axis=(1, 2)))
-    if keep.size < int(min_blocks):
-        raise InputError(f"only {keep.size} {w}x{w} blocks are free of nodata; at least {int(min_blocks)} are needed")
+    keep = nodata_free_blocks(v, w, min_blocks, shape=logs.shape, what=f"block of lag-{lag} ratios")
     b = square_blocks(d, w)[keep]
     # Halves across the lag (side by side for lags down the rows, one above the other for
     # lags along them): the ratios of the two halves share no pixel.
@@ -399,15 +400,9 @@ def short_lag_correlation(intensity, valid=None, *, lags=(2, 3), window=32, frac
     if x.ndim != 2:
         raise InputError(f"intensity must be a 2-D image, got shape {x.shape}")
     ok = valid_mask(x, valid, what="intensity")
-    rows, cols = x.shape[0] // w, x.shape[1] // w
-    if rows == 0 or cols == 0:
-        raise InputError(f"image of shape {x.shape} is smaller than one {w}x{w} block")
-
     # The ranking of homogeneous_blocks (halves), in float32 on views of the image: it runs on
     # every block of the sample, the measurement only on the kept ones.
-    keep = np.flatnonzero(square_blocks(ok, w).all(axis=(1, 2)))
-    if keep.size < int(min_blocks):
-        raise InputError(f"only {keep.size} {w}x{w} blocks are free of nodata; at least {int(min_blocks)} are needed")
+    keep = nodata_free_blocks(ok, w, min_blocks, shape=x.shape)
     first = square_blocks(np.where(ok, x, 0).astype(np.float32, copy=False), w)[keep, :, :w // 2].reshape(keep.size, -1)
     mean = first.mean(axis=1)
     keep, first, mean = keep[mean > 0], first[mean > 0], mean[mean > 0]
