@@ -310,6 +310,30 @@ def test_loss_minimisers_and_bias_correction():
     assert abs(y_fixed - math.log(R)) < 5 * se
 
 
+def test_looks_balance_weighs_each_sample_by_its_log_speckle_variance():
+    # Variance of ln of L-look Gamma speckle is the trigamma psi_1(L) (Xie, Pierce, Ulaby
+    # 2002, Statistical properties of logarithmically transformed speckle, IEEE TGRS
+    # 40(3)); scipy.special.polygamma(1, L) is the outside value. With looks_balance g each
+    # sample's pixels weigh psi_1(L) ** -g; the weighted mean is taken over valid pixels.
+    rng = np.random.default_rng(7)
+    looks = np.array([1.0, 2.5, 4.4, 16.0])
+    pred = torch.from_numpy(rng.normal(size=(4, 1, 8, 8)).astype(np.float32))
+    target = torch.from_numpy(np.exp(rng.normal(size=(4, 1, 8, 8))).astype(np.float32))
+    valid = torch.from_numpy(rng.random((4, 1, 8, 8)) > 0.2)
+    batch = {"target": target, "valid": valid, "looks": torch.tensor(looks, dtype=torch.float32)}
+    err = ((pred.numpy() - np.log(target.numpy())) ** 2) * valid.numpy()
+    for g in (0.0, 0.7, 1.0):
+        w = special.polygamma(1, looks) ** -g
+        counts = valid.numpy().reshape(4, -1).sum(1)
+        expected = (w * err.reshape(4, -1).sum(1)).sum() / (w * counts).sum()
+        got = DespeckleLoss("mse_log", "clean", looks_balance=g)(pred, batch).item()
+        assert got == pytest.approx(expected, rel=1e-5)
+    with pytest.raises(Exception, match="looks_balance"):
+        DespeckleLoss("mse_log", "clean", looks_balance=1.5)
+    with pytest.raises(ConfigError, match="loss.looks_balance"):
+        config_from_dict({"loss": {"looks_balance": -0.1}})
+
+
 def test_time_budget_stops_at_epoch_boundary(monkeypatch):
     clock = {"t": 0.0}
     monkeypatch.setattr("despeck.training.trainer.time.monotonic", lambda: clock["t"])

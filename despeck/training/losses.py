@@ -14,6 +14,15 @@ exported model needs; see :mod:`despeck.models.wrapper`):
   Against a noisy L-look log target it would converge to ``ln R + psi(L) - ln L``, so the
   target gets ``ln L - psi(L)`` added per sample (exact also when L varies per sample).
 * optional ``tv_weight`` times the mean absolute log difference between neighbours.
+* optional ``looks_balance`` (gamma in [0, 1]): each sample's pixels weigh
+  ``psi_1(L) ** -gamma``, with ``psi_1(L)`` the variance of the log of L-look Gamma
+  speckle (the trigamma function; Xie, Pierce, Ulaby 2002, "Statistical properties of
+  logarithmically transformed speckle", IEEE TGRS 40(3)). With a looks range, a plain
+  mean is dominated by the low-look samples, whose errors are many times larger
+  (psi_1(1) = 1.64, psi_1(16) = 0.064); gamma = 1 divides each sample's error by its
+  speckle's log variance, so every looks level counts by its relative improvement.
+  The weights change which samples matter, not what an unbiased estimate is: the
+  minimiser for each sample, and so the bias correction, are unchanged.
 
 Every loss averages over a per-pixel ``mask``: booleans (nodata left out) or float
 weights (0 leaves a pixel out, e.g. a pixel that changed between the two dates of a
@@ -111,31 +120,45 @@ class DespeckleLoss(nn.Module):
     name : {'gamma_nll', 'mse_log'}
     target : {'clean', 'noisy'}
     tv_weight : float
+    looks_balance : float in [0, 1]
+        Exponent gamma of the per-sample weight ``psi_1(L) ** -gamma`` (0: plain mean).
     """
 
-    def __init__(self, name="gamma_nll", target="clean", tv_weight=0.0):
+    def __init__(self, name="gamma_nll", target="clean", tv_weight=0.0, looks_balance=0.0):
         super().__init__()
         if name not in ("gamma_nll", "mse_log"):
             raise InputError(f"loss must be 'gamma_nll' or 'mse_log', got {name!r}")
         if target not in ("clean", "noisy"):
             raise InputError(f"loss target must be 'clean' or 'noisy', got {target!r}")
+        if not 0.0 <= float(looks_balance) <= 1.0:
+            raise InputError(f"loss looks_balance must be between 0 and 1, got {looks_balance!r}")
         self.name, self.target, self.tv_weight = name, target, float(tv_weight)
+        self.looks_balance = float(looks_balance)
         self._fn = gamma_nll if name == "gamma_nll" else log_mse
 
     def forward(self, pred_log, batch):
         # Per-pixel weights where the data give them (pairs: 0 on changed pixels).
         mask = batch["weight"] if "weight" in batch else batch["valid"]
         t = log_target(batch, self.name, self.target)
-        loss = self._fn(pred_log, t, mask)
+        loss = self._fn(pred_log, t, self._balanced(mask, batch, pred_log.dtype))
         if self.tv_weight:
             loss = loss + self.tv_weight * total_variation(pred_log, mask)
         return loss
+
+    def _balanced(self, mask, batch, dtype):
+        """``mask`` times each sample's ``psi_1(L) ** -looks_balance`` (the mask itself when 0)."""
+        if not self.looks_balance:
+            return mask
+        looks = batch["looks"].to(dtype).reshape(-1, 1, 1, 1)
+        weight = torch.special.polygamma(1, looks) ** -self.looks_balance
+        return mask.to(dtype) * weight
 
     def describe(self) -> dict:
         return {
             "loss": self.name,
             "target": self.target,
             "tv_weight": self.tv_weight,
+            "looks_balance": self.looks_balance,
             "bias_correction": (
                 "none needed (the estimate is the conditional mean intensity)" if self.name == "gamma_nll"
                 else "ln L - psi(L) added to the noisy log target per sample (L: the target's looks)"

@@ -53,7 +53,7 @@ class DespeckleModule(pl.LightningModule):
                  max_epochs=None, validation=None):
         super().__init__()
         self.despeckler = Despeckler(network, looks=looks, log_scale=log_scale)
-        self.loss_fn = DespeckleLoss(loss.name, loss.target, loss.tv_weight)
+        self.loss_fn = DespeckleLoss(loss.name, loss.target, loss.tv_weight, loss.looks_balance)
         self.optim = optim
         self.max_epochs = max_epochs
         self.validation = validation

@@ -291,11 +291,15 @@ class LossConfig(_Section):
 
     ``target`` is ``clean`` (the reference) or ``noisy`` (an independent speckled view of
     it, Noise2Noise-style; the only choice with ``data.pairs`` / ``data.slc``). ``tv_weight`` adds a total-variation penalty on the log estimate.
+    ``looks_balance`` (0 to 1) weighs each sample by ``psi_1(L) ** -looks_balance`` so
+    multi-look samples are not drowned by the larger errors of single-look ones
+    (:class:`despeck.training.losses.DespeckleLoss`).
     """
 
     name: _choice(LOSSES) = "mse_log"
     target: _choice(TARGETS) = "clean"
     tv_weight: Number = _limit(0.0, ">= 0", ge=0)
+    looks_balance: Number = _limit(0.0, "between 0 and 1", ge=0, le=1)
 
 
 class OptimConfig(_Section):
