@@ -110,6 +110,20 @@ def test_status_1_for_an_input_error(tmp_path):
     assert len(_errors(p.stderr)) == 1 and "absent.tif" in p.stderr and "Traceback" not in p.stderr
 
 
+@pytest.mark.parametrize("command", [["simulate"], ["filter", "lee"], ["apply"]])
+def test_a_bad_input_leaves_no_output_folder_behind(tmp_path, command, capsys):
+    # The input is opened before the output's folder is made (despeck.raster.streaming).
+    (tmp_path / "broken.tif").write_bytes(b"not a GeoTIFF")
+    for name in ("absent.tif", "broken.tif"):
+        out = tmp_path / f"new_{name}" / "out.tif"
+        args = [*command, str(tmp_path / name), str(out), "--quiet"]
+        if command[0] == "simulate":
+            args += ["--looks", "2"]
+        assert main(args) == exit_codes.FAILED
+        assert name in capsys.readouterr().err
+        assert not out.parent.exists()
+
+
 def test_status_2_for_usage_errors(tmp_path):
     _tif(tmp_path / "in.tif", _speckle((64, 64)))
     # no command: the help, on standard error, and status 2 (it was 0)

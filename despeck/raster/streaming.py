@@ -287,8 +287,9 @@ def shift_rows_up(array, by, count):
 class RasterStream:
     """One input scene streamed into one output GeoTIFF; use :func:`open_stream`.
 
-    On entry the output path is checked (:func:`~despeck.raster.check_output_path`)
-    and the input opened (:attr:`reader`); settings can then be checked before
+    On entry the input is opened (:attr:`reader`) and then the output path checked
+    (:func:`~despeck.raster.check_output_path`, which may create the output's folder:
+    after the input, so a bad input leaves nothing behind); settings can then be checked before
     :meth:`create_output` creates the output's temporary file. On a clean exit the
     output is verified and renamed into place; on an exception it is deleted.
     """
@@ -305,10 +306,10 @@ class RasterStream:
         self.bar = None
         self._block_shape = (OUTPUT_TILE, OUTPUT_TILE)  # the output profile's, until the output exists
         try:
-            check_output_path(out_path, [self.in_path], overwrite=overwrite)
             if gdal_threads is not None:
                 self._stack.enter_context(_gdal_threads(gdal_threads))
             self.reader = self._stack.enter_context(open_scene(self.in_path, units=units))
+            check_output_path(out_path, [self.in_path], overwrite=overwrite)
         except BaseException:
             self._stack.close()
             raise
