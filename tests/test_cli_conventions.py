@@ -77,6 +77,9 @@ def test_exit_status_values_and_mapping():
         assert exit_codes.status_of(exc) == exit_codes.FAILED
     assert exit_codes.status_of(KeyboardInterrupt()) == exit_codes.INTERRUPTED
     assert exit_codes.status_of(exit_codes.Terminated()) == exit_codes.TERMINATED
+    assert exit_codes.for_signal(signal.SIGINT) == 130 and exit_codes.for_signal(signal.SIGTERM) == 143
+    with pytest.raises(ValueError, match="signal"):
+        exit_codes.for_signal(signal.SIGHUP)
     with pytest.raises(OptionError, match="--window must"):
         with exit_codes.option_values():
             raise InputError("--window must be odd")

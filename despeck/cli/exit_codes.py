@@ -28,7 +28,7 @@ from ..errors import DespeckError, InputError, OptionError
 
 __all__ = [
     "OK", "FAILED", "USAGE", "PARTIAL", "INTERRUPTED", "TERMINATED",
-    "EPILOG", "Terminated", "raise_terminated", "status_of", "option_values", "batch_status",
+    "EPILOG", "Terminated", "raise_terminated", "for_signal", "status_of", "option_values", "batch_status",
 ]
 
 OK = 0
@@ -48,6 +48,16 @@ EPILOG = f"""exit status:
        complete, others failed or were not attempted
   {INTERRUPTED:<4} interrupted by SIGINT (Ctrl-C)
   {TERMINATED:<4} terminated by SIGTERM (train, apply, simulate)"""
+
+
+def for_signal(signum: int) -> int:
+    """The exit status of a command stopped by ``signum``: SIGINT -> 130, SIGTERM -> 143."""
+    import signal
+
+    statuses = {signal.SIGINT: INTERRUPTED, signal.SIGTERM: TERMINATED}
+    if signum not in statuses:
+        raise ValueError(f"no exit status for signal {signum}")
+    return statuses[signum]
 
 
 class Terminated(KeyboardInterrupt):

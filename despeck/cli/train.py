@@ -15,7 +15,7 @@ import sys
 import textwrap
 
 from .exit_codes import EPILOG as EXIT_STATUSES
-from .exit_codes import OK
+from .exit_codes import OK, for_signal
 
 log = logging.getLogger(__name__)
 
@@ -48,7 +48,7 @@ def run(args) -> int:
     except TrainingInterrupted as exc:
         if os.environ.get("LOCAL_RANK", "0") == "0":  # one report per machine, from its first process
             print(f"despeck: {exc}", file=sys.stderr)
-        return exc.exit_code  # 128 + the signal: exit_codes.INTERRUPTED or TERMINATED
+        return for_signal(exc.signum)  # exit_codes.INTERRUPTED or TERMINATED
     if result.rank != 0:  # another process of a distributed run: process 0 reports
         return OK
     shown = {k: round(v, 4) if isinstance(v, float) else v for k, v in result.best_metrics.items()}

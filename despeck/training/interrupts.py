@@ -3,7 +3,8 @@
 :func:`stop_on_signals` wraps :func:`despeck.training.trainer.train`: either signal
 interrupts whatever runs (checkpoints are written atomically, so none is left
 half-written) and becomes :class:`~despeck.training.outcome.TrainingInterrupted`, whose
-``exit_code`` is 130 or 143 and whose message names the last checkpoint
+``signum`` is the signal (the command's exit status is
+:func:`despeck.cli.exit_codes.for_signal`) and whose message names the last checkpoint
 (:func:`interruption`) and how to continue from it with ``--resume``.
 """
 

@@ -23,8 +23,6 @@ class TrainingInterrupted(DespeckError):
     ----------
     signum : int
         The signal.
-    exit_code : int
-        ``128 + signum`` (130 for SIGINT, 143 for SIGTERM), the shell convention.
     checkpoint : Path or None
         The last checkpoint, from which ``resume=True`` continues (None if there is none).
     """
@@ -32,7 +30,6 @@ class TrainingInterrupted(DespeckError):
     def __init__(self, message, *, signum, checkpoint=None):
         super().__init__(message)
         self.signum = int(signum)
-        self.exit_code = 128 + self.signum
         self.checkpoint = checkpoint
 
 
