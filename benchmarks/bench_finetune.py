@@ -67,6 +67,7 @@ Usage::
 
     python benchmarks/bench_finetune.py [--minutes 30] [--model FILE] [--slc] [--threads 2] [--bias-draws 4] [--out bench_output]
     python benchmarks/bench_finetune.py --quick --threads 1    # 256 x 256 areas, 0.5-minute budgets
+    python benchmarks/bench_finetune.py --parallel 2 --threads 1   # two runs at once, one core each
 
 The full run trains twice for ``--minutes`` (four times with ``--slc``) and then
 evaluates every method on 2 x 1024 x 768 pixels (bm3d-log takes most of that);
@@ -360,9 +361,11 @@ def calibration_cell(calibration):
 
 def markdown(result):
     fmt = bench_starter.fmt
+    parallel = result.get("parallel", 1)
+    at_once = "" if parallel == 1 else f", {parallel} runs at once"
     lines = [f"\nSite: {SITE}; speckle oversampling {SYSTEM['oversampling']}, {SYSTEM['taper']} taper, "
              f"{LOOKS:g} look. Model file `{result['model']}` ({result['architecture']['name']}); "
-             f"training budget {result['minutes']:g} min each, {result['threads']} threads; "
+             f"training budget {result['minutes']:g} min each, {result['threads']} threads{at_once}; "
              f"areas {', '.join(SITE_AREAS)}, {result['size']} x {result['size']} trained "
              f"+ {result['holdout']} x {result['size']} held out each."]
     head = "| method | " + " | ".join(f"{p}: PSNR dB | SSIM | bias dB | points median / worst dB" for p in PARTS) + " |"
@@ -454,8 +457,14 @@ def main(argv=None) -> int:
                         help="draws of the evaluation date the radiometric bias is pooled over (default 4)")
     parser.add_argument("--bias-draws-bm3d", action="store_true",
                         help="run bm3d-log on every draw too (default: on the first; it takes minutes per draw)")
+    parser.add_argument("--parallel", type=int, default=1,
+                        help="training runs at once, each in its own process with --threads threads (default 1: "
+                             "one after the other); on two cores, --parallel 2 --threads 1 trains both pair runs "
+                             "in one budget of wall time, each on its own core")
     parser.add_argument("--out", default=str(ROOT / "bench_output"), help="output folder (default bench_output/)")
     args = parser.parse_args(argv)
+    if args.parallel < 1:
+        parser.error(f"--parallel must be at least 1, got {args.parallel}")
     if args.bias_draws < 1:
         parser.error(f"--bias-draws must be at least 1, got {args.bias_draws}")
 
@@ -487,10 +496,17 @@ def main(argv=None) -> int:
     if args.slc:
         runs["fine-tuned (sub-looks)"] = dict(init=init, lr=args.lr_finetune, slc=slcs)
         runs["scratch (sub-looks)"] = dict(init=None, lr=args.lr_scratch, slc=slcs)
-    training = {}
-    for i, (name, kw) in enumerate(runs.items()):
-        cfg = training_config(run_dir=work / f"run{i}", **common, **kw)
-        training[name] = run_training(work, f"run{i}", cfg)
+    jobs = [(work, f"run{i}", training_config(run_dir=work / f"run{i}", **common, **kw))
+            for i, kw in enumerate(runs.values())]
+    if args.parallel == 1:
+        infos = [run_training(*job) for job in jobs]
+    else:  # spawned processes: each sets its own torch threads; data workers may start below them
+        import multiprocessing
+        from concurrent.futures import ProcessPoolExecutor
+
+        with ProcessPoolExecutor(args.parallel, mp_context=multiprocessing.get_context("spawn")) as pool:
+            infos = list(pool.map(run_training, *zip(*jobs)))
+    training = dict(zip(runs, infos))
 
     as_is = "starter as is" if init == "starter" else "model as is"
     models = {as_is: load_model_file(model_path)}
@@ -516,7 +532,7 @@ def main(argv=None) -> int:
         "site": SITE, "system": SYSTEM, "looks": LOOKS, "areas": list(SITE_AREAS), "split": "test",
         "scene_seeds": [SCENE_SEED + i for i in range(len(SITE_AREAS))], "noise_seed": NOISE_SEED,
         "model": str(model_path), "init": init, "architecture": arch, "quick": bool(args.quick),
-        "minutes": minutes, "threads": args.threads, "size": size, "holdout": holdout,
+        "minutes": minutes, "threads": args.threads, "parallel": args.parallel, "size": size, "holdout": holdout,
         "homogeneous_boxes": boxes, "methods": methods, "training": training, "evaluation": results,
         "bias_draws": args.bias_draws, "bias_draws_bm3d": bool(args.bias_draws_bm3d),
         "gains": {src: gains(results, classical, tuned, as_is, scratch)
