@@ -23,44 +23,24 @@ import warnings
 
 import numpy as np
 import pytest
-import rasterio
 import torch
-from affine import Affine
 
 from despeck.inference import despeckle_array
 from despeck.models import load_model_file
 from despeck.speckle import enl_intensity, gamma_speckle, simulate_correlated_intensity, simulate_correlated_slc
 from despeck.synthetic import make_scene
-from despeck.training import config_from_dict, train
+from despeck.training import train
+from training_helpers import tiny_pair_config
+from training_helpers import write_tif as _write_tif
 
 torch.set_num_threads(1)
-TRANSFORM = Affine(10.0, 0.0, 5000.0, 0.0, -10.0, 9000.0)
 SYSTEM = {"oversampling": 1.3, "taper": "hamming"}
 TARGET_DB = 0.1  # project target for the radiometric bias on homogeneous areas (issue 10)
 
 
-def _write_tif(path, array):
-    array = np.asarray(array)
-    dtype = "complex64" if np.iscomplexobj(array) else "float32"
-    with rasterio.open(path, "w", driver="GTiff", height=array.shape[0], width=array.shape[1], count=1,
-                       dtype=dtype, transform=TRANSFORM) as dst:
-        dst.write(array.astype(dtype), 1)
-    return str(path)
-
-
 def _train(out, **data):
     """Four epochs of 8 steps of logcnn-xs (a network that is not told the looks or correlation)."""
-    config = config_from_dict({
-        "data": {"patch_size": 32, "batch_size": 8, "patches_per_epoch": 64, "val_patches": 16,
-                 "val_fraction": 0.34, **data},
-        "model": {"name": "logcnn-xs"},
-        "speckle": {"looks": 1},
-        "loss": {"name": "mse_log", "target": "noisy"},
-        "optim": {"lr": 0.002, "schedule": "constant"},
-        "budget": {"max_epochs": 4},
-        "trainer": {"seed": 0, "threads": 1, "progress": False, "log_every_n_steps": 4},
-        "output": {"dir": str(out)},
-    })
+    config = tiny_pair_config(out, **data)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return train(config, progress=False)

@@ -23,35 +23,11 @@ from despeck.training import config_from_dict, load_config, train
 from despeck.training.losses import DespeckleLoss, gamma_nll, log_mse
 from despeck.change import change_mask, change_thresholds
 from despeck.training.pairs import PairTrainingData
+from training_helpers import tiny_pair_config as _config
+from training_helpers import write_tif as _write_tif
 
 torch.set_num_threads(1)
 PAIRS_CONFIG = Path(__file__).resolve().parents[1] / "configs" / "pairs.yaml"
-TRANSFORM = Affine(10.0, 0.0, 5000.0, 0.0, -10.0, 9000.0)
-
-
-def _write_tif(path, array, transform=TRANSFORM, nodata=None):
-    array = np.asarray(array)
-    with rasterio.open(path, "w", driver="GTiff", height=array.shape[0], width=array.shape[1], count=1,
-                       dtype="complex64" if np.iscomplexobj(array) else "float32", nodata=nodata,
-                       transform=transform) as dst:
-        dst.write(array.astype(np.complex64 if np.iscomplexobj(array) else np.float32), 1)
-    return path
-
-
-def _config(out, **data):
-    """A tiny pair-training config: logcnn-xs, 32-pixel patches, 4 epochs of 8 steps, one thread."""
-    values = {
-        "data": {"patch_size": 32, "batch_size": 8, "patches_per_epoch": 64, "val_patches": 16,
-                 "val_fraction": 0.34, **data},
-        "model": {"name": "logcnn-xs"},
-        "speckle": {"looks": 1},
-        "loss": {"name": "mse_log", "target": "noisy"},
-        "optim": {"lr": 0.002, "schedule": "constant"},
-        "budget": {"max_epochs": 4},
-        "trainer": {"seed": 0, "threads": 1, "progress": False, "log_every_n_steps": 4},
-        "output": {"dir": str(out)},
-    }
-    return config_from_dict(values)
 
 
 @pytest.fixture(scope="module")
