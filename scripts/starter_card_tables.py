@@ -7,7 +7,8 @@ Usage::
 Prints: the model's dB-domain PSNR margin over the best classical method (log-domain
 BM3D included) and over the best of the nine despeck filters per cell; bias, point
 targets, SSIM and edge correlation of the model beside the best classical method; and,
-with ``--old``, the same margins of another model file (e.g. the previous starter).
+with ``--old``, the same margins of another model file (e.g. the previous starter) and
+the PSNR difference between the two models per cell.
 """
 
 from __future__ import annotations
@@ -63,6 +64,10 @@ def main(argv=None):
         o = json.load(open(a.old))
         print("\nThe other model file's margin over the best classical method (same scenes and speckle):\n")
         print(grid(o, margins(o), lambda v: f"{v[0]:+.2f}"))
+        new_psnr = {k: c["methods"]["model"]["psnr_db"] for k, c in d["cells"].items()}
+        old_psnr = {k: c["methods"]["model"]["psnr_db"] for k, c in o["cells"].items()}
+        print("\nThis model's dB-domain PSNR minus the other model file's:\n")
+        print(grid(d, {k: new_psnr[k] - old_psnr[k] for k in new_psnr}, lambda v: f"{v:+.2f}"))
 
 
 if __name__ == "__main__":
