@@ -30,7 +30,7 @@ def test_load_config_of_the_starter_leaves_torch_unloaded():
         "config = load_config('configs/starter.yaml')\n"
         "print(config.model.name, config.speckle.looks, 'torch' in sys.modules, 'lightning' in sys.modules)\n"
     )
-    assert out == "unet-cond-s [1.0, 16.0] False False"
+    assert out == "unet-cond-m [1.0, 16.0] False False"
 
 
 def test_unknown_model_name_is_refused_without_torch():

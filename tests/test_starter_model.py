@@ -32,7 +32,7 @@ def starter():
 def test_starter_is_small_and_describes_itself():
     assert STARTER.stat().st_size < 5 * 1024 * 1024  # project target: a small bundled file
     meta = read_model_metadata(STARTER)
-    assert meta["architecture"]["name"] == "unet-cond-s" and meta["units"] == "intensity"
+    assert meta["architecture"]["name"] == "unet-cond-m" and meta["units"] == "intensity"
     model = load_model_file(STARTER)
     assert model.looks == [1.0, 16.0] and model.conditioned and model.correlation_unknown
     assert model.log_bias_table is not None

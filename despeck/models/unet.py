@@ -39,12 +39,13 @@ def _block(cin, cout):
 
 
 @register_model(
-    "unet-cond-m", widths=[16, 32, 48, 64], condition_channels=3,
-    description="looks- and correlation-conditioned residual U-Net, 3 downsamplings, 16-32-48-64 channels",
+    "unet-cond-m", widths=[16, 32, 64, 96], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 3 downsamplings, 16-32-64-96 channels "
+                "(~391k parameters, receptive field 111 px; the bundled starter)",
 )
 @register_model(
     "unet-cond-s", widths=[16, 32, 64], condition_channels=3,
-    description="looks- and correlation-conditioned residual U-Net, 16-32-64 channels (~118k parameters)",
+    description="looks- and correlation-conditioned residual U-Net, 16-32-64 channels (~117k parameters)",
 )
 @register_model(
     "unet-cond-xs", widths=[8, 16], condition_channels=3,
