@@ -147,3 +147,27 @@ def test_held_out_pictures_are_never_trained_on_under_any_name(monkeypatch):
     monkeypatch.setattr(script, "SAME_PICTURE", {})
     with pytest.raises(SystemExit, match="same picture"):
         script.check_split(("astronaut", "chelsea"))
+
+
+def test_the_faster_bundled_model_is_the_previous_starter_and_keeps_mean_backscatter(tmp_path):
+    # "starter-fast": the previous, smaller starter, for users who need throughput. Same 0.1 dB
+    # radiometry target (project target) on 4-look Gamma speckle of a constant area.
+    from despeck.models import bundled_model_path, resolve_model_path
+
+    path = resolve_model_path("starter-fast")
+    assert path == bundled_model_path("starter-fast") and path.stat().st_size < 5 * 1024 * 1024
+    assert read_model_metadata(path)["architecture"]["name"] == "unet-cond-s"
+    fast = load_model_file(path)
+    assert fast.conditioned and fast.looks == [1.0, 16.0]
+    truth = 0.03
+    noisy = simulate_intensity(np.full((384, 384), truth, np.float32), 4.0, rng=np.random.default_rng(3))
+    out = despeckle_array(noisy, fast, progress=False, threads=1)
+    assert abs(10 * math.log10(out.astype(np.float64).mean() / truth)) < 0.1
+    # despeck apply takes the bundled name for --model
+    src = tmp_path / "in.tif"
+    with rasterio.open(src, "w", driver="GTiff", height=128, width=128, count=1, dtype="float32",
+                       transform=from_origin(1000.0, 2000.0, 10.0, 10.0)) as dst:
+        dst.write(noisy[:128, :128], 1)
+    assert main(["apply", str(src), "--model", "starter-fast", "--out", str(tmp_path / "out.tif"), "--quiet"]) == 0
+    with rasterio.open(tmp_path / "out.tif") as ds:
+        assert ds.tags()["despeck_method"] == "starter_fast.safetensors" and np.isfinite(ds.read(1)).all()

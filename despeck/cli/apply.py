@@ -41,7 +41,8 @@ def add_arguments(parser):
     parser.add_argument("inputs", nargs="+", metavar="IN",
                         help="input rasters: files, folders (their .tif/.tiff files) or glob patterns")
     parser.add_argument("--model", metavar="FILE",
-                        help="model file (.safetensors); default: the bundled starter model")
+                        help="model file (.safetensors) or a bundled model's name: starter (the default) or "
+                             "starter-fast (the previous, smaller starter: about 1.6x faster, 0.15-0.5 dB lower PSNR)")
     where = parser.add_mutually_exclusive_group()
     where.add_argument("--out", metavar="PATH", help="output file (one input only)")
     where.add_argument("--out-dir", metavar="DIR",
@@ -172,12 +173,19 @@ def plan_outputs(inputs, *, out=None, out_dir=None, suffix=DEFAULT_SUFFIX) -> li
     return outputs
 
 
-def load_model(path):
-    """The model from ``--model``, or the bundled starter model."""
+def model_file(option) -> pathlib.Path:
+    """The model file ``--model`` names (a path or a bundled model's name), or the bundled starter's."""
+    from ..models import resolve_model_path
+
+    return resolve_model_path(option) if option is not None else starter_model_path()
+
+
+def load_model(option):
+    """The model from ``--model`` (a file or a bundled model's name), or the bundled starter model."""
     from ..models import load_model_file
 
-    if path is None:
-        path = starter_model_path()
+    path = model_file(option)
+    if option is None:
         if not path.exists():
             raise ModelFileError(
                 f"no --model given and the bundled starter model is not installed ({path}); pass --model FILE"
@@ -248,7 +256,7 @@ def run(args) -> int:
         if not args.quiet:
             print(f"shard {part[0]}/{part[1]}: {len(inputs)} of {total} input(s)")
     model = load_model(args.model)
-    log.info("model %s: receptive field %d pixels", args.model or starter_model_path(), model.receptive_field)
+    log.info("model %s: receptive field %d pixels", model_file(args.model), model.receptive_field)
     if not getattr(args, "dask", None):
         from ..cpu import usable_cores
 
@@ -303,7 +311,7 @@ def _run_dask(args, inputs, outputs) -> dict:
         if status == "written":
             _log_written(result.output)
 
-    model_path = args.model if args.model is not None else starter_model_path()
+    model_path = model_file(args.model)
     apply_many(inputs, outputs, model_path, args.dask, threads=args.threads or 1, overwrite=args.overwrite,
                units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=args.bf16,
                looks=getattr(args, "looks", None), cog=getattr(args, "cog", False), on_result=show)
