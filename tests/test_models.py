@@ -68,7 +68,7 @@ def test_receptive_field_bounds_influence(name):
         assert rows.max() - rows.min() + 1 == rf
         assert net.size_multiple == 1
     else:
-        assert net.size_multiple == 2 ** net.levels
+        assert net.size_multiple == getattr(net, "unshuffle", 1) * 2 ** net.levels
 
 
 def test_default_logcnn_is_small():
@@ -84,7 +84,7 @@ def test_create_model_rejects_bad_arguments():
     with pytest.raises(InputError, match="depth must be an integer >= 2"):
         create_model("logcnn-s", depth=1)
     net = create_model("unet-s", widths=[4, 8])
-    assert net.architecture == "unet-s" and net.architecture_kwargs == {"widths": [4, 8], "condition_channels": 0}
+    assert net.architecture == "unet-s" and net.architecture_kwargs == {"widths": [4, 8], "condition_channels": 0, "unshuffle": 1}
 
 
 def test_registry_keeps_one_default_configuration_per_entry():
@@ -94,7 +94,7 @@ def test_registry_keeps_one_default_configuration_per_entry():
 
     entry = model_entry("unet-cond-s")
     assert entry.name == "unet-cond-s" and entry.constructor is UNet
-    assert dict(entry.defaults) == {"widths": [16, 32, 64], "condition_channels": 3}
+    assert dict(entry.defaults) == {"widths": [16, 32, 64], "condition_channels": 3, "unshuffle": 1}
     assert model_description("unet-cond-s") == entry.description and "conditioned" in entry.description
     with pytest.raises(TypeError):
         entry.defaults["widths"] = [1, 2]  # the record is read-only
@@ -102,7 +102,7 @@ def test_registry_keeps_one_default_configuration_per_entry():
     defaults["widths"].append(128)  # a caller's copy never changes the record
     assert model_defaults("unet-cond-s")["widths"] == [16, 32, 64]
     net = create_model("unet-cond-s")
-    assert net.architecture_kwargs == {"widths": [16, 32, 64], "condition_channels": 3}
+    assert net.architecture_kwargs == {"widths": [16, 32, 64], "condition_channels": 3, "unshuffle": 1}
     assert model_defaults("logcnn-xs") == {"depth": 6, "width": 16, "dilations": None}
     with pytest.raises(InputError, match="unknown model 'nope'"):
         model_entry("nope")

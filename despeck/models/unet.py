@@ -7,7 +7,14 @@ happens at reduced resolution, so the receptive field grows much faster than the
 Like :mod:`despeck.models.logcnn` the output is residual, ``z - f(z)``, in the
 normalised log domain, and there are no normalisation layers.
 
-Inputs whose sides are not multiples of ``2 ** levels`` are padded by reflection
+With ``unshuffle=2`` the network first folds each 2 x 2 block of the log-intensity
+plane into four channels (pixel unshuffle, the reversible downsampling of FFDNet) and
+unfolds four output channels at the end, so every level runs at half the resolution or
+less: the full-resolution feature maps, whose memory traffic dominates inference time
+on a CPU, are never built. The conditioning planes are constant and are sampled, not
+folded.
+
+Inputs whose sides are not multiples of ``unshuffle * 2 ** levels`` are padded by reflection
 (replication for inputs too small to reflect) up to the next multiple and the output
 is cropped back, so any size works, odd ones included. Because the pooling grid
 follows the tile origin, tiled inference with a U-Net is close to, but not bit-for-bit
@@ -17,6 +24,10 @@ References
 ----------
 Ronneberger, O., Fischer, P., Brox, T. (2015). U-Net: convolutional networks for
 biomedical image segmentation. MICCAI 2015, LNCS 9351, 234-241, arXiv:1505.04597.
+
+Zhang, K., Zuo, W., Zhang, L. (2018). FFDNet: toward a fast and flexible solution for
+CNN-based image denoising. IEEE Trans. Image Processing 27(9), 4608-4622 (the
+reversible 2 x 2 downsampling of the input and the noise-level map as an input plane).
 """
 
 from __future__ import annotations
@@ -38,6 +49,11 @@ def _block(cin, cout):
     )
 
 
+@register_model(
+    "unet-cond-h", widths=[32, 64, 96], condition_channels=3, unshuffle=2,
+    description="looks- and correlation-conditioned residual U-Net at half resolution (2x2 pixel unshuffle), "
+                "32-64-96 channels (~376k parameters); faster than unet-cond-s on a CPU",
+)
 @register_model(
     "unet-cond-m", widths=[16, 32, 64, 96], condition_channels=3,
     description="looks- and correlation-conditioned residual U-Net, 3 downsamplings, 16-32-64-96 channels "
@@ -70,27 +86,35 @@ class UNet(nn.Module):
     ----------
     widths : list of int
         Channels per level, finest first; ``len(widths) - 1`` downsampling steps.
+    condition_channels : int
+        Constant conditioning planes after the log-intensity plane (0: none).
+    unshuffle : int
+        1, or 2 to fold 2 x 2 pixel blocks into channels before the first level and
+        unfold them after the last.
 
     Attributes
     ----------
     size_multiple : int
-        ``2 ** levels``: inputs are padded to a multiple of it; tiled inference aligns tile
+        ``unshuffle * 2 ** levels``: inputs are padded to a multiple of it; tiled inference aligns tile
         origins to it so every tile sees the scene's pooling grid.
     receptive_field : int
         An odd upper bound of the side of the square of input pixels that can influence
         one output pixel (computed layer by layer; the tests check it empirically).
     """
 
-    def __init__(self, *, widths=(16, 32, 64), condition_channels=0):
+    def __init__(self, *, widths=(16, 32, 64), condition_channels=0, unshuffle=1):
         super().__init__()
         self.condition_channels = check_int("condition_channels", condition_channels, 0)
+        self.unshuffle = check_int("unshuffle", unshuffle, 1)
+        if self.unshuffle not in (1, 2):
+            raise InputError(f"model argument unshuffle must be 1 or 2, got {unshuffle!r}")
         if isinstance(widths, (int, str)) or len(widths) < 2:
             raise InputError(f"model argument widths must list at least two channel counts, got {widths!r}")
         widths = [check_int("widths", w, 1) for w in widths]
         self.widths = widths
         self.levels = len(widths) - 1
         self.encoders = nn.ModuleList()
-        cin = 1 + self.condition_channels
+        cin = self.unshuffle ** 2 + self.condition_channels
         for w in widths[:-1]:
             self.encoders.append(_block(cin, w))
             cin = w
@@ -100,10 +124,10 @@ class UNet(nn.Module):
         for level in reversed(range(self.levels)):
             self.ups.append(nn.ConvTranspose2d(widths[level + 1], widths[level], 2, stride=2))
             self.decoders.append(_block(2 * widths[level], widths[level]))
-        self.head = nn.Conv2d(widths[0], 1, 1)
+        self.head = nn.Conv2d(widths[0], self.unshuffle ** 2, 1)
         self.receptive_field = self._receptive_field()
         # Tiles whose origin is a multiple of this see the same pooling grid as the scene.
-        self.size_multiple = 2 ** self.levels
+        self.size_multiple = self.unshuffle * 2 ** self.levels
         self._init_weights()
 
     def _receptive_field(self) -> int:
@@ -111,7 +135,10 @@ class UNet(nn.Module):
         # pooling adds one pixel at its input scale and a 2x2 stride-2 transposed conv
         # adds at most one at its input scale (its outputs each see one input pixel,
         # but which one depends on parity, so count it as a 2-wide kernel).
-        rf, jump = 1, 1
+        # An unshuffle by s is an s x s stride-s convolution at the start and its
+        # transpose at the end: s - 1 pixels each at full resolution.
+        s = self.unshuffle
+        rf, jump = 1 + 2 * (s - 1), s
         for _ in range(self.levels):
             rf += 2 * 2 * jump      # two 3x3 convolutions
             rf += 1 * jump          # 2x2 average pooling
@@ -140,13 +167,16 @@ class UNet(nn.Module):
         denoisers); the output has one plane.
         """
         h, w = z.shape[-2:]
-        m = 2 ** self.levels
+        m = self.size_multiple
         ph, pw = (-h) % m, (-w) % m
         x = z
         if ph or pw:
             # Reflection needs the pad to be smaller than the side; replicate otherwise.
             mode = "reflect" if ph < h and pw < w else "replicate"
             x = F.pad(z, (0, pw, 0, ph), mode=mode)
+        if self.unshuffle > 1:
+            s = self.unshuffle
+            x = torch.cat([F.pixel_unshuffle(x[:, :1], s), x[:, 1:, ::s, ::s]], dim=1)
         skips = []
         for enc in self.encoders:
             x = enc(x)
@@ -156,9 +186,12 @@ class UNet(nn.Module):
         for up, dec in zip(self.ups, self.decoders):
             x = up(x)
             x = dec(torch.cat([x, skips.pop()], dim=1))
-        noise = self.head(x)[..., :h, :w]
+        noise = self.head(x)
+        if self.unshuffle > 1:
+            noise = F.pixel_shuffle(noise, self.unshuffle)
+        noise = noise[..., :h, :w]
         return z[:, :1] - noise
 
     def extra_repr(self) -> str:
         return (f"widths={self.widths}, condition_channels={self.condition_channels}, "
-                f"receptive_field={self.receptive_field}")
+                f"unshuffle={self.unshuffle}, receptive_field={self.receptive_field}")
