@@ -68,6 +68,7 @@ Usage::
     python benchmarks/bench_finetune.py [--minutes 30] [--model FILE] [--slc] [--threads 2] [--bias-draws 4] [--out bench_output]
     python benchmarks/bench_finetune.py --quick --threads 1    # 256 x 256 areas, 0.5-minute budgets
     python benchmarks/bench_finetune.py --parallel 2 --threads 1   # two runs at once, one core each
+    python benchmarks/bench_finetune.py --slc --no-pairs --parallel 2 --threads 1   # only the sub-look runs
 
 The full run trains twice for ``--minutes`` (four times with ``--slc``) and then
 evaluates every method on 2 x 1024 x 768 pixels (bm3d-log takes most of that);
@@ -446,6 +447,8 @@ def main(argv=None) -> int:
     parser.add_argument("--quick", action="store_true", help="256 x 256 areas, small patches, 0.5-minute budgets")
     parser.add_argument("--model", default=None, help="model file to fine-tune (default: the bundled starter)")
     parser.add_argument("--slc", action="store_true", help="also fine-tune and train from scratch on SLC sub-looks")
+    parser.add_argument("--no-pairs", action="store_true",
+                        help="with --slc: train only the two sub-look runs, not the two pair runs")
     parser.add_argument("--size", type=int, default=None, help="side of each trained area (default 768; quick 256)")
     parser.add_argument("--threads", type=int, default=2, help="torch threads for training and inference (default 2)")
     parser.add_argument("--lr-finetune", type=float, default=3e-4)
@@ -465,6 +468,8 @@ def main(argv=None) -> int:
     args = parser.parse_args(argv)
     if args.parallel < 1:
         parser.error(f"--parallel must be at least 1, got {args.parallel}")
+    if args.no_pairs and not args.slc:
+        parser.error("--no-pairs leaves no training run without --slc")
     if args.bias_draws < 1:
         parser.error(f"--bias-draws must be at least 1, got {args.bias_draws}")
 
@@ -491,8 +496,10 @@ def main(argv=None) -> int:
 
     common = dict(arch=arch, norm=norm, minutes=minutes, threads=args.threads, quick=args.quick,
                   change_false_alarm=args.change_false_alarm)
-    runs = {"fine-tuned (pairs)": dict(init=init, lr=args.lr_finetune, pairs=pairs),
-            "scratch (pairs)": dict(init=None, lr=args.lr_scratch, pairs=pairs)}
+    runs = {}
+    if not args.no_pairs:
+        runs["fine-tuned (pairs)"] = dict(init=init, lr=args.lr_finetune, pairs=pairs)
+        runs["scratch (pairs)"] = dict(init=None, lr=args.lr_scratch, pairs=pairs)
     if args.slc:
         runs["fine-tuned (sub-looks)"] = dict(init=init, lr=args.lr_finetune, slc=slcs)
         runs["scratch (sub-looks)"] = dict(init=None, lr=args.lr_scratch, slc=slcs)
@@ -525,7 +532,7 @@ def main(argv=None) -> int:
     for p in PARTS:
         if not boxes[p]:
             notes.append(f"{p}: no homogeneous box of the layout lies wholly inside it; no bias figure")
-    sources = {"pairs": ("fine-tuned (pairs)", "scratch (pairs)")}
+    sources = {} if args.no_pairs else {"pairs": ("fine-tuned (pairs)", "scratch (pairs)")}
     if args.slc:
         sources["sub-looks"] = ("fine-tuned (sub-looks)", "scratch (sub-looks)")
     result = {
