@@ -34,7 +34,9 @@ the estimators are:
   and 0.03 at lag 2);
 - ``ratio-1-short-2pc``: as ``ratio-1-short``, keeping the most homogeneous 2 % of the
   blocks instead of 5 % (at least ``MIN_BLOCKS``): on built-up ground few blocks are free of
-  texture, and 5 % of a small scene already reaches into textured ones;
+  texture, and 5 % of a small scene already reaches into textured ones (not adopted: on
+  the full matrix, AMD EPYC, rms 0.104 against 0.107 but worst -0.49 against -0.46, and
+  built-up ground still read 15-25 % low at 4.4 looks);
 - ``package``: what :func:`despeck.looks.estimate_scene_looks` answers as installed.
 
 Per estimator: mean, rms and worst ``ln(estimate / true looks)`` over the matrix (and per
