@@ -52,7 +52,8 @@ def _block(cin, cout):
 @register_model(
     "unet-cond-h", widths=[32, 64, 96], condition_channels=3, unshuffle=2,
     description="looks- and correlation-conditioned residual U-Net at half resolution (2x2 pixel unshuffle), "
-                "32-64-96 channels (~376k parameters); faster than unet-cond-s on a CPU",
+                "32-64-96 channels (~376k parameters); about 1.3x the speed of unet-cond-s, but weaker on "
+                "correlated single-look speckle in the project's trial (see the starter model card)",
 )
 @register_model(
     "unet-cond-m", widths=[16, 32, 64, 96], condition_channels=3,
