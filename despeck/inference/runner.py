@@ -2,7 +2,7 @@
 
 Speed settings: torch threads (default all cores available to the process),
 ``torch.inference_mode``, denormals flushed to zero, channels-last memory format only
-when timing the first batches of the scene in both formats shows it is faster, and optional bfloat16
+when a timing on a crop of the first tile shows it is faster, and optional bfloat16
 autocast on CPUs with native bf16 instructions (:func:`despeck.cpu.bf16_supported`).
 """
 
@@ -18,7 +18,7 @@ import torch
 from ..cpu import bf16_supported, usable_cores
 from .tiles import InferenceWarning, positive_int
 
-__all__ = ["BATCH_PIXELS", "TRIAL_MIN_PIXELS", "TRIAL_FORMATS", "WARM_UP_SIDE", "torch_settings", "TileRunner", "run_settings"]
+__all__ = ["BATCH_PIXELS", "TRIAL_MIN_PIXELS", "TRIAL_SIDE", "torch_settings", "TileRunner", "run_settings"]
 
 # Pixels per batch the default batch size aims for: enough work per call to keep both
 # cores busy, small enough that a 64-channel network's activations stay a few hundred MB
@@ -27,15 +27,9 @@ BATCH_PIXELS = 1 << 19
 
 # Below this many pixels a timing of the two memory formats costs more than it can save.
 TRIAL_MIN_PIXELS = 4_000_000
-# The memory formats the first batches of a large scene run in, timed, after one untimed
-# warm-up call per format on a small crop (the first call in a format is slow). Every
-# batch is real work whose result is kept, so the trial costs only the difference
-# between the formats on one batch. (A timing on 160 x 160 crops alone, tried before,
-# picked the slower format on a 2048 x 2048 scene about half the time: small crops do
-# not behave like whole tiles.)
-TRIAL_FORMATS = (True, False)
-#: Side of the warm-up crop.
-WARM_UP_SIDE = 64
+# Side of the crop timed in each format: big enough for the convolution kernels to
+# behave as on whole tiles, small enough to cost well under 1 % of a large scene.
+TRIAL_SIDE = 160
 
 
 @contextlib.contextmanager
@@ -58,10 +52,9 @@ class TileRunner:
     """Runs batches of tiles through the model with the chosen speed settings.
 
     When ``channels_last`` is None and the scene is large enough for it to matter, the
-    first two batches run, timed, in the two formats of :data:`TRIAL_FORMATS` and the one
-    that took less time per pixel is kept; small scenes keep the default (contiguous)
-    format. ``channels_last`` stays None while the trial runs (a scene of
-    fewer batches ends it undecided).
+    first call times both memory formats on a crop of at most 160 x 160 pixels of its
+    first tile (a warm-up and a timed run each) and keeps the faster one; small scenes
+    keep the default (contiguous) format.
     """
 
     def __init__(self, model, *, log_offset, bf16, channels_last, total_pixels=None, looks=None, correlation=None):
@@ -73,7 +66,6 @@ class TileRunner:
             channels_last = False
         self.channels_last = channels_last
         self._converted = False
-        self._trial = []  # (channels_last, seconds per pixel) of the trial batches run so far
 
     def _set_format(self, cl):
         fmt = torch.channels_last if cl else torch.contiguous_format
@@ -84,27 +76,22 @@ class TileRunner:
         if self._converted:
             self.model.to(memory_format=torch.contiguous_format)
 
-    def _trial_batch(self, tiles):
-        if not self._trial:
-            crop = np.ascontiguousarray(tiles[:1, :WARM_UP_SIDE, :WARM_UP_SIDE])
-            for cl in TRIAL_FORMATS:
-                self._set_format(cl)
-                self._forward(crop, cl)
-        cl = TRIAL_FORMATS[len(self._trial)]
-        self._set_format(cl)
-        start = time.perf_counter()
-        out = self._forward(tiles, cl)
-        self._trial.append((cl, (time.perf_counter() - start) / max(tiles.size, 1)))
-        if len(self._trial) == len(TRIAL_FORMATS):
-            timed = dict(self._trial)
-            self.channels_last = timed[True] < timed[False]
-            self._set_format(self.channels_last)
-        return out
+    def _choose_format(self, tiles):
+        h, w = min(TRIAL_SIDE, tiles.shape[1]), min(TRIAL_SIDE, tiles.shape[2])
+        crop = np.ascontiguousarray(tiles[:1, :h, :w])
+        seconds = {}
+        for cl in (False, True, False, True):  # the second round, warm, is the one kept
+            self._set_format(cl)
+            start = time.perf_counter()
+            self._forward(crop, cl)
+            seconds[cl] = time.perf_counter() - start
+        self.channels_last = seconds[True] < seconds[False]
+        self._set_format(self.channels_last)
 
     def __call__(self, tiles: np.ndarray) -> np.ndarray:
         if self.channels_last is None:
-            return self._trial_batch(tiles)
-        if self.channels_last and not self._converted:
+            self._choose_format(tiles)
+        elif self.channels_last and not self._converted:
             self._set_format(True)
         return self._forward(tiles, self.channels_last)
 
