@@ -10,8 +10,9 @@ normalised log domain, and there are no normalisation layers.
 With ``unshuffle=2`` the network first folds each 2 x 2 block of the log-intensity
 plane into four channels (pixel unshuffle, the reversible downsampling of FFDNet) and
 unfolds four output channels at the end, so every level runs at half the resolution or
-less: the full-resolution feature maps, whose memory traffic dominates inference time
-on a CPU, are never built. The conditioning planes are constant and are sampled, not
+less: the full-resolution feature maps, a large share of a small U-Net's inference
+time on a CPU, are never built (faster, but weaker on correlated single-look speckle in
+the project's one trial: see the starter model card). The conditioning planes are constant and are sampled, not
 folded.
 
 Inputs whose sides are not multiples of ``unshuffle * 2 ** levels`` are padded by reflection
