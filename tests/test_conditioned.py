@@ -202,3 +202,25 @@ def test_model_init_is_relative_to_the_config_file(tmp_path, model):
     assert cfg.model.init == str(tmp_path / "cfg" / ".." / "donor.safetensors")
     (tmp_path / "cfg" / "s.yaml").write_text("model: {name: unet-cond-xs, init: starter}\ndata: {synthetic_scenes: 1}\n")
     assert load_config(tmp_path / "cfg" / "s.yaml").model.init == "starter"
+
+
+def test_looks_jitter_spreads_the_told_looks_only():
+    # speckle.looks_jitter: the told looks are L * exp(s * N(0, 1)) with s = looks_jitter,
+    # the correlation keeps condition_jitter's noise. Checked with a Kolmogorov-Smirnov
+    # test of ln(told / L) against N(0, s) (scipy.stats.kstest; Massey 1951, "The
+    # Kolmogorov-Smirnov test for goodness of fit", JASA 46(253), 68-78).
+    from scipy import stats
+
+    from despeck.training.speckle_draws import SpeckleDraw, told_condition
+
+    draw = SpeckleDraw(looks=4.4, correlated=True, oversampling=(1.25, 1.25), taper="hamming")
+    rng = np.random.default_rng(3)
+    told = [told_condition(draw, 0.0, rng, looks_jitter=0.2) for _ in range(2000)]
+    logs = np.log([t[0] / 4.4 for t in told])
+    assert stats.kstest(logs, "norm", args=(0.0, 0.2)).pvalue > 1e-3
+    assert stats.kstest(logs, "norm", args=(0.0, 0.04)).pvalue < 1e-6  # the check can fail
+    assert {t[1] for t in told} == {draw.correlation()}  # no jitter on the correlation
+    # Left unset, the looks take condition_jitter's noise: the same draws as before.
+    a = [told_condition(draw, 0.04, np.random.default_rng(9)) for _ in range(3)]
+    b = [told_condition(draw, 0.04, np.random.default_rng(9), looks_jitter=None) for _ in range(3)]
+    assert a == b and len({t[0] for t in a}) == 1 and a[0][0] != 4.4

@@ -79,7 +79,8 @@ class PatchDataset(EpochPatches):
         target = draw.apply(clean, rng) if c.loss.target == "noisy" else expected
         clean = expected
         offset = ref.log_mean + log_intensity_mean(looks) + c.data.offset_jitter * float(rng.standard_normal())
-        told = told_condition(draw, c.speckle.condition_jitter, rng, c.speckle.condition_dropout)
+        told = told_condition(draw, c.speckle.condition_jitter, rng, c.speckle.condition_dropout,
+                              looks_jitter=c.speckle.looks_jitter)
         return patch_item(noisy, target, valid, looks, offset, told, clean=clean)
 
 

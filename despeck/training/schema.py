@@ -240,6 +240,11 @@ class SpeckleConfig(_Section):
     #: conditioned networks: noise added to the looks (relative, log scale) and to the
     #: correlation they are told, so they tolerate the estimation error of real scenes
     condition_jitter: Number = _limit(0.03, "in [0, 0.5]", ge=0, le=0.5)
+    #: conditioned networks: noise on the told looks alone (relative, log scale), in
+    #: place of condition_jitter's; null: condition_jitter's. Larger values teach the
+    #: network to read the speckle level from the pixels where the looks estimate errs
+    #: (textured built-up ground reads 15-25 % low)
+    looks_jitter: Optional[Number] = _limit(None, "in [0, 1] or null", ge=0, le=1)
     #: conditioned networks: share of patches whose correlation is withheld (told
     #: "unknown"), so the model can run blind where a scene's correlation cannot be
     #: measured reliably

@@ -101,15 +101,17 @@ def draw_speckle(s, rng) -> SpeckleDraw:
     return SpeckleDraw(max(L, 1.0), True, (os_r, os_c), taper)
 
 
-def told_condition(draw: SpeckleDraw, jitter: float, rng, dropout: float = 0.0):
+def told_condition(draw: SpeckleDraw, jitter: float, rng, dropout: float = 0.0, looks_jitter=None):
     """The (looks, (rho_rows, rho_cols)) a conditioned network is told for ``draw``.
 
-    With estimation-like noise ``jitter``; with probability ``dropout`` the correlation
-    is withheld (``UNKNOWN_CORRELATION``), so the network learns to run blind too.
+    With estimation-like noise ``jitter`` (on the looks: ``looks_jitter`` if given, the
+    relative error of the looks on a log scale); with probability ``dropout`` the
+    correlation is withheld (``UNKNOWN_CORRELATION``), so the network learns to run blind too.
     """
     from ..models.wrapper import UNKNOWN_CORRELATION
 
-    L = draw.looks * math.exp(jitter * float(rng.standard_normal())) if jitter else draw.looks
+    looks_jitter = jitter if looks_jitter is None else looks_jitter
+    L = draw.looks * math.exp(looks_jitter * float(rng.standard_normal())) if looks_jitter else draw.looks
     rho = draw.correlation()
     if jitter:
         rho = tuple(min(max(r + jitter * float(rng.standard_normal()), 0.0), 1.0) for r in rho)
