@@ -126,6 +126,57 @@ def test_logcnn_crop_of_output_equals_output_of_crop():
     torch.testing.assert_close(tile[..., h:-h, h:-h], full[..., 5 + h:35 - h, 8 + h:30 - h], rtol=1e-5, atol=0)
 
 
+@pytest.mark.parametrize("name", ["unet-cond-m", "unet-cond-h"])
+def test_unet_equals_its_textbook_form_with_concatenated_skips(name):
+    # The decoders apply their first convolution to the upsampled map and the skip
+    # separately and add the results instead of concatenating them (faster on the CPU).
+    # Convolution is linear in its input channels (common practice), so the output must
+    # equal the textbook U-Net (Ronneberger et al. 2015): conv of the concatenation.
+    net = create_model(name).eval()
+    x = torch.randn(2, 1 + net.condition_channels, 48, 40)
+    s = net.unshuffle
+
+    def textbook(z):
+        h = torch.cat([torch.nn.functional.pixel_unshuffle(z[:, :1], s), z[:, 1:, ::s, ::s]], 1) if s > 1 else z
+        skips = []
+        for enc in net.encoders:
+            h = enc(h)
+            skips.append(h)
+            h = torch.nn.functional.avg_pool2d(h, 2)
+        h = net.bottleneck(h)
+        for up, dec in zip(net.ups, net.decoders):
+            h = dec(torch.cat([up(h), skips.pop()], dim=1))
+        noise = net.head(h)
+        return z[:, :1] - (torch.nn.functional.pixel_shuffle(noise, s) if s > 1 else noise)
+
+    with torch.no_grad():
+        torch.testing.assert_close(net(x), textbook(x), rtol=1e-5, atol=1e-5)
+        x_cl = x.contiguous(memory_format=torch.channels_last)
+        torch.testing.assert_close(net.to(memory_format=torch.channels_last)(x_cl), textbook(x), rtol=1e-5,
+                                   atol=1e-5)
+
+
+def test_point_guard_counts_the_ring_inside_an_all_valid_tile_like_a_nodata_border():
+    # Inside a tile without nodata the guard's ring counts come from the tile's shape; they
+    # must equal the counts of the general path, where the pixels outside are nodata.
+    model = Despeckler(create_model("logcnn-xs"), looks=1, point_false_alarm=1e-3).eval()
+    rng = np.random.default_rng(5)
+    x = rng.gamma(1.0, 1.0, (1, 1, 36, 30)).astype(np.float32)
+    for r, c in ((0, 0), (3, 29), (35, 14), (18, 6), (20, 20)):
+        x[0, 0, r, c] = 40.0  # points at corners, edges and inside
+    big = np.zeros((1, 1, 36 + 16, 30 + 16), np.float32)
+    big[..., 8:-8, 8:-8] = x
+    est = torch.full((1, 1, 36, 30), 1.0)
+    est_big = torch.full(big.shape, 1.0)
+    with torch.no_grad():
+        fast = model.keep_points(torch.from_numpy(x), torch.ones(x.shape, dtype=torch.bool), est, 1.0)
+        general = model.keep_points(torch.from_numpy(big), torch.from_numpy(big > 0), est_big, 1.0)
+    torch.testing.assert_close(fast, general[..., 8:-8, 8:-8], rtol=0, atol=0)
+    # kept: the three whose ring holds at least half its 200 pixels inside the tile (the one on
+    # the bottom edge has 105); the two in corners (55 and 73) have too little background
+    assert int((fast == 40.0).sum()) == 3
+
+
 # ----------------------------------------------------------------------------- wrapper
 
 class _LogBoxMean(torch.nn.Module):

@@ -58,7 +58,7 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         Scene normalisation constant; default ``model.scene_log_offset`` of a decimated
         sample (at most one million) of the valid pixels.
     channels_last : bool, optional
-        Force the memory format; default: on scenes of 4 megapixels or more, time both
+        Force the memory format; default: on scenes of a megapixel or more, time both
         on a 160 x 160 crop of the first tile and keep the faster, else contiguous.
     progress : bool
         Show a progress bar (MP/s, time left).

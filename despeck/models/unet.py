@@ -50,6 +50,22 @@ def _block(cin, cout):
     )
 
 
+def _joined_conv(block, a, b):
+    """``block(torch.cat([a, b], dim=1))`` without building the concatenation.
+
+    The first convolution of the block is applied to each part with its half of the
+    weights and the results summed (the same sum of products, regrouped): a channel
+    concatenation of two channels-last maps is a slow interleaving copy on the CPU,
+    more than a quarter of a decoder convolution's time at full resolution (measured
+    with torch 2.13 on two cores: 816 x 816, 16 + 16 channels, 80 ms against 67 ms).
+    """
+    conv, rest = block[0], block[1:]
+    ca = a.shape[1]
+    y = F.conv2d(a, conv.weight[:, :ca], conv.bias, padding=conv.padding)
+    y = y.add_(F.conv2d(b, conv.weight[:, ca:], None, padding=conv.padding))
+    return rest(y)
+
+
 @register_model(
     "unet-cond-h", widths=[32, 64, 96], condition_channels=3, unshuffle=2,
     description="looks- and correlation-conditioned residual U-Net at half resolution (2x2 pixel unshuffle), "
@@ -186,8 +202,7 @@ class UNet(nn.Module):
             x = F.avg_pool2d(x, 2)
         x = self.bottleneck(x)
         for up, dec in zip(self.ups, self.decoders):
-            x = up(x)
-            x = dec(torch.cat([x, skips.pop()], dim=1))
+            x = _joined_conv(dec, up(x), skips.pop())
         noise = self.head(x)
         if self.unshuffle > 1:
             noise = F.pixel_shuffle(noise, self.unshuffle)

@@ -73,6 +73,22 @@ CONDITION_CHANNELS = 3
 UNKNOWN_CORRELATION = -1.0
 
 
+def _ring_counts(shape, dtype, device):
+    """Pixels of the point test's ring around each pixel of an all-valid ``shape`` tile, zero padding outside it.
+
+    Separable: a k x k box holds ``rows(k) * cols(k)`` pixels, the numbers of rows and
+    columns of the box inside the tile.
+    """
+    def inside(n, k):
+        i = torch.arange(n, device=device, dtype=dtype)
+        return torch.minimum(i + k // 2, torch.full_like(i, n - 1)) - torch.clamp(i - k // 2, min=0) + 1
+
+    h, w = shape
+    outer = inside(h, POINT_OUTER)[:, None] * inside(w, POINT_OUTER)[None, :]
+    inner = inside(h, POINT_INNER)[:, None] * inside(w, POINT_INNER)[None, :]
+    return outer - inner
+
+
 def _check_bias_table(table):
     if table is None:
         return None
@@ -260,7 +276,12 @@ class Despeckler(nn.Module):
             return F.avg_pool2d(a, (1, k), stride=1, padding=(0, k // 2), count_include_pad=True) * (k * k)
 
         ring_sum = box_sum(x, POINT_OUTER) - box_sum(x, POINT_INNER)
-        ring_count = box_sum(w, POINT_OUTER) - box_sum(w, POINT_INNER)
+        if bool(valid.all()):
+            # no nodata in the tile: the ring count is its full size except near the tile's
+            # edges, where the zero padding drops part of the ring (counted exactly there)
+            ring_count = _ring_counts(x.shape[-2:], x.dtype, x.device)
+        else:
+            ring_count = box_sum(w, POINT_OUTER) - box_sum(w, POINT_INNER)
         enough = ring_count >= 0.5 * (POINT_OUTER**2 - POINT_INNER**2) - 0.5
         background = ring_sum / ring_count.clamp(min=1.0)
         point = valid & enough & (background > 0) & (x > t * background)
