@@ -81,7 +81,7 @@ def _ring_counts(shape, dtype, device):
     """
     def inside(n, k):
         i = torch.arange(n, device=device, dtype=dtype)
-        return torch.minimum(i + k // 2, torch.full_like(i, n - 1)) - torch.clamp(i - k // 2, min=0) + 1
+        return (i + k // 2).clamp(max=n - 1) - (i - k // 2).clamp(min=0) + 1
 
     h, w = shape
     outer = inside(h, POINT_OUTER)[:, None] * inside(w, POINT_OUTER)[None, :]
@@ -268,7 +268,6 @@ class Despeckler(nn.Module):
         if t is None:
             return estimate
         x = torch.where(valid, intensity, torch.zeros_like(intensity)).to(torch.float64)
-        w = valid.to(torch.float64)
 
         def box_sum(a, k):
             # Zero-padded k x k sums as two 1-D passes (k + k additions a pixel instead of k^2).
@@ -281,6 +280,7 @@ class Despeckler(nn.Module):
             # edges, where the zero padding drops part of the ring (counted exactly there)
             ring_count = _ring_counts(x.shape[-2:], x.dtype, x.device)
         else:
+            w = valid.to(torch.float64)
             ring_count = box_sum(w, POINT_OUTER) - box_sum(w, POINT_INNER)
         enough = ring_count >= 0.5 * (POINT_OUTER**2 - POINT_INNER**2) - 0.5
         background = ring_sum / ring_count.clamp(min=1.0)
