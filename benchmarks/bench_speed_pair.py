@@ -5,10 +5,14 @@ absolute MP/s mean little; this script times ``despeck.inference.despeckle_array
 default user path, looks and correlation estimated for looks-aware models) for both
 models on the same simulated 2048 x 2048 1-look scene, alternating A, B, A, B, ... and
 keeping each model's best run, and reports the ratio B / A with the CPU model and flags.
+``--precision`` is apply's: ``auto`` (default) runs each model as ``despeck apply`` would
+on this machine (bfloat16 for models calibrated in it on CPUs with native bf16), ``32``
+or ``bf16`` force one arithmetic for both; the precision each model ran in is printed.
 
 Usage::
 
     python benchmarks/bench_speed_pair.py A.safetensors B.safetensors [--rounds 3] [--threads 2] [--size 2048]
+        [--precision auto|32|bf16]
 
 Writes ``bench_output/bench_speed_pair.json``.
 """
@@ -29,7 +33,7 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 
 from bench_starter import cpu_info  # noqa: E402
 
-from despeck.inference import despeckle_array  # noqa: E402
+from despeck.inference import despeckle_array, resolve_bf16  # noqa: E402
 from despeck.models import load_model_file  # noqa: E402
 from despeck.scene_families import make_family_scene  # noqa: E402
 from despeck.speckle import simulate_intensity  # noqa: E402
@@ -42,7 +46,9 @@ def main(argv=None) -> int:
     p.add_argument("--rounds", type=int, default=3)
     p.add_argument("--threads", type=int, default=2)
     p.add_argument("--size", type=int, default=2048)
+    p.add_argument("--precision", choices=("auto", "32", "bf16"), default="auto")
     args = p.parse_args(argv)
+    bf16 = {"auto": None, "32": False, "bf16": True}[args.precision]
     models = {"A": load_model_file(args.a), "B": load_model_file(args.b)}
     clean = make_family_scene("fields", (args.size, args.size), rng=4242, split="test")
     noisy = simulate_intensity(clean, 1.0, rng=np.random.default_rng(4243))
@@ -53,15 +59,18 @@ def main(argv=None) -> int:
         for _ in range(args.rounds):
             for key in ("A", "B"):
                 start = time.perf_counter()
-                despeckle_array(noisy, models[key], threads=args.threads, progress=False)
+                despeckle_array(noisy, models[key], threads=args.threads, progress=False, bf16=bf16)
                 t = time.perf_counter() - start
                 runs[key].append(t)
                 best[key] = min(best[key], t)
     mp = noisy.size / 1e6
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ran = {k: "bf16" if resolve_bf16(m, bf16) else "32" for k, m in models.items()}
     result = {
         "cpu": cpu_info(), "size": args.size, "threads": args.threads, "rounds": args.rounds,
-        "A": {"file": args.a, "seconds": runs["A"], "mp_per_s": mp / best["A"]},
-        "B": {"file": args.b, "seconds": runs["B"], "mp_per_s": mp / best["B"]},
+        "A": {"file": args.a, "seconds": runs["A"], "mp_per_s": mp / best["A"], "precision": ran["A"]},
+        "B": {"file": args.b, "seconds": runs["B"], "mp_per_s": mp / best["B"], "precision": ran["B"]},
         "ratio_b_over_a": best["A"] / best["B"],
     }
     out = ROOT / "bench_output" / "bench_speed_pair.json"
@@ -69,8 +78,8 @@ def main(argv=None) -> int:
     out.write_text(json.dumps(result, indent=2))
     c = result["cpu"]
     print(f"CPU {c.get('model')} flags {', '.join(k for k, v in c.get('flags', {}).items() if v)}; load {c.get('load_average')}")
-    print(f"A {args.a}: {result['A']['mp_per_s']:.2f} MP/s (best of {args.rounds})")
-    print(f"B {args.b}: {result['B']['mp_per_s']:.2f} MP/s (best of {args.rounds})")
+    for key, path in (("A", args.a), ("B", args.b)):
+        print(f"{key} {path}: {result[key]['mp_per_s']:.2f} MP/s (best of {args.rounds}; precision {ran[key]})")
     print(f"speed B / A: {result['ratio_b_over_a']:.3f}")
     return 0
 

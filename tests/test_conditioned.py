@@ -224,3 +224,48 @@ def test_looks_jitter_spreads_the_told_looks_only():
     a = [told_condition(draw, 0.04, np.random.default_rng(9)) for _ in range(3)]
     b = [told_condition(draw, 0.04, np.random.default_rng(9), looks_jitter=None) for _ in range(3)]
     assert a == b and len({t[0] for t in a}) == 1 and a[0][0] != 4.4
+
+
+def test_bf16_bias_table_is_used_under_bf16_autocast_and_kept_in_files(tmp_path, model):
+    # The wrapper takes its bias from the bfloat16 table exactly when it runs under CPU
+    # bfloat16 autocast: with tables 0 and 0.1 nepers the outputs of one arithmetic
+    # differ by exp(0.1) (the bias is added to the log estimate).
+    flat = {"looks": [1.0, 16.0], "corr": [0.0], "values": [[0.0], [0.0]]}
+    model.log_bias_table = flat
+    x = torch.rand(1, 1, 24, 24) + 0.1
+    with torch.no_grad(), torch.autocast("cpu", dtype=torch.bfloat16):
+        plain = model(x, looks=2.0, correlation=(0.0, 0.0))
+        model.log_bias_table_bf16 = {**flat, "values": [[0.1], [0.1]]}
+        shifted = model(x, looks=2.0, correlation=(0.0, 0.0))
+    torch.testing.assert_close(shifted / plain, torch.full_like(plain, math.exp(0.1)), rtol=1e-5, atol=0)
+    with torch.no_grad():
+        assert torch.equal(model(x, looks=2.0), model(x, looks=2.0))  # float32 ignores it
+    assert model.bias_for(2.0, (0, 0)) == 0.0 and model.bias_for(2.0, (0, 0), bf16=True) == pytest.approx(0.1)
+    back = load_model_file(save_model_file(tmp_path / "m.safetensors", model))
+    assert back.bf16_calibrated and back.log_bias_table_bf16 == model.log_bias_table_bf16
+    with pytest.raises(InputError, match="log_bias_table_bf16 needs a log_bias_table"):
+        Despeckler(create_model("unet-cond-xs"), looks=[1, 16], log_bias_table_bf16=flat)
+    with pytest.raises(InputError, match="log_bias_table_bf16 values must be finite"):
+        Despeckler(create_model("unet-cond-xs"), looks=[1, 16], log_bias_table=flat,
+                   log_bias_table_bf16={**flat, "values": [[float("nan")], [0.0]]})
+
+
+def test_bf16_table_for_keeps_the_float32_table_and_adds_the_arithmetic_shift(model):
+    # Same patches in both arithmetics (one seed): the added table is the stored one plus
+    # the measured bfloat16-minus-float32 difference, cell by cell; the float32 table is
+    # left as it is.
+    from despeck.training.calibration import bf16_table_for
+
+    kw = dict(looks_range=(1, 16), corr_grid=(0.0, 0.5), side=64, patches=2, seed=3)
+    stored = calibrate_log_bias_table(model, **{**kw, "seed": 11})
+    model.log_bias_table = stored
+    table = bf16_table_for(model, seed=3, side=64, patches=2)
+    f32 = calibrate_log_bias_table(model, **kw)
+    b16 = calibrate_log_bias_table(model, **kw, bf16=True)
+    assert model.log_bias_table is stored and table["corr"] == stored["corr"] == [0.0, 0.5]
+    expected = np.array(stored["values"]) + np.array(b16["values"]) - np.array(f32["values"])
+    np.testing.assert_allclose(table["values"], expected, rtol=0, atol=1e-12)
+    assert not np.allclose(b16["values"], f32["values"], rtol=0, atol=1e-6)  # the arithmetic does move it
+    model.log_bias_table = None
+    with pytest.raises(InputError, match="no log_bias_table"):
+        bf16_table_for(model)

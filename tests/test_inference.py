@@ -241,10 +241,49 @@ def test_bf16_stays_close_to_float32(rng):
     model = _conv_model(2)
     x = _scene(rng, (160, 160))
     base = despeckle_array(x, model, tile=48, overlap=16, threads=1, progress=False)
-    half = despeckle_array(x, model, tile=48, overlap=16, bf16=True, threads=1, progress=False)
+    with pytest.warns(InferenceWarning, match="without a bias calibration in bfloat16"):
+        half = despeckle_array(x, model, tile=48, overlap=16, bf16=True, threads=1, progress=False)
     rel = np.abs(np.log(half) - np.log(base))
     # bfloat16 keeps 8 significant bits: relative rounding steps of 2^-8 ~ 0.4 % (common practice)
     assert 0 < rel.mean() < 0.02
+
+
+def test_precision_is_automatic_only_for_models_calibrated_in_bf16(monkeypatch):
+    # bfloat16 by default needs both native instructions (emulated bf16 is slower than
+    # float32) and a bias table measured in bfloat16 (else the mean could move).
+    from despeck.inference import resolve_bf16
+
+    plain = _conv_model()
+    calibrated = Despeckler(create_model("unet-cond-xs"), looks=[1, 16],
+                            log_bias_table={"looks": [1.0], "corr": [0.0], "values": [[0.0]]},
+                            log_bias_table_bf16={"looks": [1.0], "corr": [0.0], "values": [[0.01]]})
+    monkeypatch.setattr("despeck.inference.runner.bf16_supported", lambda: True)
+    assert resolve_bf16(calibrated, None) and not resolve_bf16(plain, None) and not resolve_bf16(calibrated, False)
+    with pytest.warns(InferenceWarning, match="without a bias calibration in bfloat16"):
+        assert resolve_bf16(plain, True)
+    monkeypatch.setattr("despeck.inference.runner.bf16_supported", lambda: False)
+    assert not resolve_bf16(calibrated, None)
+    with pytest.warns(InferenceWarning, match="no native bfloat16"):
+        assert not resolve_bf16(calibrated, True)
+
+
+def test_cli_precision_is_recorded_in_the_output(rng, tmp_path, monkeypatch, capsys):
+    src = _write_tif(tmp_path / "s.tif", _scene(rng, (40, 40)), tags={"LOOKS": "1"})
+    model = _model_file(tmp_path / "m.safetensors")
+    monkeypatch.setattr("despeck.inference.runner.bf16_supported", lambda: False)
+    for option, recorded in ((["--precision", "32"], "precision=32"), ([], "precision=32")):
+        out = tmp_path / f"out{len(option)}.tif"
+        assert main(["apply", str(src), "--model", str(model), "--out", str(out), "--quiet", *option]) == 0
+        with rasterio.open(out) as ds:
+            assert recorded in ds.tags()["despeck_options"]
+    monkeypatch.setattr("despeck.inference.runner.bf16_supported", lambda: True)
+    out = tmp_path / "out_bf16.tif"
+    capsys.readouterr()
+    assert main(["apply", str(src), "--model", str(model), "--out", str(out), "--quiet", "--bf16"]) == 0
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "without a bias calibration in bfloat16" in err[0]
+    with rasterio.open(out) as ds:
+        assert "precision=bf16" in ds.tags()["despeck_options"]
 
 
 def test_progress_bar_shows_rate_and_can_be_silenced(rng, capsys):

@@ -113,6 +113,8 @@ def test_pair_trained_model_keeps_mean_backscatter(pair_model, condition):
     model, dates = pair_model
     # The bias is looked up per condition (a table), with a column at each date's condition.
     assert model.log_bias_table is not None and not model.conditioned
+    # and the same grid measured in bfloat16, for inference in that arithmetic
+    assert model.bf16_calibrated and model.log_bias_table_bf16["corr"] == model.log_bias_table["corr"]
     sites = model.metadata["training"]["calibration"]["site_conditions"]
     assert [s["image"] for s in sites] == dates
     _check(model, condition, seed=7)

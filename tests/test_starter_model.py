@@ -192,3 +192,42 @@ def test_the_faster_bundled_model_is_the_previous_starter_and_keeps_mean_backsca
     assert main(["apply", str(src), "--model", "starter-fast", "--out", str(tmp_path / "out.tif"), "--quiet"]) == 0
     with rasterio.open(tmp_path / "out.tif") as ds:
         assert ds.tags()["despeck_method"] == "starter_fast.safetensors" and np.isfinite(ds.read(1)).all()
+
+
+@pytest.mark.parametrize("looks, correlated", [(1.0, False), (4.4, True)])
+def test_starter_in_bf16_keeps_mean_backscatter(starter, looks, correlated):
+    # bfloat16 keeps 8 significant bits (common practice), and rounding every activation
+    # moves the network's mean output by a steady amount: the starter carries a bias
+    # table measured in bfloat16 for it. Under bfloat16 autocast (emulated where the CPU
+    # has no native instructions: same rounding, slower) the mean of a constant area must
+    # stay within the project's 0.1 dB of the truth (speckle has unit mean; Oliver & Quegan
+    # 1998, ch. 4) and within 0.006 dB of the float32 result on the same speckle (a paired
+    # check); with the float32 table instead it moves by more than 0.003 dB, so the
+    # bfloat16 table is what keeps it.
+    from despeck.speckle import simulate_correlated_intensity
+
+    assert starter.bf16_calibrated
+    truth = 10 ** (-1.3)
+    clean = np.full((320, 320), truth, np.float32)
+    rng = np.random.default_rng(17)
+    noisy = (simulate_correlated_intensity(clean, looks, rng=rng, oversampling=1.25, taper="hamming") if correlated
+             else simulate_intensity(clean, looks, rng=rng))
+    x = torch.from_numpy(noisy)[None, None]
+    offset = float(starter.scene_log_offset(x))
+    corr = (0.0, 0.0) if not correlated else (0.3, 0.3)
+    core = (0, 0, slice(48, -48), slice(48, -48))
+
+    def mean_db(bf16, table=True):
+        saved = starter.log_bias_table_bf16
+        starter.log_bias_table_bf16 = saved if table else None
+        try:
+            with torch.inference_mode(), torch.autocast("cpu", dtype=torch.bfloat16, enabled=bf16):
+                out = starter(x, log_offset=offset, looks=looks, correlation=corr)
+        finally:
+            starter.log_bias_table_bf16 = saved
+        return 10 * math.log10(out[core].double().mean().item() / truth)
+
+    f32, b16, b16_f32_table = mean_db(False), mean_db(True), mean_db(True, table=False)
+    assert abs(b16) < 0.1
+    assert abs(b16 - f32) < 0.006
+    assert abs(b16_f32_table - f32) > 0.003

@@ -16,6 +16,7 @@ job array's task K its part of the sorted inputs. The work itself is
 
 from __future__ import annotations
 
+import argparse
 import glob
 import logging
 import os
@@ -35,6 +36,8 @@ log = logging.getLogger(__name__)
 _RASTER_SUFFIXES = {".tif", ".tiff"}
 
 DEFAULT_SUFFIX = "_despeckled"
+# --precision to despeck.inference's bf16 argument (None: automatic, resolve_bf16)
+_BF16 = {"auto": None, "32": False, "bf16": True}
 
 
 def add_arguments(parser):
@@ -62,8 +65,14 @@ def add_arguments(parser):
                         help="pixels shared by neighbouring tiles (default: the receptive field minus one plus "
                              "a blend zone; less than the receptive field minus one works but warns)")
     parser.add_argument("--threads", type=int, metavar="N", help="CPU threads (default: all cores)")
-    parser.add_argument("--bf16", action="store_true",
-                        help="run the network in bfloat16 where the CPU supports it (faster, slightly less exact)")
+    parser.add_argument("--precision", choices=("auto", "32", "bf16"), default="auto",
+                        help="number format of the network, as in training's trainer.precision: bf16 runs the "
+                             "network about 2.5x faster than 32 (float32) on CPUs with native bfloat16 "
+                             "instructions (avx512_bf16, amx_bf16); for the bundled starter it changed PSNR by "
+                             "0.014 dB at most, the mean by 0.003 dB at most and single pixels by up to 0.6 dB. "
+                             "auto (default): bf16 where the CPU has them and the model carries a bfloat16 bias "
+                             "calibration, else 32. The output's despeck_options tag records which ran")
+    parser.add_argument("--bf16", dest="precision", action="store_const", const="bf16", help=argparse.SUPPRESS)
     parser.add_argument("--overwrite", action="store_true",
                         help="replace existing outputs (inputs are never overwritten)")
     parser.add_argument("--busy", choices=("skip", "fail"), default="skip",
@@ -313,7 +322,7 @@ def _run_dask(args, inputs, outputs) -> dict:
 
     model_path = model_file(args.model)
     apply_many(inputs, outputs, model_path, args.dask, threads=args.threads or 1, overwrite=args.overwrite,
-               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=args.bf16,
+               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=_BF16[args.precision],
                looks=getattr(args, "looks", None), cog=getattr(args, "cog", False), on_result=show)
     return counts
 
@@ -349,7 +358,7 @@ def _run_all(args, inputs, outputs, model) -> dict:
         try:
             despeckle_file(
                 src, dst, model, units=args.units, out_units=args.out_units, overwrite=args.overwrite,
-                tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=args.bf16,
+                tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=_BF16[args.precision],
                 progress=not args.quiet, looks=getattr(args, "looks", None), cog=getattr(args, "cog", False),
             )
         except OutputBusyError as exc:

@@ -152,7 +152,7 @@ def _nodata_of(da):
 
 
 def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAULT_CHUNK, tile=None, overlap=None,
-                        threads=1, bf16=False, channels_last=None):
+                        threads=1, bf16=None, channels_last=None):
     """Despeckle a (lazily read) scene held in an ``xarray.DataArray``, chunk by chunk with Dask.
 
     Parameters
@@ -177,7 +177,9 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
         around each chunk is the tiler's overlap for ``model``.
     tile, overlap, threads, bf16, channels_last
         As for :func:`despeck.inference.despeckle_array`, within each chunk;
-        ``threads`` is the torch threads of one chunk task (default 1). With
+        ``threads`` is the torch threads of one chunk task (default 1). ``bf16`` None
+        is resolved once, here, on this machine, and every chunk runs alike (a worker
+        without native bf16 warns and runs in float32). With
         ``channels_last`` None, chunks of 4 MP and more (the default 2048 plus halo)
         time both memory formats as the streamed path does; smaller chunks stay
         contiguous, which is slower for most networks: pass True then.
@@ -196,7 +198,7 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
         Not a DataArray of 2 or 3 dimensions, unknown units, bad tile options, no
         valid pixel.
     """
-    from ..inference import InferenceWarning, array_sample, condition_for_model, resolve_tiling
+    from ..inference import InferenceWarning, array_sample, condition_for_model, resolve_bf16, resolve_tiling
     from ..looks import describe_speckle, speckle_tags
     from ..models import Despeckler, load_model_file
     from ..provenance import model_provenance, provenance_tags, tiling_text, without_provenance
@@ -212,6 +214,7 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
         raise InputError(f"chunk must be a whole number of pixels >= 1, got {chunk!r}")
     height, width = int(da.shape[-2]), int(da.shape[-1])
     grid = resolve_tiling((height, width), model, tile=tile, overlap=overlap)
+    bf16 = resolve_bf16(model, bf16)
     multiple = int(getattr(model, "size_multiple", 1) or 1)
     halo = -(-int(grid.overlap) // multiple) * multiple
     chunk = max(-(-int(chunk) // multiple) * multiple, halo)
@@ -260,7 +263,8 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
     attrs = {k: v for k, v in without_provenance(da.attrs).items() if str(k).strip().lower() not in SPECKLE_TAGS}
     attrs.update(input_tags)
     attrs.update(provenance_tags(method, model_sha256=sha, tiling=f"dask chunks {chunk}x{chunk}, halo {halo}; "
-                                                                  + tiling_text(grid)))
+                                                                  + tiling_text(grid),
+                                 options={"precision": "bf16" if bf16 else "32"}))
     result = xr.DataArray(out, coords=da.coords, dims=da.dims, name=da.name, attrs=attrs)
     for key in ("_FillValue", "grid_mapping"):
         if key in da.encoding:

@@ -28,7 +28,7 @@ READ_ROWS = 64
 
 
 def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, batch_size=None, threads=None,
-                    bf16=False, log_offset=None, channels_last=None, progress=True, looks=None,
+                    bf16=None, log_offset=None, channels_last=None, progress=True, looks=None,
                     correlation=None, condition=None) -> np.ndarray:
     """Despeckle a 2-D linear intensity array with a model, tile by tile.
 
@@ -51,9 +51,12 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         Tiles per forward call; default about one megapixel per call.
     threads : int, optional
         Torch threads; default all cores available to this process.
-    bf16 : bool
-        Run the network under bfloat16 autocast (only on CPUs with native bf16; warns
-        and uses float32 otherwise).
+    bf16 : bool, optional
+        Run the network under bfloat16 autocast. Default (None): exactly when the CPU
+        has native bf16 instructions and the model carries a bias table measured in
+        bfloat16, so the mean backscatter stays as in float32
+        (:func:`despeck.inference.runner.resolve_bf16`); False forces float32, True
+        bfloat16 (warns and uses float32 on CPUs without native bf16).
     log_offset : float, optional
         Scene normalisation constant; default ``model.scene_log_offset`` of a decimated
         sample (at most one million) of the valid pixels.
@@ -174,7 +177,7 @@ def check_finite(estimate, source, r0, name, band=None):
 
 
 def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, overwrite=False, tile=None,
-                   overlap=None, batch_size=None, threads=None, bf16=False, channels_last=None,
+                   overlap=None, batch_size=None, threads=None, bf16=None, channels_last=None,
                    progress=True, looks=None, cog=False) -> pathlib.Path:
     """Despeckle a raster file band by band and write a GeoTIFF.
 
@@ -250,9 +253,10 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                 warnings.simplefilter("ignore", InferenceWarning)  # already shown above
                 # a row of tiles advances by one row of the output's blocks when the tile allows
                 grid = resolve_tiling(shape, model, tile=tile, overlap=overlap, row_stride=stream.block_rows)
-            method, model_sha = model_provenance(model)
-            stream.update_tags(**provenance_tags(method, model_sha256=model_sha, tiling=tiling_text(grid)))
             threads, use_bf16, batch_size = run_settings(model, threads, bf16, batch_size, grid)
+            method, model_sha = model_provenance(model)
+            stream.update_tags(**provenance_tags(method, model_sha256=model_sha, tiling=tiling_text(grid),
+                                                 options={"precision": "bf16" if use_bf16 else "32"}))
             strip_rows = stream.strip_rows(READ_ROWS)
             with torch_settings(threads):
                 for band in stream.bands:

@@ -2,8 +2,9 @@
 
 Speed settings: torch threads (default all cores available to the process),
 ``torch.inference_mode``, denormals flushed to zero, channels-last memory format only
-when a timing on a crop of the first tile shows it is faster, and optional bfloat16
-autocast on CPUs with native bf16 instructions (:func:`despeck.cpu.bf16_supported`).
+when a timing on a crop of the first tile shows it is faster, and bfloat16 autocast on
+CPUs with native bf16 instructions (:func:`despeck.cpu.bf16_supported`) for models
+calibrated in bfloat16 (:func:`resolve_bf16`).
 """
 
 from __future__ import annotations
@@ -18,7 +19,8 @@ import torch
 from ..cpu import bf16_supported, usable_cores
 from .tiles import InferenceWarning, positive_int
 
-__all__ = ["BATCH_PIXELS", "TRIAL_MIN_PIXELS", "TRIAL_SIDE", "torch_settings", "TileRunner", "run_settings"]
+__all__ = ["BATCH_PIXELS", "TRIAL_MIN_PIXELS", "TRIAL_SIDE", "torch_settings", "TileRunner", "resolve_bf16",
+           "run_settings"]
 
 # Pixels per batch the default batch size aims for: enough work per call to keep both
 # cores busy, small enough that a 64-channel network's activations stay a few hundred MB
@@ -109,19 +111,39 @@ class TileRunner:
         return y.to(torch.float32).squeeze(1).contiguous().numpy()
 
 
+def resolve_bf16(model, bf16=None, *, stacklevel=3) -> bool:
+    """Whether the network runs under bfloat16 autocast: ``bf16`` True, False or None (automatic).
+
+    Automatic (None) means bfloat16 exactly when both hold: this CPU has native bf16
+    instructions (:func:`despeck.cpu.bf16_supported`; emulated bf16 is slower than
+    float32) and the model carries a bias table measured in bfloat16
+    (``Despeckler.bf16_calibrated``), so the arithmetic cannot move the mean
+    backscatter. True asks for bfloat16: on a CPU without native instructions it warns
+    and runs in float32; on a model without a bfloat16 table it warns that the mean may
+    shift by a few hundredths of a dB and runs in bfloat16. False is float32.
+    """
+    if bf16 is None:
+        return bool(bf16_supported() and getattr(model, "bf16_calibrated", False))
+    if not bf16:
+        return False
+    if not bf16_supported():
+        warnings.warn("bf16 requested but this CPU has no native bfloat16 instructions; running in float32",
+                      InferenceWarning, stacklevel=stacklevel)
+        return False
+    if not getattr(model, "bf16_calibrated", False):
+        warnings.warn("bf16 requested for a model without a bias calibration in bfloat16 (log_bias_table_bf16): "
+                      "its mean backscatter may be off by a few hundredths of a dB",
+                      InferenceWarning, stacklevel=stacklevel)
+    return True
+
+
 def run_settings(model, threads, bf16, batch_size, grid):
     """``(threads, bf16, batch_size)`` checked, with their defaults (all usable cores, about half a megapixel a batch).
 
-    bfloat16 asked for on a CPU without native bf16 instructions warns and runs in float32.
+    ``bf16`` is resolved by :func:`resolve_bf16` (None: automatic).
     """
     threads = positive_int("threads", threads) or usable_cores()
-    use_bf16 = bool(bf16)
-    if use_bf16 and not bf16_supported():
-        warnings.warn(
-            "bf16 requested but this CPU has no native bfloat16 instructions; running in float32",
-            InferenceWarning, stacklevel=3,
-        )
-        use_bf16 = False
+    use_bf16 = resolve_bf16(model, bf16, stacklevel=4)
     if batch_size is None:
         tr, tc = grid.tile_shape
         batch_size = max(1, min(grid.cols.count, BATCH_PIXELS // (tr * tc)))

@@ -115,10 +115,12 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
     normalisation.update(extra.pop("normalisation", {}) or {})
     normalisation["log_scale"], normalisation["log_bias"] = despeckler.log_scale, despeckler.log_bias
     normalisation["point_false_alarm"] = despeckler.point_false_alarm
-    if despeckler.log_bias_table is not None:
-        normalisation["log_bias_table"] = despeckler.log_bias_table
-    else:
-        normalisation.pop("log_bias_table", None)
+    for key in ("log_bias_table", "log_bias_table_bf16"):
+        table = getattr(despeckler, key)
+        if table is not None:
+            normalisation[key] = table
+        else:
+            normalisation.pop(key, None)
     normalisation["correlation_unknown"] = bool(despeckler.correlation_unknown)
     header = {
         "format": FORMAT_NAME,
@@ -321,6 +323,7 @@ def load_model_file(path) -> Despeckler:
             log_scale=norm.get("log_scale"),
             point_false_alarm=norm.get("point_false_alarm"),
             log_bias_table=norm.get("log_bias_table"),
+            log_bias_table_bf16=norm.get("log_bias_table_bf16"),
             correlation_unknown=bool(norm.get("correlation_unknown", False)),
         )
     except DespeckError as exc:
