@@ -33,6 +33,7 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 
 from bench_starter import cpu_info  # noqa: E402
 
+from despeck.cpu import PRECISIONS  # noqa: E402
 from despeck.inference import despeckle_array, resolve_bf16  # noqa: E402
 from despeck.models import load_model_file  # noqa: E402
 from despeck.scene_families import make_family_scene  # noqa: E402
@@ -46,9 +47,9 @@ def main(argv=None) -> int:
     p.add_argument("--rounds", type=int, default=3)
     p.add_argument("--threads", type=int, default=2)
     p.add_argument("--size", type=int, default=2048)
-    p.add_argument("--precision", choices=("auto", "32", "bf16"), default="auto")
+    p.add_argument("--precision", choices=("auto", *PRECISIONS), default="auto")
     args = p.parse_args(argv)
-    bf16 = {"auto": None, "32": False, "bf16": True}[args.precision]
+    bf16 = None if args.precision == "auto" else args.precision == "bf16"
     models = {"A": load_model_file(args.a), "B": load_model_file(args.b)}
     clean = make_family_scene("fields", (args.size, args.size), rng=4242, split="test")
     noisy = simulate_intensity(clean, 1.0, rng=np.random.default_rng(4243))

@@ -17,10 +17,15 @@ import os
 import platform
 
 __all__ = ["usable_cores", "cpu_flags", "cpu_model", "bf16_supported", "cpu_description", "DESCRIBED_FLAGS",
-           "BF16_FLAGS"]
+           "BF16_FLAGS", "PRECISIONS"]
 
 #: Flags that say how fast small convolutions can run; :func:`cpu_description` reports each.
 DESCRIBED_FLAGS = ("avx2", "avx512f", "avx512_bf16", "amx_tile", "amx_bf16", "amx_int8")
+
+#: Number formats despeck runs networks in, named as Lightning names them: float32 and
+#: bfloat16. Training's ``trainer.precision`` takes one; ``despeck apply --precision``
+#: takes one or ``auto`` (:func:`despeck.inference.runner.resolve_bf16`).
+PRECISIONS = ("32", "bf16")
 
 #: Flags of native bfloat16 arithmetic: AVX512-BF16 or AMX-BF16 on x86, BF16 (Armv8.6) on Arm.
 BF16_FLAGS = frozenset({"avx512_bf16", "amx_bf16", "bf16"})

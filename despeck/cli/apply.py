@@ -26,6 +26,7 @@ import sys
 import time
 import warnings
 
+from ..cpu import PRECISIONS
 from ..errors import DespeckError, InputError, ModelFileError, OptionError
 from . import check_threads, one_line_warnings
 from .exit_codes import batch_status, option_values, raise_terminated
@@ -36,8 +37,11 @@ log = logging.getLogger(__name__)
 _RASTER_SUFFIXES = {".tif", ".tiff"}
 
 DEFAULT_SUFFIX = "_despeckled"
-# --precision to despeck.inference's bf16 argument (None: automatic, resolve_bf16)
-_BF16 = {"auto": None, "32": False, "bf16": True}
+
+
+def _bf16_argument(precision):
+    """``--precision`` as despeck.inference's ``bf16`` argument (None: automatic)."""
+    return None if precision == "auto" else precision == "bf16"
 
 
 def add_arguments(parser):
@@ -65,7 +69,7 @@ def add_arguments(parser):
                         help="pixels shared by neighbouring tiles (default: the receptive field minus one plus "
                              "a blend zone; less than the receptive field minus one works but warns)")
     parser.add_argument("--threads", type=int, metavar="N", help="CPU threads (default: all cores)")
-    parser.add_argument("--precision", choices=("auto", "32", "bf16"), default="auto",
+    parser.add_argument("--precision", choices=("auto", *PRECISIONS), default="auto",
                         help="number format of the network, as in training's trainer.precision: bf16 runs the "
                              "network about 2.5x faster than 32 (float32) on CPUs with native bfloat16 "
                              "instructions (avx512_bf16, amx_bf16); for the bundled starter it changed PSNR by "
@@ -322,7 +326,7 @@ def _run_dask(args, inputs, outputs) -> dict:
 
     model_path = model_file(args.model)
     apply_many(inputs, outputs, model_path, args.dask, threads=args.threads or 1, overwrite=args.overwrite,
-               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=_BF16[args.precision],
+               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=_bf16_argument(args.precision),
                looks=getattr(args, "looks", None), cog=getattr(args, "cog", False), on_result=show)
     return counts
 
@@ -358,7 +362,7 @@ def _run_all(args, inputs, outputs, model) -> dict:
         try:
             despeckle_file(
                 src, dst, model, units=args.units, out_units=args.out_units, overwrite=args.overwrite,
-                tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=_BF16[args.precision],
+                tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=_bf16_argument(args.precision),
                 progress=not args.quiet, looks=getattr(args, "looks", None), cog=getattr(args, "cog", False),
             )
         except OutputBusyError as exc:

@@ -22,6 +22,7 @@ from typing import Annotated, Any, Literal, Optional, Union
 from pydantic import (BaseModel, BeforeValidator, ConfigDict, Field, FiniteFloat, StrictBool, field_validator,
                       model_validator)
 
+from ..cpu import PRECISIONS
 from ..errors import ConfigError, InputError
 from ..speckle import check_looks
 
@@ -32,7 +33,6 @@ __all__ = ["DataConfig", "ModelConfig", "SpeckleConfig", "LossConfig", "OptimCon
 LOSSES = ("gamma_nll", "mse_log")
 TARGETS = ("clean", "noisy")
 SCHEDULES = ("plateau", "cosine", "constant")
-PRECISIONS = ("32", "bf16")
 TAPERS = ("hamming", "hann", "kaiser", "none")
 SPLIT_AXES = ("azimuth", "range")
 UNITS = ("intensity", "amplitude", "db", "complex")
