@@ -146,7 +146,8 @@ class Despeckler(nn.Module):
     log_bias_table_bf16 : dict, optional
         The same grid measured with the network under bfloat16 autocast. Rounding the
         activations to bfloat16 shifts a network's mean output by a small, steady amount
-        (+0.018 dB at one look, +0.006 dB at 16 for the bundled starter), so a model
+        of either sign (the bundled starter: +0.02 dB at one look, +0.005 dB at 16;
+        ``starter-fast``: -0.01 to 0 dB), so a model
         that runs in bfloat16 carries its own table; :meth:`forward` uses it whenever it
         runs under CPU bfloat16 autocast.
     correlation_unknown : bool
