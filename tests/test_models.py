@@ -177,6 +177,39 @@ def test_point_guard_counts_the_ring_inside_an_all_valid_tile_like_a_nodata_bord
     assert int((fast == 40.0).sum()) == 3
 
 
+
+def test_point_guard_matches_scipy_box_sums_with_nodata_holes():
+    # The guard's rule (the point-target step of the improved Lee sigma filter, Lee et al.
+    # 2009, IEEE TGRS 47(1)) with its ring mean computed independently from
+    # scipy.ndimage.uniform_filter box means (zero outside the image, as the guard's
+    # padding): a valid pixel is kept when its ring (15 x 15 less 5 x 5) holds at least
+    # half of its 200 pixels valid and it exceeds the threshold times their mean.
+    from scipy import ndimage
+
+    model = Despeckler(create_model("logcnn-xs"), looks=1, point_false_alarm=1e-2).eval()
+    rng = np.random.default_rng(11)
+    x = rng.gamma(1.0, 1.0, (60, 52))
+    x[rng.random(x.shape) < 0.003] = 60.0  # bright points
+    valid = np.ones(x.shape, bool)
+    valid[10:25, 30:45] = False  # a nodata hole
+    valid[:, :3] = False  # and a border
+    xs = np.where(valid, x, 0.0)
+
+    def box(a, k):
+        return ndimage.uniform_filter(a, k, mode="constant", cval=0.0) * k * k
+
+    ring_sum = box(xs, 15) - box(xs, 5)
+    ring_n = box(valid.astype(float), 15) - box(valid.astype(float), 5)
+    t = model.point_threshold_for(1.0)
+    expected = valid & (ring_n >= 99.5) & (ring_sum > 0) & (xs > t * ring_sum / np.maximum(ring_n, 1))
+    est = torch.zeros((1, 1) + x.shape)
+    with torch.no_grad():
+        got = model.keep_points(torch.from_numpy(x.astype(np.float32))[None, None],
+                                torch.from_numpy(valid)[None, None], est, 1.0)
+    kept = (got[0, 0] > 0).numpy()
+    assert expected.sum() >= 5
+    np.testing.assert_array_equal(kept, expected)
+
 # ----------------------------------------------------------------------------- wrapper
 
 class _LogBoxMean(torch.nn.Module):
