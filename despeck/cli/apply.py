@@ -49,7 +49,7 @@ def add_arguments(parser):
                         help="input rasters: files, folders (their .tif/.tiff files) or glob patterns")
     parser.add_argument("--model", metavar="FILE",
                         help="model file (.safetensors) or a bundled model's name: starter (the default) or "
-                             "starter-fast (an earlier, smaller starter: about 1.5x faster, 0.2-1 dB lower PSNR)")
+                             "starter-fast (an earlier, smaller starter: about 1.3-1.6x faster, 0.2-1 dB lower PSNR)")
     where = parser.add_mutually_exclusive_group()
     where.add_argument("--out", metavar="PATH", help="output file (one input only)")
     where.add_argument("--out-dir", metavar="DIR",

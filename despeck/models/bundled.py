@@ -11,8 +11,8 @@ __all__ = ["BUNDLED_MODELS", "bundled_model_path", "resolve_model_path"]
 _WEIGHTS = Path(__file__).resolve().parent.parent / "weights"
 
 #: Name -> file inside ``despeck/weights``. ``starter`` is the default of ``despeck apply``;
-#: ``starter-fast`` is an earlier, smaller starter (``unet-cond-s``), about 1.5x faster
-#: and 0.16-0.97 dB lower in PSNR (``despeck/weights/starter.md``).
+#: ``starter-fast`` is an earlier, smaller starter (``unet-cond-s``), about 1.3-1.6x faster
+#: and 0.2-1.05 dB lower in PSNR (``despeck/weights/starter.md``).
 BUNDLED_MODELS = {"starter": "starter.safetensors", "starter-fast": "starter_fast.safetensors"}
 
 
