@@ -150,6 +150,10 @@ def test_model_file_method(scene, tmp_path):
     result = bench.run_benchmark([s], ["lee", f"model:{path}"], tmp_path / "rep", progress=False)
     row = result["results"][-1]
     assert row["kind"] == "model" and row["method"] == "model tiny" and np.isfinite(row["psnr_db"])
+    # the precision the network ran in is recorded: float32, as this model has no bfloat16 table
+    info = [m for m in result["methods"] if m["kind"] == "model"]
+    assert info == [{"label": "model tiny", "kind": "model", "path": str(path), "precision": "32"}]
+    assert "network run in float32" in (tmp_path / "rep" / "report.md").read_text()
     with pytest.raises(InputError, match="not found"):
         bench.parse_method("model:nowhere.safetensors")
 

@@ -305,6 +305,14 @@ def _write_report(path, result):
                   f"![trade-off]({fig['tradeoff']})", "",
                   "Trade-off between smoothing (ENL, log scale) and edge preservation (mean of EPD-ROA H and V)"
                   + (", colour = PSNR in the dB domain." if s["reference"] else "."), ""]
+    models = [m for m in result.get("methods", []) if m.get("kind") == "model"]
+    if models:
+        lines += ["## Models", ""]
+        for m in models:
+            arithmetic = {"bf16": "bfloat16", "32": "float32"}.get(m.get("precision"), "an unrecorded precision")
+            lines.append(f"- **{m['label']}**: `{m['path']}`, network run in {arithmetic} (the automatic choice "
+                         "of `despeck apply` on this machine)")
+        lines.append("")
     lines += ["## Conventions", ""]
     for k, v in result["conventions"].items():
         lines.append(f"- **{k}**: {v}")

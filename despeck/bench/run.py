@@ -167,14 +167,18 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
             })
         bar.close()
         result = {"title": title, "scenes": scene_info, "results": rows, "conventions": conventions(),
-                  "methods": [_method_info(m) for m in methods], "cautions": CAUTIONS}
+                  "methods": [_method_info(m, models) for m in methods], "cautions": CAUTIONS}
         write_results(tmp, result)
     result["report"] = str(out_dir / "report.md")
     return result
 
 
-def _method_info(m: Method):
+def _method_info(m: Method, models):
     if m.kind == "model":
-        return {"label": m.label, "kind": "model", "path": str(m.path)}
+        from ..inference import resolve_bf16
+
+        # despeckle_array's automatic choice, as _run_method ran it
+        precision = "bf16" if resolve_bf16(models[m.path], None) else "32"
+        return {"label": m.label, "kind": "model", "path": str(m.path), "precision": precision}
     return {"label": m.label, "kind": "filter", "name": m.name, "window": m.window, "looks": m.looks,
             "options": m.options}
