@@ -252,8 +252,9 @@ def test_bf16_bias_table_is_used_under_bf16_autocast_and_kept_in_files(tmp_path,
 
 def test_bf16_table_for_keeps_the_float32_table_and_adds_the_arithmetic_shift(model):
     # Same patches in both arithmetics (one seed): the added table is the stored one plus
-    # the measured bfloat16-minus-float32 difference, cell by cell; the float32 table is
-    # left as it is.
+    # the measured bfloat16-minus-float32 difference, cell by cell, whether both are
+    # measured in one pass (bf16_table_for) or one call each; the float32 table is left as
+    # it is.
     from despeck.training.calibration import bf16_table_for
 
     kw = dict(looks_range=(1, 16), corr_grid=(0.0, 0.5), side=64, patches=2, seed=3)
@@ -269,3 +270,7 @@ def test_bf16_table_for_keeps_the_float32_table_and_adds_the_arithmetic_shift(mo
     model.log_bias_table = None
     with pytest.raises(InputError, match="no log_bias_table"):
         bf16_table_for(model)
+    from despeck.training.calibration import calibrate_log_bias_tables
+
+    with pytest.raises(InputError, match="precisions must be some of"):
+        calibrate_log_bias_tables(model, looks_range=(1, 16), precisions=("16",))
