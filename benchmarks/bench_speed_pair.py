@@ -33,7 +33,7 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 
 from bench_starter import cpu_info  # noqa: E402
 
-from despeck.cpu import PRECISIONS  # noqa: E402
+from despeck.cpu import PRECISIONS, bf16_argument, precision_of  # noqa: E402
 from despeck.inference import despeckle_array, resolve_bf16  # noqa: E402
 from despeck.models import load_model_file  # noqa: E402
 from despeck.scene_families import make_family_scene  # noqa: E402
@@ -49,7 +49,7 @@ def main(argv=None) -> int:
     p.add_argument("--size", type=int, default=2048)
     p.add_argument("--precision", choices=("auto", *PRECISIONS), default="auto")
     args = p.parse_args(argv)
-    bf16 = None if args.precision == "auto" else args.precision == "bf16"
+    bf16 = bf16_argument(args.precision)
     models = {"A": load_model_file(args.a), "B": load_model_file(args.b)}
     clean = make_family_scene("fields", (args.size, args.size), rng=4242, split="test")
     noisy = simulate_intensity(clean, 1.0, rng=np.random.default_rng(4243))
@@ -67,7 +67,7 @@ def main(argv=None) -> int:
     mp = noisy.size / 1e6
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        ran = {k: "bf16" if resolve_bf16(m, bf16) else "32" for k, m in models.items()}
+        ran = {k: precision_of(resolve_bf16(m, bf16)) for k, m in models.items()}
     result = {
         "cpu": cpu_info(), "size": args.size, "threads": args.threads, "rounds": args.rounds,
         "A": {"file": args.a, "seconds": runs["A"], "mp_per_s": mp / best["A"], "precision": ran["A"]},

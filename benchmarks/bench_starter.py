@@ -78,6 +78,7 @@ sys.path.insert(0, str(ROOT / "scripts"))
 from despeck import filters, metrics  # noqa: E402
 bm3d_log = importlib.import_module("despeck.filters.bm3d_log")  # the module, not the filter function of that name
 from despeck.cpu import cpu_description  # noqa: E402
+from despeck.cpu import PRECISION_NAMES, precision_of  # noqa: E402
 from despeck.inference import despeckle_array, resolve_bf16  # noqa: E402
 from despeck.models import load_model_file  # noqa: E402
 from despeck.speckle import psf_intensity_kernel, simulate_correlated_intensity, simulate_intensity  # noqa: E402
@@ -291,7 +292,7 @@ def markdown(result):
     flags = ", ".join(f"{k} {'yes' if v else 'no'}" for k, v in cpu["flags"].items())
     lines.append(f"CPU: {cpu['model']} ({cpu['machine']}, {cpu.get('cores_available')} cores available); {flags}; "
                  f"load average at the end {cpu.get('load_average')}; the model ran in "
-                 f"{ {'bf16': 'bfloat16', '32': 'float32'}.get(result.get('model_precision'), 'an unrecorded precision')} "
+                 f"{PRECISION_NAMES.get(result.get('model_precision'), 'an unrecorded precision')} "
                  "(apply's automatic choice on this machine)")
     failed = [k for k, cell in cells.items() if not all(cell["pass"].values())]
     lines.append(f"\nCells passing every target: {len(cells) - len(failed)} of {len(cells)}"
@@ -362,7 +363,7 @@ def main(argv=None) -> int:
         "model": str(args.model), "quick": bool(args.quick), "size": size, "per_family": per_family,
         "families": list(FAMILIES), "conditions": list(CONDITIONS), "system": SYSTEM, "methods": methods,
         "targets": TARGETS, "scene_sources": sources, "cells": cells, "speed": speed, "cpu": cpu_info(),
-        "model_precision": "bf16" if resolve_bf16(model, None) else "32",
+        "model_precision": precision_of(resolve_bf16(model, None)),
         "seconds_total": time.perf_counter() - t_all, "notes": notes,
         "conventions": (
             "PSNR/SSIM in the dB domain against the reference (clean; clean * |PSF|^2 for correlated speckle), "

@@ -17,7 +17,7 @@ import os
 import platform
 
 __all__ = ["usable_cores", "cpu_flags", "cpu_model", "bf16_supported", "cpu_description", "DESCRIBED_FLAGS",
-           "BF16_FLAGS", "PRECISIONS"]
+           "BF16_FLAGS", "PRECISIONS", "PRECISION_NAMES", "precision_of", "bf16_argument"]
 
 #: Flags that say how fast small convolutions can run; :func:`cpu_description` reports each.
 DESCRIBED_FLAGS = ("avx2", "avx512f", "avx512_bf16", "amx_tile", "amx_bf16", "amx_int8")
@@ -26,6 +26,18 @@ DESCRIBED_FLAGS = ("avx2", "avx512f", "avx512_bf16", "amx_tile", "amx_bf16", "am
 #: bfloat16. Training's ``trainer.precision`` takes one; ``despeck apply --precision``
 #: takes one or ``auto`` (:func:`despeck.inference.runner.resolve_bf16`).
 PRECISIONS = ("32", "bf16")
+#: The plain name of each precision, for reports.
+PRECISION_NAMES = {"32": "float32", "bf16": "bfloat16"}
+
+
+def precision_of(bf16: bool) -> str:
+    """The precision (``"32"`` or ``"bf16"``) a resolved bfloat16 flag stands for."""
+    return "bf16" if bf16 else "32"
+
+
+def bf16_argument(precision: str):
+    """A precision or ``"auto"`` as inference's ``bf16`` argument: None (automatic), False or True."""
+    return None if precision == "auto" else precision == "bf16"
 
 #: Flags of native bfloat16 arithmetic: AVX512-BF16 or AMX-BF16 on x86, BF16 (Armv8.6) on Arm.
 BF16_FLAGS = frozenset({"avx512_bf16", "amx_bf16", "bf16"})

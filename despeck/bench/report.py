@@ -23,6 +23,7 @@ import numpy as np
 
 from .. import metrics
 from ..atomic import publish
+from ..cpu import PRECISION_NAMES
 from ..errors import DespeckError, InputError
 from ..provenance import file_sha256
 
@@ -309,7 +310,7 @@ def _write_report(path, result):
     if models:
         lines += ["## Models", ""]
         for m in models:
-            arithmetic = {"bf16": "bfloat16", "32": "float32"}.get(m.get("precision"), "an unrecorded precision")
+            arithmetic = PRECISION_NAMES.get(m.get("precision"), "an unrecorded precision")
             lines.append(f"- **{m['label']}**: `{m['path']}`, network run in {arithmetic} (the automatic choice "
                          "of `despeck apply` on this machine)")
         lines.append("")

@@ -13,6 +13,7 @@ import time
 import numpy as np
 
 from .. import filters, metrics
+from ..cpu import precision_of
 from ..errors import DespeckError, InputError
 from .figures import crop_box, write_figures
 from .report import CAUTIONS, check_out_dir, conventions, staged_report, write_results
@@ -178,7 +179,7 @@ def _method_info(m: Method, models):
         from ..inference import resolve_bf16
 
         # despeckle_array's automatic choice, as _run_method ran it
-        precision = "bf16" if resolve_bf16(models[m.path], None) else "32"
+        precision = precision_of(resolve_bf16(models[m.path], None))
         return {"label": m.label, "kind": "model", "path": str(m.path), "precision": precision}
     return {"label": m.label, "kind": "filter", "name": m.name, "window": m.window, "looks": m.looks,
             "options": m.options}

@@ -26,7 +26,7 @@ import sys
 import time
 import warnings
 
-from ..cpu import PRECISIONS
+from ..cpu import PRECISIONS, bf16_argument
 from ..errors import DespeckError, InputError, ModelFileError, OptionError
 from . import check_threads, one_line_warnings
 from .exit_codes import batch_status, option_values, raise_terminated
@@ -37,11 +37,6 @@ log = logging.getLogger(__name__)
 _RASTER_SUFFIXES = {".tif", ".tiff"}
 
 DEFAULT_SUFFIX = "_despeckled"
-
-
-def _bf16_argument(precision):
-    """``--precision`` as despeck.inference's ``bf16`` argument (None: automatic)."""
-    return None if precision == "auto" else precision == "bf16"
 
 
 def add_arguments(parser):
@@ -326,7 +321,7 @@ def _run_dask(args, inputs, outputs) -> dict:
 
     model_path = model_file(args.model)
     apply_many(inputs, outputs, model_path, args.dask, threads=args.threads or 1, overwrite=args.overwrite,
-               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=_bf16_argument(args.precision),
+               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=bf16_argument(args.precision),
                looks=getattr(args, "looks", None), cog=getattr(args, "cog", False), on_result=show)
     return counts
 
@@ -362,7 +357,7 @@ def _run_all(args, inputs, outputs, model) -> dict:
         try:
             despeckle_file(
                 src, dst, model, units=args.units, out_units=args.out_units, overwrite=args.overwrite,
-                tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=_bf16_argument(args.precision),
+                tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=bf16_argument(args.precision),
                 progress=not args.quiet, looks=getattr(args, "looks", None), cog=getattr(args, "cog", False),
             )
         except OutputBusyError as exc:

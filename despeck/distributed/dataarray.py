@@ -35,6 +35,7 @@ import numpy as np
 import rioxarray  # noqa: F401 - registers the .rio accessor (CRS, transform, nodata)
 import xarray as xr
 
+from ..cpu import precision_of
 from ..errors import DespeckError, InputError
 
 __all__ = ["despeckle_dataarray", "write_dataarray", "DEFAULT_CHUNK"]
@@ -264,7 +265,7 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
     attrs.update(input_tags)
     attrs.update(provenance_tags(method, model_sha256=sha, tiling=f"dask chunks {chunk}x{chunk}, halo {halo}; "
                                                                   + tiling_text(grid),
-                                 options={"precision": "bf16" if bf16 else "32"}))
+                                 options={"precision": precision_of(bf16)}))
     result = xr.DataArray(out, coords=da.coords, dims=da.dims, name=da.name, attrs=attrs)
     for key in ("_FillValue", "grid_mapping"):
         if key in da.encoding:

@@ -13,7 +13,7 @@ import warnings
 
 import numpy as np
 
-from ..cpu import usable_cores
+from ..cpu import precision_of, usable_cores
 from ..errors import InputError
 from .blend import TileBlender, stream_tiles
 from .condition import condition_for_model, model_mismatch_notes
@@ -256,7 +256,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
             threads, use_bf16, batch_size = run_settings(model, threads, bf16, batch_size, grid)
             method, model_sha = model_provenance(model)
             stream.update_tags(**provenance_tags(method, model_sha256=model_sha, tiling=tiling_text(grid),
-                                                 options={"precision": "bf16" if use_bf16 else "32"}))
+                                                 options={"precision": precision_of(use_bf16)}))
             strip_rows = stream.strip_rows(READ_ROWS)
             with torch_settings(threads):
                 for band in stream.bands:

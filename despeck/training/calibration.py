@@ -80,7 +80,7 @@ import numpy as np
 import torch
 from scipy import optimize
 
-from ..cpu import PRECISIONS
+from ..cpu import PRECISIONS, precision_of
 from ..errors import InputError
 from ..models.wrapper import UNKNOWN_CORRELATION
 from ..speckle import gamma_speckle, intensity_correlation_theory, log_intensity_mean, simulate_correlated_intensity
@@ -226,7 +226,7 @@ def calibrate_log_bias_table(despeckler, *, looks_range, corr_grid=DEFAULT_CORR_
     dict
         ``{"looks": [...], "corr": [...], "values": [[...]]}`` (nepers).
     """
-    precision = "bf16" if bf16 else "32"
+    precision = precision_of(bf16)
     return calibrate_log_bias_tables(despeckler, looks_range=looks_range, corr_grid=corr_grid, side=side,
                                      patches=patches, seed=seed, sites=sites, precisions=(precision,))[precision]
 
