@@ -142,6 +142,38 @@ def test_signal_before_first_checkpoint(tmp_path):
                            f"nothing was kept in {out}; run the same command with --resume to start it afresh")
 
 
+
+def test_signal_whose_clean_up_fails_still_stops_as_the_signal(tmp_path):
+    # A signal that lands while a library sets up (Lightning's data fetcher) can make its
+    # tear-down fail with an error of its own, as seen once in CI: the run must still end
+    # as interrupted by that signal (exit 143 for SIGTERM; POSIX shell convention), not as
+    # that error. An error with no signal behind it is passed on unchanged.
+    from types import SimpleNamespace
+
+    from despeck.training.interrupts import stop_on_signals
+    from despeck.training.outcome import TrainingInterrupted
+
+    config = SimpleNamespace(output=SimpleNamespace(dir=str(tmp_path / "run")))
+
+    @stop_on_signals
+    def interrupted_set_up(config):
+        try:
+            os.kill(os.getpid(), signal.SIGTERM)
+            time.sleep(5)  # the handler raises here
+        finally:
+            raise RuntimeError("Please call `iter(combined_loader)` first.")
+
+    with pytest.raises(TrainingInterrupted, match="interrupted by SIGTERM before the first checkpoint") as info:
+        interrupted_set_up(config)
+    assert info.value.signum == signal.SIGTERM
+
+    @stop_on_signals
+    def plain_failure(config):
+        raise RuntimeError("a real error")
+
+    with pytest.raises(RuntimeError, match="a real error"):
+        plain_failure(config)
+
 # ----------------------------------------------------------------------------- defect 7
 
 class _Kill(Exception):

@@ -49,6 +49,12 @@ def stop_on_signals(fn):
             return fn(config, *args, **kwargs)
         except _Signalled as exc:
             signum = exc.args[0]
+        except Exception:
+            if not fired:
+                raise
+            # A clean-up on the way out failed because the signal cut its set-up short
+            # (Lightning's data fetcher, torn down before it was started): still the signal.
+            signum = fired[0]
         finally:
             for s, h in previous.items():
                 signal.signal(s, h)
