@@ -2,6 +2,7 @@
 
 import json
 import math
+import pathlib
 import pickle
 
 import numpy as np
@@ -155,6 +156,60 @@ def test_unet_equals_its_textbook_form_with_concatenated_skips(name):
         torch.testing.assert_close(net.to(memory_format=torch.channels_last)(x_cl), textbook(x), rtol=1e-5,
                                    atol=1e-5)
 
+
+
+def test_deepened_unet_starts_as_the_same_function_and_learns_its_new_level():
+    # A U-Net given one more level (zero-initialised path into an identity decoder block:
+    # the zero-init residual branch of Goyal et al. 2017, "Accurate, large minibatch SGD")
+    # computes the same output as the original on inputs that need no extra padding, and
+    # one gradient step reaches the new level's weights.
+    from despeck.models.unet import deepened
+
+    net = create_model("unet-cond-m").eval()
+    for p in net.parameters():  # trained-looking weights, not the He defaults only
+        p.data.add_(0.05 * torch.randn_like(p))
+    deep = deepened(net, 128)
+    assert deep.architecture == "unet-cond-l" and deep.widths == [16, 32, 64, 96, 128]
+    assert deep.receptive_field > 2 * net.receptive_field
+    x = torch.randn(2, 4, 64, 48)  # multiples of 16: both pad nothing
+    with torch.no_grad():
+        torch.testing.assert_close(deep(x), net(x), rtol=1e-5, atol=1e-5)
+    deep.train()
+    ((deep(x) - 0.3) ** 2).mean().backward()
+    c = deep.widths[-2]
+    assert deep.decoders[0][0].weight.grad[:, :c].abs().sum() > 0  # the new path's entry into the old output
+    with pytest.raises(InputError, match="pixel unshuffle"):
+        deepened(create_model("unet-cond-h"), 128)
+    odd = deepened(create_model("unet-cond-s"), 80)  # no registered name: the old one with widths overridden
+    assert odd.architecture == "unet-cond-s" and odd.architecture_kwargs["widths"] == [16, 32, 64, 80]
+
+
+def test_deepen_script_writes_a_model_file_with_the_same_output(tmp_path):
+    import runpy
+    import sys
+
+    net = create_model("unet-cond-xs").eval()
+    table = {"looks": [1.0, 16.0], "corr": [0.0], "values": [[0.01], [0.002]]}
+    src = save_model_file(tmp_path / "a.safetensors", Despeckler(net, looks=[1, 16], log_bias_table=table))
+    out = tmp_path / "b.safetensors"
+    script = str(pathlib.Path(__file__).resolve().parents[1] / "scripts" / "deepen_model.py")
+    argv = sys.argv
+    try:
+        sys.argv = [script, str(src), str(out), "--width", "24"]
+        with pytest.raises(SystemExit) as done:
+            runpy.run_path(script, run_name="__main__")
+        assert done.value.code == 0
+        sys.argv = [script, str(src), str(src)]
+        with pytest.raises(SystemExit) as refused:
+            runpy.run_path(script, run_name="__main__")
+        assert refused.value.code == 2
+    finally:
+        sys.argv = argv
+    a, b = load_model_file(src), load_model_file(out)
+    assert b.network.widths == [8, 16, 24] and b.log_bias_table == a.log_bias_table and b.looks == a.looks
+    intensity = torch.rand(1, 1, 32, 32) + 0.1
+    with torch.no_grad():
+        torch.testing.assert_close(b(intensity, looks=3.0), a(intensity, looks=3.0), rtol=1e-5, atol=1e-6)
 
 def test_point_guard_counts_the_ring_inside_an_all_valid_tile_like_a_nodata_border():
     # Inside a tile without nodata the guard's ring counts come from the tile's shape; they

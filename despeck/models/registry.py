@@ -55,7 +55,7 @@ __all__ = ["ModelEntry", "register_model", "model_entry", "create_model", "list_
 BUILTIN_MODELS = MappingProxyType({
     "logcnn-xs": "logcnn", "logcnn-s": "logcnn", "logcnn-m": "logcnn",
     "unet-xs": "unet", "unet-s": "unet", "unet-m": "unet",
-    "unet-cond-xs": "unet", "unet-cond-s": "unet", "unet-cond-m": "unet", "unet-cond-h": "unet",
+    "unet-cond-xs": "unet", "unet-cond-s": "unet", "unet-cond-m": "unet", "unet-cond-l": "unet", "unet-cond-h": "unet",
 })
 
 # Ceilings on what a network description may ask for. The registered variants stay far

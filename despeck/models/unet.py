@@ -40,7 +40,7 @@ from torch import nn
 from ..errors import InputError
 from .registry import check_int, register_model
 
-__all__ = ["UNet"]
+__all__ = ["UNet", "deepened"]
 
 
 def _block(cin, cout):
@@ -71,6 +71,11 @@ def _joined_conv(block, a, b):
     description="looks- and correlation-conditioned residual U-Net at half resolution (2x2 pixel unshuffle), "
                 "32-64-96 channels (~376k parameters); about 1.3x the speed of unet-cond-s, but weaker on "
                 "correlated single-look speckle in the project's trial (see the starter model card)",
+)
+@register_model(
+    "unet-cond-l", widths=[16, 32, 64, 96, 128], condition_channels=3,
+    description="looks- and correlation-conditioned residual U-Net, 4 downsamplings, 16-32-64-96-128 channels "
+                "(~948k parameters, receptive field 231 px; unet-cond-m with one more level, about 1.1x its time)",
 )
 @register_model(
     "unet-cond-m", widths=[16, 32, 64, 96], condition_channels=3,
@@ -212,3 +217,57 @@ class UNet(nn.Module):
     def extra_repr(self) -> str:
         return (f"widths={self.widths}, condition_channels={self.condition_channels}, "
                 f"unshuffle={self.unshuffle}, receptive_field={self.receptive_field}")
+
+
+def deepened(network: UNet, width: int, *, seed: int = 0) -> UNet:
+    """A U-Net with one more level below ``network``'s that computes the same function.
+
+    The old bottleneck becomes the deepest encoder block; below it come a new
+    bottleneck of ``width`` channels (random, He initialisation) and a new transposed
+    convolution and decoder block. The new decoder block starts as the identity on its
+    skip input (the old bottleneck's output, non-negative after its ReLU, so the ReLUs
+    pass it unchanged) and its weights on the new upsampled path start at zero (the
+    path itself keeps random weights, so those zeros get a gradient at the first step):
+    the deeper network's output equals the old one's at the start, and training grows
+    the new level's contribution from there (the zero-initialised branch of a residual
+    block, Goyal et al. 2017, "Accurate, large minibatch SGD", section 5.1). The receptive
+    field roughly doubles (111 -> 231 pixels from unet-cond-m).
+
+    ``network`` must come from :func:`despeck.models.create_model`; the result does too,
+    under the registered name whose widths match, if any (``unet-cond-m`` + 128 ->
+    ``unet-cond-l``), otherwise under the old name with ``widths`` overridden.
+    """
+    from .registry import create_model, list_models, model_defaults
+
+    if not isinstance(network, UNet) or network.unshuffle != 1:
+        raise InputError("deepening needs a U-Net without pixel unshuffle")
+    width = check_int("width", width, 1)
+    widths = [*network.widths, width]
+    kwargs = {**network.architecture_kwargs, "widths": widths}
+    name = next((n for n in list_models() if model_defaults(n) == kwargs), network.architecture)
+    torch.manual_seed(seed)
+    deep = create_model(name, **({} if model_defaults(name) == kwargs else {"widths": widths}))
+    old, new = network.state_dict(), deep.state_dict()
+    n = network.levels
+    moved = {}
+    for key, value in old.items():
+        part, rest = key.split(".", 1)
+        if part == "bottleneck":
+            moved[f"encoders.{n}.{rest}"] = value
+        elif part in ("ups", "decoders"):
+            index, tail = rest.split(".", 1)
+            moved[f"{part}.{int(index) + 1}.{tail}"] = value
+        else:
+            moved[key] = value
+    c = widths[-2]
+    eye = torch.zeros(c, c, 3, 3)
+    eye[torch.arange(c), torch.arange(c), 1, 1] = 1.0
+    first = torch.zeros(c, 2 * c, 3, 3)
+    first[:, c:] = eye              # the skip half (the upsampled half comes first)
+    moved.update({
+        "decoders.0.0.weight": first, "decoders.0.0.bias": torch.zeros(c),
+        "decoders.0.2.weight": eye.clone(), "decoders.0.2.bias": torch.zeros(c),
+    })
+    new.update(moved)
+    deep.load_state_dict(new)
+    return deep
