@@ -20,6 +20,9 @@ the correlated conditions (it then uses the log-speckle spectrum); and the model
 ``despeck.inference.despeckle_array(intensity, model, valid=valid)`` with nothing else
 (the default user path: the model works out looks and correlation itself and runs in
 the precision ``despeck apply`` would choose on this machine, recorded in the output).
+With ``--orientations 4`` or ``8`` the model is also run averaged over that many
+orientations of each tile (``model-o4`` / ``model-o8``, ``despeck apply --orientations``),
+reported in its own margin table; the targets are judged on the default single pass.
 
 Per cell (family x condition) and method:
 
@@ -50,7 +53,7 @@ avx512_bf16, amx) and the load average (timings mean little on a busy machine).
 
 Usage::
 
-    python benchmarks/bench_starter.py [--model FILE] [--quick] [--size N] [--per-family K]
+    python benchmarks/bench_starter.py [--model FILE] [--quick] [--size N] [--per-family K] [--orientations 8]
 
 Writes ``bench_output/bench_starter_<model stem>.json`` (``_quick`` with ``--quick``) and
 prints Markdown. The full run (384 x 384, two scenes per family) takes about 5 minutes on
@@ -160,8 +163,9 @@ def speckle(clean, condition, seed):
 def run_method(method, noisy, valid, condition, model):
     looks = condition["looks"]
     start = time.perf_counter()
-    if method == "model":
-        out = despeckle_array(noisy, model, valid=valid, progress=False)
+    if method == "model" or method.startswith("model-o"):
+        n = int(method[len("model-o"):]) if method != "model" else 1
+        out = despeckle_array(noisy, model, valid=valid, progress=False, orientations=n)
     elif method == "bm3d-log":
         extra = SYSTEM if condition["correlated"] else {}
         out = bm3d_log.bm3d_log(noisy, looks=looks, mask=valid, **extra)
@@ -266,13 +270,26 @@ def markdown(result):
             mark = "pass" if not failed else "FAIL " + ",".join(failed)
             row.append(f"{cell['margin_db']:+.2f} vs {cell['best_classical']} ({mark})")
         lines.append(f"| {fam} | " + " | ".join(row) + " |")
+    for m in result.get("averaged", []):
+        lines.append(f"\n### {m} (the model averaged over {m[len('model-o'):]} orientations): margin over the best "
+                     "classical method\n")
+        lines.append("| family | " + " | ".join(conds) + " |")
+        lines.append("|---|" + "---|" * len(conds))
+        for fam in fams:
+            row = []
+            for c in conds:
+                cell = cells[f"{fam} / {c}"]
+                s = cell["methods"][m]
+                row.append(f"{cell[f'margin_{m}_db']:+.2f} (bias {fmt(s['bias_db'], '+.3f')}, points "
+                           f"{fmt(s['points_median_db'], '+.1f')} / {fmt(s['points_worst_db'], '+.1f')})")
+            lines.append(f"| {fam} | " + " | ".join(row) + " |")
     lines.append("\n### Model and best classical per cell\n")
     lines.append("| cell | method | PSNR dB | SSIM | edge corr | bias dB vs reference (input's own) | bias dB vs input "
                  "| points median / worst dB | time s |")
     lines.append("|---|---|---|---|---|---|---|---|---|")
     for key, cell in cells.items():
         inp = cell["methods"]["input"]
-        for m in ("model", cell["best_classical"]):
+        for m in ("model", *result.get("averaged", []), cell["best_classical"]):
             s = cell["methods"][m]
             lines.append(
                 f"| {key} | {m} | {s['psnr_db']:.2f} | {s['ssim_db']:.3f} | {s['edge_corr']:.3f} | "
@@ -310,6 +327,8 @@ def main(argv=None) -> int:
     parser.add_argument("--size", type=int, default=None, help="scene side (default 384; quick 192)")
     parser.add_argument("--per-family", type=int, default=None, help="scenes per family (default 2; quick 1)")
     parser.add_argument("--no-speed", action="store_true", help="skip the inference-speed measurement")
+    parser.add_argument("--orientations", type=int, choices=(4, 8), default=None,
+                        help="also run the model averaged over this many orientations (method model-o4 / model-o8)")
     parser.add_argument("--out", default=None, help="JSON path (default bench_output/bench_starter_<model>.json)")
     args = parser.parse_args(argv)
 
@@ -323,6 +342,7 @@ def main(argv=None) -> int:
     else:
         notes.append(f"bm3d-log left out: the optional bm3d package is not installed ({bm3d_log.INSTALL_HINT})")
     methods = classical + ["model"]
+    averaged = [f"model-o{args.orientations}"] if args.orientations else []
 
     cells, sources = {}, {}
     t_all = time.perf_counter()
@@ -344,7 +364,7 @@ def main(argv=None) -> int:
                 noisy, reference = speckle(clean, cond, seed)
                 valid = np.isfinite(noisy) & (noisy > 0)
                 measure(pools["input"], reference, noisy, noisy, valid, boxes, points, 0.0)
-                for m in methods:
+                for m in methods + averaged:
                     est, seconds = run_method(m, noisy, valid, cond, model)
                     measure(pools[m], reference, noisy, est, valid, boxes, points, seconds)
             summary = {m: summarise(p) for m, p in pools.items()}
@@ -353,6 +373,8 @@ def main(argv=None) -> int:
             key = f"{fam} / {cond['name']}"
             cells[key] = {"family": fam, "condition": cond, "best_classical": best, "margin_db": margin,
                           "pass": checks, "methods": summary}
+            for m in averaged:
+                cells[key][f"margin_{m}_db"], cells[key][f"pass_{m}"] = verdict(summary[m], summary[best])
             print(f"{key}: model {summary['model']['psnr_db']:.2f} dB, best classical {best} "
                   f"{summary[best]['psnr_db']:.2f} dB, margin {margin:+.2f} dB, "
                   f"bias {fmt(summary['model']['bias_db'], '+.3f')} dB "
@@ -361,7 +383,8 @@ def main(argv=None) -> int:
     speed = None if args.no_speed else inference_speed(model, 1024 if args.quick else SPEED_SIZE)
     result = {
         "model": str(args.model), "quick": bool(args.quick), "size": size, "per_family": per_family,
-        "families": list(FAMILIES), "conditions": list(CONDITIONS), "system": SYSTEM, "methods": methods,
+        "families": list(FAMILIES), "conditions": list(CONDITIONS), "system": SYSTEM, "methods": methods + averaged,
+        "averaged": averaged,
         "targets": TARGETS, "scene_sources": sources, "cells": cells, "speed": speed, "cpu": cpu_info(),
         "model_precision": precision_of(resolve_bf16(model, None)),
         "seconds_total": time.perf_counter() - t_all, "notes": notes,

@@ -28,6 +28,7 @@ import warnings
 
 from ..cpu import PRECISIONS, bf16_argument
 from ..errors import DespeckError, InputError, ModelFileError, OptionError
+from ..models.orientations import ORIENTATIONS
 from . import check_threads, one_line_warnings
 from .exit_codes import batch_status, option_values, raise_terminated
 
@@ -72,6 +73,11 @@ def add_arguments(parser):
                              "auto (default): bf16 where the CPU has them and the model carries a bfloat16 bias "
                              "calibration, else 32. The output's despeck_options tag records which ran")
     parser.add_argument("--bf16", dest="precision", action="store_const", const="bf16", help=argparse.SUPPRESS)
+    parser.add_argument("--orientations", type=int, choices=ORIENTATIONS, default=1, metavar="{1,4,8}",
+                        help="run the network on this many orientations of every tile (as it is; rows, columns or "
+                             "both reversed; 8: those transposed too) and average: that many times the time for "
+                             "a cleaner estimate (bundled starter, 8: +0.16 to +0.34 dB PSNR on the project's "
+                             "scene matrix, mean kept; README). Default 1. The despeck_options tag records it")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace existing outputs (inputs are never overwritten)")
     parser.add_argument("--busy", choices=("skip", "fail"), default="skip",
@@ -321,8 +327,9 @@ def _run_dask(args, inputs, outputs) -> dict:
 
     model_path = model_file(args.model)
     apply_many(inputs, outputs, model_path, args.dask, threads=args.threads or 1, overwrite=args.overwrite,
-               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap, bf16=bf16_argument(args.precision),
-               looks=getattr(args, "looks", None), cog=getattr(args, "cog", False), on_result=show)
+               units=args.units, out_units=args.out_units, tile=args.tile, overlap=args.overlap,
+               bf16=bf16_argument(args.precision), looks=getattr(args, "looks", None), cog=getattr(args, "cog", False),
+               on_result=show, orientations=args.orientations)
     return counts
 
 
@@ -359,6 +366,7 @@ def _run_all(args, inputs, outputs, model) -> dict:
                 src, dst, model, units=args.units, out_units=args.out_units, overwrite=args.overwrite,
                 tile=args.tile, overlap=args.overlap, threads=args.threads, bf16=bf16_argument(args.precision),
                 progress=not args.quiet, looks=getattr(args, "looks", None), cog=getattr(args, "cog", False),
+                orientations=args.orientations,
             )
         except OutputBusyError as exc:
             if args.busy == "fail":

@@ -35,7 +35,6 @@ import numpy as np
 import rioxarray  # noqa: F401 - registers the .rio accessor (CRS, transform, nodata)
 import xarray as xr
 
-from ..cpu import precision_of
 from ..errors import DespeckError, InputError
 
 __all__ = ["despeckle_dataarray", "write_dataarray", "DEFAULT_CHUNK"]
@@ -88,7 +87,7 @@ def _to_intensity_block(raw, units, nodata):
 
 
 def _despeckle_block(raw, *, model, units, nodata, log_offset, condition, tile, overlap, threads, bf16,
-                     channels_last):
+                     channels_last, orientations=1):
     """One chunk with its halo: despeckled samples in ``units``; invalid pixels keep their value."""
     from ..inference import despeckle_array
     from ..raster import from_intensity
@@ -103,7 +102,7 @@ def _despeckle_block(raw, *, model, units, nodata, log_offset, condition, tile, 
     m = copy.deepcopy(model)
     estimate = despeckle_array(intensity, m, valid=ok, tile=tile, overlap=overlap, threads=threads, bf16=bf16,
                                log_offset=log_offset, condition=condition, channels_last=channels_last,
-                               progress=False)
+                               progress=False, orientations=orientations)
     return np.where(ok, from_intensity(estimate, units), out).astype(np.float32, copy=False)
 
 
@@ -153,7 +152,7 @@ def _nodata_of(da):
 
 
 def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAULT_CHUNK, tile=None, overlap=None,
-                        threads=1, bf16=None, channels_last=None):
+                        threads=1, bf16=None, channels_last=None, orientations=1):
     """Despeckle a (lazily read) scene held in an ``xarray.DataArray``, chunk by chunk with Dask.
 
     Parameters
@@ -176,7 +175,7 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
     chunk : int
         Chunk side in pixels (rounded up to the network's pooling grid); the halo
         around each chunk is the tiler's overlap for ``model``.
-    tile, overlap, threads, bf16, channels_last
+    tile, overlap, threads, bf16, channels_last, orientations
         As for :func:`despeck.inference.despeckle_array`, within each chunk;
         ``threads`` is the torch threads of one chunk task (default 1). ``bf16`` None
         is resolved once, here, on this machine, and every chunk runs alike (a worker
@@ -199,7 +198,9 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
         Not a DataArray of 2 or 3 dimensions, unknown units, bad tile options, no
         valid pixel.
     """
-    from ..inference import InferenceWarning, array_sample, condition_for_model, resolve_bf16, resolve_tiling
+    from ..inference import (InferenceWarning, array_sample, check_orientations, condition_for_model, resolve_bf16,
+                             resolve_tiling)
+    from ..inference.runner import run_options
     from ..looks import describe_speckle, speckle_tags
     from ..models import Despeckler, load_model_file
     from ..provenance import model_provenance, provenance_tags, tiling_text, without_provenance
@@ -216,6 +217,7 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
     height, width = int(da.shape[-2]), int(da.shape[-1])
     grid = resolve_tiling((height, width), model, tile=tile, overlap=overlap)
     bf16 = resolve_bf16(model, bf16)
+    orientations = check_orientations(orientations)
     multiple = int(getattr(model, "size_multiple", 1) or 1)
     halo = -(-int(grid.overlap) // multiple) * multiple
     chunk = max(-(-int(chunk) // multiple) * multiple, halo)
@@ -254,7 +256,7 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
                 _despeckle_block, raw, depth=depth, boundary="none", trim=True, dtype=np.float32,
                 meta=np.empty((0, 0), np.float32), model=model, units=units, nodata=nodata, log_offset=log_offset,
                 condition=(cond_looks, cond_corr), tile=tile, overlap=overlap, threads=threads, bf16=bf16,
-                channels_last=channels_last,
+                channels_last=channels_last, orientations=orientations,
             ))
     finally:
         if source is not None:
@@ -265,7 +267,7 @@ def despeckle_dataarray(da, model, *, units="intensity", looks=None, chunk=DEFAU
     attrs.update(input_tags)
     attrs.update(provenance_tags(method, model_sha256=sha, tiling=f"dask chunks {chunk}x{chunk}, halo {halo}; "
                                                                   + tiling_text(grid),
-                                 options={"precision": precision_of(bf16)}))
+                                 options=run_options(bf16, orientations)))
     result = xr.DataArray(out, coords=da.coords, dims=da.dims, name=da.name, attrs=attrs)
     for key in ("_FillValue", "grid_mapping"):
         if key in da.encoding:

@@ -147,7 +147,7 @@ def _apply_one(src, dst, model_path, options) -> FileResult:
 
 def apply_many(inputs, outputs, model_path, client=None, *, threads=1, overwrite=False, units=None,
                out_units=None, tile=None, overlap=None, bf16=None, looks=None, cog=False,
-               on_result=None) -> list[FileResult]:
+               on_result=None, orientations=1) -> list[FileResult]:
     """Despeckle many scenes on a Dask cluster, one task per file.
 
     Parameters
@@ -163,7 +163,7 @@ def apply_many(inputs, outputs, model_path, client=None, *, threads=1, overwrite
         ``threads``, started for this call (see :func:`open_client`).
     threads : int
         Torch threads of each task (default 1: the cluster's workers are the parallelism).
-    overwrite, units, out_units, tile, overlap, bf16, looks, cog
+    overwrite, units, out_units, tile, overlap, bf16, looks, cog, orientations
         As for :func:`despeck.inference.despeckle_file`; ``bf16`` None is resolved once,
         here, on this machine, so every file runs alike (a worker without native bf16
         warns and runs in float32).
@@ -191,13 +191,16 @@ def apply_many(inputs, outputs, model_path, client=None, *, threads=1, overwrite
         raise InputError(f"model file {model_path} does not exist")
     if isinstance(threads, bool) or not isinstance(threads, int) or threads < 1:
         raise InputError(f"threads must be a whole number >= 1, got {threads!r}")
+    from ..inference import check_orientations
+
+    orientations = check_orientations(orientations)
     if bf16 is None:
         from ..inference import resolve_bf16
         from ..models import load_model_file
 
         bf16 = resolve_bf16(load_model_file(model_path), None)
     options = dict(overwrite=overwrite, units=units, out_units=out_units, tile=tile, overlap=overlap,
-                   threads=threads, bf16=bf16, looks=looks, cog=cog)
+                   threads=threads, bf16=bf16, looks=looks, cog=cog, orientations=orientations)
     results = [None] * len(inputs)
 
     def report(i, result):

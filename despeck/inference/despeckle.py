@@ -13,11 +13,11 @@ import warnings
 
 import numpy as np
 
-from ..cpu import precision_of, usable_cores
+from ..cpu import usable_cores
 from ..errors import InputError
 from .blend import TileBlender, stream_tiles
 from .condition import condition_for_model, model_mismatch_notes
-from .runner import TileRunner, run_settings, torch_settings
+from .runner import TileRunner, check_orientations, run_options, run_settings, torch_settings
 from .tiles import InferenceWarning, SAMPLE_PIXELS, array_sample, check_model, positive_int, resolve_tiling, scene_offset
 
 __all__ = ["despeckle_array", "despeckle_file", "check_finite", "READ_ROWS"]
@@ -29,7 +29,7 @@ READ_ROWS = 64
 
 def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, batch_size=None, threads=None,
                     bf16=None, log_offset=None, channels_last=None, progress=True, looks=None,
-                    correlation=None, condition=None) -> np.ndarray:
+                    correlation=None, condition=None, orientations=1) -> np.ndarray:
     """Despeckle a 2-D linear intensity array with a model, tile by tile.
 
     Parameters
@@ -57,6 +57,12 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         bfloat16, so the mean backscatter stays as in float32
         (:func:`despeck.inference.runner.resolve_bf16`); False forces float32, True
         bfloat16 (warns and uses float32 on CPUs without native bf16).
+    orientations : {1, 4, 8}
+        Run the network on this many orientations of every tile -- as it is, with rows,
+        columns or both reversed, and (8) those transposed -- and average the estimates
+        in the log domain (:meth:`despeck.models.Despeckler.run_oriented`). Default 1;
+        4 and 8 take that many times as long for a cleaner estimate (README: +0.2 to
+        +0.3 dB PSNR for the bundled starter with 8).
     log_offset : float, optional
         Scene normalisation constant; default ``model.scene_log_offset`` of a decimated
         sample (at most one million) of the valid pixels.
@@ -106,6 +112,7 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         raise InputError("intensity has no valid (finite, positive, not masked) pixel to despeckle")
     grid = resolve_tiling(x.shape, model, tile=tile, overlap=overlap)
     threads, use_bf16, batch_size = run_settings(model, threads, bf16, batch_size, grid)
+    orientations = check_orientations(orientations)
     if log_offset is None:
         log_offset = scene_offset(model, array_sample(x, ok))
     cond_looks = cond_corr = None
@@ -140,7 +147,7 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
             bar.update((r1 - r0) * x.shape[1] / 1e6)
 
     runner = TileRunner(model, log_offset=log_offset, bf16=use_bf16, channels_last=channels_last,
-                        total_pixels=x.size, looks=cond_looks, correlation=cond_corr)
+                        total_pixels=x.size, looks=cond_looks, correlation=cond_corr, orientations=orientations)
     was_training = model.training
     model.eval()
     try:
@@ -178,7 +185,7 @@ def check_finite(estimate, source, r0, name, band=None):
 
 def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, overwrite=False, tile=None,
                    overlap=None, batch_size=None, threads=None, bf16=None, channels_last=None,
-                   progress=True, looks=None, cog=False) -> pathlib.Path:
+                   progress=True, looks=None, cog=False, orientations=1) -> pathlib.Path:
     """Despeckle a raster file band by band and write a GeoTIFF.
 
     The output keeps the input's size, CRS, transform, nodata, band descriptions and
@@ -203,7 +210,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
         advances by exactly one row of the output's blocks (512 rows), so each row of
         tiles completes whole blocks and the buffers stay short and wide; the tiles are
         then wider than tall.
-    overlap, batch_size, threads, bf16, channels_last, progress
+    overlap, batch_size, threads, bf16, channels_last, progress, orientations
         As for :func:`despeckle_array`.
     looks : float, optional
         The input's number of looks; default from the file's ``looks`` tag, else
@@ -235,6 +242,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
     from ..raster.streaming import open_stream
 
     check_model(model)
+    orientations = check_orientations(orientations)
     # GDAL worker threads compress output blocks while the network runs; despeck.raster
     # caps GDAL's block cache, so written blocks do not pile up in memory.
     gdal_threads = positive_int("threads", threads) or usable_cores()
@@ -256,7 +264,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
             threads, use_bf16, batch_size = run_settings(model, threads, bf16, batch_size, grid)
             method, model_sha = model_provenance(model)
             stream.update_tags(**provenance_tags(method, model_sha256=model_sha, tiling=tiling_text(grid),
-                                                 options={"precision": precision_of(use_bf16)}))
+                                                 options=run_options(use_bf16, orientations)))
             strip_rows = stream.strip_rows(READ_ROWS)
             with torch_settings(threads):
                 for band in stream.bands:
@@ -271,7 +279,7 @@ def despeckle_file(in_path, out_path, model, *, units=None, out_units=None, over
                         stream.update_tags(**speckle_tags(info, corr, prefix="input_"))
                     runner = TileRunner(model, log_offset=offset, bf16=use_bf16, channels_last=channels_last,
                                         total_pixels=reader.width * reader.height, looks=cond_looks,
-                                        correlation=cond_corr)
+                                        correlation=cond_corr, orientations=orientations)
                     blender = TileBlender(grid, runner, batch_size, strip_rows)
                     try:
                         stream.map_strips(_blend_strip(blender, reader, band), band=band, rows=strip_rows)

@@ -16,11 +16,12 @@ import warnings
 import numpy as np
 import torch
 
-from ..cpu import bf16_supported, usable_cores
+from ..cpu import bf16_supported, precision_of, usable_cores
+from ..models.orientations import check_orientations
 from .tiles import InferenceWarning, positive_int
 
 __all__ = ["BATCH_PIXELS", "TRIAL_MIN_PIXELS", "TRIAL_SIDE", "torch_settings", "TileRunner", "resolve_bf16",
-           "run_settings"]
+           "check_orientations", "run_options", "run_settings"]
 
 # Pixels per batch the default batch size aims for: enough work per call to keep both
 # cores busy, small enough that a 64-channel network's activations stay a few hundred MB
@@ -62,8 +63,10 @@ class TileRunner:
     keep the default (contiguous) format.
     """
 
-    def __init__(self, model, *, log_offset, bf16, channels_last, total_pixels=None, looks=None, correlation=None):
+    def __init__(self, model, *, log_offset, bf16, channels_last, total_pixels=None, looks=None, correlation=None,
+                 orientations=1):
         self.model = model
+        self.orientations = orientations
         self.log_offset = log_offset
         self.condition = {} if looks is None else {"looks": looks, "correlation": correlation}
         self.bf16 = bf16
@@ -107,7 +110,7 @@ class TileRunner:
         if cl:
             x = x.contiguous(memory_format=torch.channels_last)
         with torch.autocast("cpu", dtype=torch.bfloat16, enabled=self.bf16):
-            y = self.model(x, log_offset=self.log_offset, **self.condition)
+            y = self.model(x, log_offset=self.log_offset, orientations=self.orientations, **self.condition)
         return y.to(torch.float32).squeeze(1).contiguous().numpy()
 
 
@@ -135,6 +138,14 @@ def resolve_bf16(model, bf16=None, *, stacklevel=3) -> bool:
                       "its mean backscatter may be off by a few hundredths of a dB",
                       InferenceWarning, stacklevel=stacklevel)
     return True
+
+
+def run_options(bf16: bool, orientations: int = 1) -> dict:
+    """How the network ran, for the output's ``despeck_options`` tag: precision, and orientations when more than one."""
+    options = {"precision": precision_of(bf16)}
+    if orientations != 1:
+        options["orientations"] = int(orientations)
+    return options
 
 
 def run_settings(model, threads, bf16, batch_size, grid):

@@ -27,6 +27,7 @@ import importlib
 from .registry import (ModelEntry, create_model, list_models, model_defaults, model_description, model_entry,
                        register_model)
 from .bundled import BUNDLED_MODELS, bundled_model_path, resolve_model_path
+from .orientations import ORIENTATIONS
 
 #: Public name -> the module of this package that defines it (imported on first use).
 _LAZY_NAMES = {
@@ -61,6 +62,7 @@ __all__ = [
     "Despeckler",
     "DEFAULT_LOG_SCALE",
     "CONDITION_CHANNELS",
+    "ORIENTATIONS",
     "BUNDLED_MODELS",
     "bundled_model_path",
     "resolve_model_path",

@@ -49,6 +49,7 @@ from torch import nn
 
 from ..errors import InputError
 from ..speckle import check_looks, check_looks_range
+from .orientations import average_over_orientations
 
 __all__ = ["Despeckler", "DEFAULT_LOG_SCALE", "CONDITION_CHANNELS", "UNKNOWN_CORRELATION"]
 
@@ -413,8 +414,23 @@ class Despeckler(nn.Module):
             x = x.contiguous(memory_format=torch.channels_last)
         return self.network(x)
 
+    def run_oriented(self, z: torch.Tensor, cond=None, *, orientations: int = 1,
+                     channels_last: bool = False) -> torch.Tensor:
+        """:meth:`run_network` averaged over ``orientations`` flips (4) and transposes (8) of ``z``.
+
+        Each oriented copy goes through the network and is turned back before the
+        average, taken in the normalised log domain
+        (:func:`despeck.models.orientations.average_over_orientations`; a transpose
+        swaps the row and column correlations of the conditioning). ``orientations``
+        times the arithmetic.
+        """
+        def run(x, c):
+            return self.run_network(x, c, channels_last=channels_last)
+
+        return average_over_orientations(run, z, cond, orientations)
+
     def forward(self, intensity: torch.Tensor, valid=None, log_offset=None, looks=None,
-                correlation=None) -> torch.Tensor:
+                correlation=None, orientations: int = 1) -> torch.Tensor:
         """Despeckle linear intensity.
 
         Parameters
@@ -433,6 +449,9 @@ class Despeckler(nn.Module):
         correlation : (float, float), optional
             Lag-1 intensity correlation of the scene's speckle down rows and along columns
             (default 0, white); used by conditioned networks and the bias calibration.
+        orientations : {1, 4, 8}
+            Average the network over this many orientations of the input
+            (:meth:`run_oriented`; default 1, the network once).
 
         Returns
         -------
@@ -441,8 +460,9 @@ class Despeckler(nn.Module):
         """
         z, off, ok = self.normalise(intensity, valid, log_offset)
         cond = self.condition(z.shape[0], looks, correlation, device=z.device) if self.conditioned else None
-        y = self.run_network(z, cond, channels_last=intensity.is_contiguous(memory_format=torch.channels_last)
-                             and not intensity.is_contiguous())
+        y = self.run_oriented(z, cond, orientations=orientations,
+                              channels_last=intensity.is_contiguous(memory_format=torch.channels_last)
+                              and not intensity.is_contiguous())
         bias = self.bias_for(looks, correlation, bf16=_under_bf16_autocast())
         out = torch.exp(self.denormalise(y.to(torch.float32), off, bias))
         return self.keep_points(intensity.to(torch.float32), ok, out, looks)
