@@ -146,6 +146,21 @@ def test_chunked_dataarray_equals_the_streamed_array(tmp_path, name, looks):
     assert out.attrs["despeck_method"].startswith(name)
 
 
+def test_chunked_dataarray_with_orientations_equals_the_array_and_records_them(tmp_path):
+    # Averaging over orientations is per tile, inside each chunk: the chunked result
+    # equals the whole array's within float rounding, and differs from one pass.
+    torch.manual_seed(0)
+    model = Despeckler(create_model("unet-cond-xs"), looks=[1, 16]).eval()
+    x = _speckle((200, 180), seed=5, looks=2.0)
+    da = xr.DataArray(x, dims=("y", "x"), attrs={"looks": "2"})
+    out = despeckle_dataarray(da, model, chunk=64, orientations=8)
+    y = out.compute(scheduler="threads", num_workers=2).values
+    ref = despeckle_array(x, model, looks=2, progress=False, threads=1, orientations=8)
+    one = despeckle_array(x, model, looks=2, progress=False, threads=1)
+    assert (np.abs(y - ref) / ref).max() <= 1e-5
+    assert not np.allclose(ref, one, rtol=1e-3)
+    assert "orientations=8" in out.attrs["despeck_options"]
+
 def test_chunked_file_of_over_a_megapixel_equals_despeckle_file(tmp_path):
     # Above a million pixels the scene statistics come from a decimated sample; a
     # DataArray read from a file takes them from that file as despeckle_file does.
