@@ -453,3 +453,33 @@ def test_save_errors(tmp_path):
         save_model_file(tmp_path / "m.safetensors", model, architecture="x")
     with pytest.raises(InputError, match="JSON"):
         save_model_file(tmp_path / "m.safetensors", model, metrics={"x": object()})
+
+
+@pytest.mark.parametrize("damage", ["weights", "header"])
+def test_a_written_file_that_reads_back_wrong_never_replaces_the_old_one(tmp_path, monkeypatch, damage):
+    # Write to a temporary file, read it back as a model, and only then rename
+    # (the project's rule for every output): a file whose bytes were damaged on the way
+    # (here: one weight byte, or the description) leaves the previous model untouched.
+    import safetensors.torch
+
+    path = tmp_path / "m.safetensors"
+    save_model_file(path, Despeckler(create_model("logcnn-xs"), looks=1))
+    before = path.read_bytes()
+    real = safetensors.torch.save
+
+    def damaged(tensors, metadata=None):
+        data = bytearray(real(tensors, metadata=metadata))
+        if damage == "weights":
+            data[-2] ^= 0x01  # a low mantissa bit of the last weight: still finite, still loads
+        else:
+            metadata = {k: v.replace('"looks": 1', '"looks": 2') for k, v in metadata.items()}
+            data = bytearray(real(tensors, metadata=metadata))
+        return bytes(data)
+
+    monkeypatch.setattr(safetensors.torch, "save", damaged)
+    torch.manual_seed(1)
+    with pytest.raises(ModelFileError, match="reads back different") as exc:
+        save_model_file(path, Despeckler(create_model("logcnn-xs"), looks=1))
+    assert str(path) in str(exc.value) and "\n" not in str(exc.value)
+    assert path.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["m.safetensors"]  # no temporary file left

@@ -157,6 +157,7 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
             f.write(data)
         if os.path.getsize(tmp) != len(data):
             raise OSError(f"only {os.path.getsize(tmp)} of {len(data)} bytes were written")
+        _verify_written(tmp, tensors, header, path)
         publish(tmp, path)  # fsync, then rename
     except OSError as exc:
         raise failed(exc, tmp) from None
@@ -164,6 +165,24 @@ def save_model_file(path, despeckler: Despeckler, **metadata) -> Path:
         if os.path.exists(tmp):
             os.unlink(tmp)
     return path
+
+
+def _verify_written(tmp, tensors, header, path) -> None:
+    """Read the temporary file back as a model before it takes ``path``'s name.
+
+    The same checks as any later load (:func:`load_model_file`), then every tensor and
+    the header compared with what was meant to be written: a file that would not load,
+    or load as something else, never replaces a good one.
+    """
+    try:
+        back = load_model_file(tmp)
+    except ModelFileError as exc:
+        raise ModelFileError(f"cannot write model file {path}: the written file does not read back ({exc})") from None
+    state = back.network.state_dict()
+    same = set(state) == set(tensors) and all(torch.equal(state[k], tensors[k]) for k in tensors)
+    if not same or read_model_metadata(tmp) != json.loads(json.dumps(header, sort_keys=True)):
+        raise ModelFileError(f"cannot write model file {path}: the written file reads back different weights "
+                             "or description")
 
 
 def read_model_metadata(path) -> dict:
