@@ -147,15 +147,28 @@ def test_model_file_method(scene, tmp_path):
     path = save_model_file(tmp_path / "tiny.safetensors", Despeckler(create_model("logcnn-xs"), looks=1).eval())
     clean, noisy, layout = scene
     s = bench.BenchScene(image=noisy, reference=clean, looks=1, areas=layout.homogeneous_boxes, points=layout.points)
-    result = bench.run_benchmark([s], ["lee", f"model:{path}"], tmp_path / "rep", progress=False)
-    row = result["results"][-1]
-    assert row["kind"] == "model" and row["method"] == "model tiny" and np.isfinite(row["psnr_db"])
+    result = bench.run_benchmark([s], ["lee", f"model:{path}", f"model:{path},orientations=8"], tmp_path / "rep",
+                                 progress=False)
+    rows = {r["method"]: r for r in result["results"]}
+    row = rows["model tiny"]
+    assert row["kind"] == "model" and np.isfinite(row["psnr_db"])
+    averaged = rows["model tiny x8 orientations"]
+    assert averaged["kind"] == "model" and averaged["psnr_db"] != row["psnr_db"]
     # the precision the network ran in is recorded: float32, as this model has no bfloat16 table
     info = [m for m in result["methods"] if m["kind"] == "model"]
-    assert info == [{"label": "model tiny", "kind": "model", "path": str(path), "precision": "32"}]
-    assert "network run in float32" in (tmp_path / "rep" / "report.md").read_text()
+    assert info == [{"label": "model tiny", "kind": "model", "path": str(path), "precision": "32", "orientations": 1},
+                    {"label": "model tiny x8 orientations", "kind": "model", "path": str(path), "precision": "32",
+                     "orientations": 8}]
+    report = (tmp_path / "rep" / "report.md").read_text()
+    assert "network run in float32" in report and "averaged over 8 orientations" in report
     with pytest.raises(InputError, match="not found"):
         bench.parse_method("model:nowhere.safetensors")
+    with pytest.raises(InputError, match="orientations must be"):
+        bench.parse_method(f"model:{path},orientations=3")
+    m = bench.parse_method({"model": str(path), "orientations": 4, "label": "mine x4"})
+    assert m.label == "mine x4" and m.options == {"orientations": 4}
+    with pytest.raises(InputError, match="only 'orientations' and 'label'"):
+        bench.parse_method({"model": str(path), "window": 5})
 
 
 @pytest.mark.parametrize("text, value", [

@@ -32,7 +32,9 @@ Scene list files (YAML or JSON, paths relative to the file)::
 
 Method specifications: ``NAME`` or ``NAME:key=value,key=value`` for a filter of
 :data:`despeck.filters.FILTERS` (``window``, ``looks`` and the filter's own
-options), ``model:PATH`` or a path ending in ``.safetensors`` for a model file.
+options), ``model:PATH`` or a path ending in ``.safetensors`` for a model file
+(``model:PATH,orientations=8``, or a mapping ``{model: PATH, orientations: 8}``, runs it
+averaged over orientations as ``despeck apply --orientations`` does).
 
 The package is split by responsibility: :mod:`~despeck.bench.spec` (what to run: method
 specifications and scene list files), :mod:`~despeck.bench.scenes` (reading and checking

@@ -311,8 +311,10 @@ def _write_report(path, result):
         lines += ["## Models", ""]
         for m in models:
             arithmetic = PRECISION_NAMES.get(m.get("precision"), "an unrecorded precision")
+            n = int(m.get("orientations", 1))
+            averaged = f", averaged over {n} orientations of every tile" if n > 1 else ""
             lines.append(f"- **{m['label']}**: `{m['path']}`, network run in {arithmetic} (the automatic choice "
-                         "of `despeck apply` on this machine)")
+                         f"of `despeck apply` on this machine){averaged}")
         lines.append("")
     lines += ["## Conventions", ""]
     for k, v in result["conventions"].items():

@@ -36,7 +36,7 @@ def _run_method(method: Method, scene: LoadedScene, models, workers):
 
     model = models[method.path]
     start = time.perf_counter()
-    out = despeckle_array(scene.intensity, model, valid=scene.valid, progress=False)
+    out = despeckle_array(scene.intensity, model, valid=scene.valid, progress=False, **method.options)
     return np.asarray(out, dtype=np.float32), time.perf_counter() - start
 
 
@@ -180,6 +180,7 @@ def _method_info(m: Method, models):
 
         # despeckle_array's automatic choice, as _run_method ran it
         precision = precision_of(resolve_bf16(models[m.path], None))
-        return {"label": m.label, "kind": "model", "path": str(m.path), "precision": precision}
+        return {"label": m.label, "kind": "model", "path": str(m.path), "precision": precision,
+                "orientations": int(m.options.get("orientations", 1))}
     return {"label": m.label, "kind": "filter", "name": m.name, "window": m.window, "looks": m.looks,
             "options": m.options}

@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 from .. import filters
 from ..errors import ConfigError, InputError
 from ..filters.bm3d_log import available as bm3d_available
+from ..models.orientations import check_orientations
 from ..speckle import check_looks
 
 __all__ = ["Method", "BenchScene", "parse_option_value", "parse_method", "load_scene_list", "DEFAULT_METHODS"]
@@ -67,6 +68,14 @@ def parse_method(spec, base=None) -> Method:
         spec = dict(spec)
         if "model" in spec:
             text = f"model:{spec.pop('model')}"
+            extra = {k: spec.pop(k) for k in list(spec) if k in ("orientations", "label")}
+            if spec:
+                raise InputError(f"method {text!r}: a model takes only 'orientations' and 'label', got {sorted(spec)}")
+            if "orientations" in extra:
+                text += f",orientations={extra['orientations']}"
+            m = parse_method(text, base)
+            return m if "label" not in extra else Method(str(extra["label"]), m.kind, m.name, m.window, m.looks,
+                                                         m.options, m.path)
         elif "filter" in spec:
             name = spec.pop("filter")
             label = spec.pop("label", None)
@@ -81,12 +90,22 @@ def parse_method(spec, base=None) -> Method:
         raise InputError("empty method specification")
     if text.lower().startswith("model:") or text.lower().endswith(".safetensors"):
         raw = text[6:] if text.lower().startswith("model:") else text
+        options, label = {}, ""
+        head, sep, value = raw.rpartition(",orientations=")
+        if sep:  # model:PATH,orientations=N (despeck apply --orientations)
+            try:
+                options["orientations"] = check_orientations(int(value))
+            except ValueError:
+                raise InputError(f"method {text!r}: orientations must be 1, 4 or 8, got {value!r}") from None
+            except InputError as exc:
+                raise InputError(f"method {text!r}: {exc}") from None
+            raw, label = head, f" x{options['orientations']} orientations"
         path = pathlib.Path(raw).expanduser()
         if base is not None and not path.is_absolute():
             path = base / path
         if not path.is_file():
             raise InputError(f"method {text!r}: model file {path} not found")
-        return Method(label=f"model {path.stem}", kind="model", path=path)
+        return Method(label=f"model {path.stem}{label}", kind="model", path=path, options=options)
     name, _, rest = text.partition(":")
     name = name.strip().lower()
     filters.get_filter(name)
