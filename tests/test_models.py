@@ -483,3 +483,35 @@ def test_a_written_file_that_reads_back_wrong_never_replaces_the_old_one(tmp_pat
     assert str(path) in str(exc.value) and "\n" not in str(exc.value)
     assert path.read_bytes() == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["m.safetensors"]  # no temporary file left
+
+
+def test_info_describes_a_model_file_as_outside_readers_see_it(tmp_path, capsys):
+    # `despeck info MODEL`: size and SHA-256 agree with the file system and Python's
+    # hashlib (FIPS 180-4), the parameter count with the tensors the safetensors reader
+    # lists, the architecture and looks with the stored header; text and JSON.
+    import hashlib
+    import os
+
+    from safetensors import safe_open
+
+    from despeck.cli import main
+    from despeck.models import bundled_model_path
+
+    path = bundled_model_path("starter")
+    assert main(["info", "starter", "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    with safe_open(str(path), framework="pt") as f:
+        count = sum(math.prod(f.get_slice(k).get_shape()) for k in f.keys())
+    assert d["bytes"] == os.path.getsize(path)
+    assert d["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
+    assert d["parameters"] == count
+    header = read_model_metadata(path)
+    assert d["architecture"]["name"] == header["architecture"]["name"] and d["looks"] == header["looks"]
+    assert set(d["bias_tables"]) == {"32", "bf16"} and d["looks_aware"] and d["training"]["epochs"] > 0
+    small = save_model_file(tmp_path / "plain.safetensors", Despeckler(create_model("logcnn-xs"), looks=4, log_bias=0.1))
+    assert main(["info", str(small)]) == 0
+    text = capsys.readouterr().out
+    assert "logcnn-xs" in text and "looks 4 to 4" in text and f"one correction, {10 * 0.1 / math.log(10):+.3f} dB" in text
+    assert main(["info", str(tmp_path / "missing.safetensors")]) == 1
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "missing.safetensors does not exist" in err[0]

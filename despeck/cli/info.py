@@ -1,4 +1,4 @@
-"""``despeck info``: describe a SAR raster before processing it.
+"""``despeck info``: describe a SAR raster before processing it, or a model file.
 
 Prints size, bands, data type, CRS, pixel size, nodata value and the fraction of
 invalid pixels, the units the scene will be read in (and why), and per band the
@@ -7,6 +7,11 @@ columns, with how each was obtained (recorded tag, or measured on automatically 
 homogeneous blocks of full-resolution windows; :mod:`despeck.looks`). The invalid
 fraction of large scenes comes from a decimated sample of about a million pixels,
 which the output says.
+
+Given a model file (``.safetensors``) or a bundled model's name (``starter``), it
+describes the model instead: network, parameters, receptive field, looks range and
+conditioning, bias calibration, point guard and how it was trained
+(:func:`despeck.models.describe_model_file`).
 """
 
 from __future__ import annotations
@@ -27,7 +32,8 @@ log = logging.getLogger(__name__)
 
 
 def add_arguments(parser):
-    parser.add_argument("scene", metavar="SCENE", help="raster to describe")
+    parser.add_argument("scene", metavar="SCENE", help="raster to describe, or a model file (.safetensors) or "
+                                                       "bundled model name")
     parser.add_argument("--units", choices=raster.UNITS, default=None,
                         help="units of the values (default: detected, else linear intensity)")
     parser.add_argument("--json", action="store_true", help="print one JSON object instead of text")
@@ -77,7 +83,57 @@ def describe(path, *, units=None, max_pixels=SAMPLE_PIXELS) -> dict:
     return info
 
 
+def _is_model(name) -> bool:
+    import pathlib
+
+    from ..models import BUNDLED_MODELS
+
+    path = pathlib.Path(name)
+    return path.suffix.lower() == ".safetensors" or (name in BUNDLED_MODELS and not path.exists())
+
+
+def _model_lines(d) -> list:
+    arch = d["architecture"]
+    widths = arch["kwargs"].get("widths")
+    shape = f", widths {'-'.join(map(str, widths))}" if widths else ""
+    lo, hi = d["looks"]
+    if d["looks_aware"]:
+        told = ("told the looks and the speckle correlation"
+                + ("; runs without the correlation where it is not known" if d["runs_blind"] else ""))
+    else:
+        told = "not told the looks (trained for this range)"
+    lines = [
+        f"model        {d['path']} ({d['bytes'] / 1e6:.1f} MB, SHA-256 {d['sha256'][:16]}...)",
+        f"network      {arch['name']}{shape}: {d['parameters']:,} parameters, receptive field {d['receptive_field']} px",
+        f"input        {d['units']}, looks {lo:g} to {hi:g}; {told}",
+    ]
+    if d["bias_tables"]:
+        parts = [f"{'float32' if k == '32' else 'bfloat16'} {t['looks']} looks x {t['corr']} correlations "
+                 f"({t['min_db']:+.3f} to {t['max_db']:+.3f} dB)" for k, t in d["bias_tables"].items()]
+        lines.append(f"bias         tables: {'; '.join(parts)}")
+    else:
+        lines.append(f"bias         one correction, {d['log_bias_db']:+.3f} dB")
+    pfa = d["point_false_alarm"]
+    lines.append(f"points       {'guard at false-alarm rate %g' % pfa if pfa is not None else 'no point guard'}")
+    t = d["training"]
+    if t:
+        init = f", started from {t['init']}" if t.get("init") else ""
+        lines.append(f"training     {t.get('mode')}, {t.get('epochs')} epochs ({t.get('steps')} steps), precision "
+                     f"{t.get('precision')}, stopped by {t.get('stopped_by')}{init}")
+    v = d["validation"]
+    if v and v.get("val_psnr_db") is not None:
+        lines.append(f"validation   PSNR {v['val_psnr_db']:.2f} dB (speckled {v.get('val_psnr_noisy_db', float('nan')):.2f}), "
+                     f"SSIM {v.get('val_ssim_db', float('nan')):.3f}, at epoch {v.get('epoch')}")
+    return lines
+
+
 def run(args) -> int:
+    if _is_model(args.scene):
+        from ..models import describe_model_file, resolve_model_path
+
+        d = describe_model_file(resolve_model_path(args.scene))
+        print(json.dumps(d, indent=2) if args.json else "\n".join(_model_lines(d)))
+        return OK
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", raster.UnitsWarning)
         info = describe(args.scene, units=args.units)

@@ -34,7 +34,7 @@ _LAZY_NAMES = {
     "Despeckler": "wrapper", "DEFAULT_LOG_SCALE": "wrapper", "CONDITION_CHANNELS": "wrapper",
     "LogCNN": "logcnn", "UNet": "unet",
     "FORMAT_VERSION": "modelfile", "load_model_file": "modelfile", "read_model_metadata": "modelfile",
-    "save_model_file": "modelfile",
+    "save_model_file": "modelfile", "describe_model_file": "modelfile",
 }
 
 
@@ -71,5 +71,6 @@ __all__ = [
     "save_model_file",
     "load_model_file",
     "read_model_metadata",
+    "describe_model_file",
     "FORMAT_VERSION",
 ]

@@ -41,7 +41,8 @@ from ..provenance import file_sha256
 from .registry import create_model, list_models, weight_shapes
 from .wrapper import Despeckler
 
-__all__ = ["save_model_file", "load_model_file", "read_model_metadata", "FORMAT_NAME", "FORMAT_VERSION"]
+__all__ = ["save_model_file", "load_model_file", "read_model_metadata", "describe_model_file", "FORMAT_NAME",
+           "FORMAT_VERSION"]
 
 FORMAT_NAME = "despeck-model"
 FORMAT_VERSION = 1
@@ -377,3 +378,56 @@ def load_model_file(path) -> Despeckler:
         raise ModelFileError(f"{path} cannot be read again to compute its SHA-256 ({exc.strerror or exc})") from None
     despeckler.eval()
     return despeckler
+
+
+def describe_model_file(path) -> dict:
+    """What a model file holds, as plain data (what ``despeck info MODEL`` prints).
+
+    The file is loaded as :func:`load_model_file` loads it (every check, no code run),
+    so a file this describes is a file ``apply`` can use. Keys: ``path``, ``bytes``,
+    ``sha256``, ``architecture`` (name and arguments), ``parameters``,
+    ``receptive_field``, ``looks`` (range), ``looks_aware`` (told the looks and the
+    speckle correlation), ``runs_blind`` (also trained without the correlation),
+    ``units``, ``bias_tables`` (``{"32" | "bf16": {"looks": n, "corr": n, "min_db",
+    "max_db"}}``, empty for a single ``log_bias``), ``log_bias_db``,
+    ``point_false_alarm``, ``training`` (mode, epochs, steps, stopped_by, precision,
+    init; None when not recorded), ``validation`` (the exported checkpoint's metrics)
+    and ``package_version``.
+    """
+    path = Path(path)
+    model = load_model_file(path)
+    meta = model.metadata
+    net = model.network
+    db = 10 / math.log(10)
+    tables = {}
+    for key, table in (("32", model.log_bias_table), ("bf16", model.log_bias_table_bf16)):
+        if table is not None:
+            values = [v for row in table["values"] for v in row]
+            tables[key] = {"looks": len(table["looks"]), "corr": len(table["corr"]),
+                           "min_db": db * min(values), "max_db": db * max(values)}
+    training = meta.get("training")
+    if isinstance(training, dict):
+        config = training.get("config") if isinstance(training.get("config"), dict) else {}
+        model_cfg = config.get("model") if isinstance(config.get("model"), dict) else {}
+        training = {k: training.get(k) for k in ("mode", "epochs", "steps", "stopped_by", "precision")}
+        training["init"] = model_cfg.get("init")
+    else:
+        training = None
+    return {
+        "path": str(path),
+        "bytes": path.stat().st_size,
+        "sha256": model.source_sha256,
+        "architecture": {"name": net.architecture, "kwargs": dict(net.architecture_kwargs)},
+        "parameters": int(sum(p.numel() for p in net.parameters())),
+        "receptive_field": int(net.receptive_field),
+        "looks": list(model.looks_range),
+        "looks_aware": bool(model.conditioned),
+        "runs_blind": bool(model.correlation_unknown),
+        "units": meta.get("units", "intensity"),
+        "bias_tables": tables,
+        "log_bias_db": db * model.log_bias,
+        "point_false_alarm": model.point_false_alarm,
+        "training": training,
+        "validation": meta.get("metrics") if isinstance(meta.get("metrics"), dict) else None,
+        "package_version": meta.get("package_version"),
+    }
