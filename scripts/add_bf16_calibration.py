@@ -9,7 +9,7 @@ float32 table are unchanged. It takes about 30 s for the bundled starter on two 
 
 Usage::
 
-    python scripts/add_bf16_calibration.py IN.safetensors OUT.safetensors [--seed N]
+    python scripts/add_bf16_calibration.py IN.safetensors OUT.safetensors [--seed N] [--overwrite]
 """
 
 from __future__ import annotations
@@ -30,10 +30,13 @@ def main(argv=None) -> int:
     p.add_argument("model", type=pathlib.Path)
     p.add_argument("out", type=pathlib.Path)
     p.add_argument("--seed", type=int, default=0, help="seed of the simulated patches (default 0)")
+    p.add_argument("--overwrite", action="store_true", help="replace OUT if it exists")
     args = p.parse_args(argv)
     try:
         if args.out.resolve() == args.model.resolve():
             raise DespeckError(f"{args.out}: the output must be a new file, not the model itself")
+        if args.out.exists() and not args.overwrite:
+            raise DespeckError(f"{args.out} exists; use --overwrite to replace it")
         model = load_model_file(args.model)
         model.log_bias_table_bf16 = bf16_table_for(model, seed=args.seed)
         save_model_file(args.out, model)  # a temporary file, read back and compared, then renamed

@@ -10,7 +10,7 @@ them again.
 
 Usage::
 
-    python scripts/deepen_model.py IN.safetensors OUT.safetensors [--width 128] [--seed 0]
+    python scripts/deepen_model.py IN.safetensors OUT.safetensors [--width 128] [--seed 0] [--overwrite]
 """
 
 from __future__ import annotations
@@ -30,11 +30,14 @@ def main(argv=None) -> int:
     p.add_argument("out", type=pathlib.Path)
     p.add_argument("--width", type=int, default=128, help="channels of the new bottleneck (default 128)")
     p.add_argument("--seed", type=int, default=0, help="seed of the new level's random weights (default 0)")
+    p.add_argument("--overwrite", action="store_true", help="replace OUT if it exists")
     args = p.parse_args(argv)
     try:
         source = resolve_model_path(args.model)
         if args.out.resolve() == pathlib.Path(source).resolve():
             raise DespeckError(f"{args.out}: the output must be a new file, not the model itself")
+        if args.out.exists() and not args.overwrite:
+            raise DespeckError(f"{args.out} exists; use --overwrite to replace it")
         model = load_model_file(source)
         network = deepened(model.network, args.width, seed=args.seed)
         deep = Despeckler(network, looks=model.looks, log_bias=model.log_bias, log_scale=model.log_scale,

@@ -199,10 +199,13 @@ def test_deepen_script_writes_a_model_file_with_the_same_output(tmp_path):
         with pytest.raises(SystemExit) as done:
             runpy.run_path(script, run_name="__main__")
         assert done.value.code == 0
-        sys.argv = [script, str(src), str(src)]
-        with pytest.raises(SystemExit) as refused:
-            runpy.run_path(script, run_name="__main__")
-        assert refused.value.code == 2
+        made = out.read_bytes()
+        for args in ([str(src), str(src)], [str(src), str(out)]):  # itself; an existing file without --overwrite
+            sys.argv = [script, *args]
+            with pytest.raises(SystemExit) as refused:
+                runpy.run_path(script, run_name="__main__")
+            assert refused.value.code == 2
+        assert out.read_bytes() == made
     finally:
         sys.argv = argv
     a, b = load_model_file(src), load_model_file(out)
