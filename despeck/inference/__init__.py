@@ -36,7 +36,8 @@ from __future__ import annotations
 from ..cpu import bf16_supported  # re-exported: callers know it here
 from .condition import condition_for_model, model_mismatch_notes
 from .despeckle import despeckle_array, despeckle_file
-from .runner import check_orientations, resolve_bf16
+from ..models.orientations import check_orientations  # re-exported beside the other run settings
+from .runner import resolve_bf16
 from .tiles import MAX_TILE, InferenceWarning, array_sample, max_overlap, resolve_tiling
 
 __all__ = [

@@ -15,9 +15,10 @@ import numpy as np
 
 from ..cpu import usable_cores
 from ..errors import InputError
+from ..models.orientations import check_orientations
 from .blend import TileBlender, stream_tiles
 from .condition import condition_for_model, model_mismatch_notes
-from .runner import TileRunner, check_orientations, run_options, run_settings, torch_settings
+from .runner import TileRunner, run_options, run_settings, torch_settings
 from .tiles import InferenceWarning, SAMPLE_PIXELS, array_sample, check_model, positive_int, resolve_tiling, scene_offset
 
 __all__ = ["despeckle_array", "despeckle_file", "check_finite", "READ_ROWS"]

@@ -17,11 +17,10 @@ import numpy as np
 import torch
 
 from ..cpu import bf16_supported, precision_of, usable_cores
-from ..models.orientations import check_orientations
 from .tiles import InferenceWarning, positive_int
 
 __all__ = ["BATCH_PIXELS", "TRIAL_MIN_PIXELS", "TRIAL_SIDE", "torch_settings", "TileRunner", "resolve_bf16",
-           "check_orientations", "run_options", "run_settings"]
+           "run_options", "run_settings"]
 
 # Pixels per batch the default batch size aims for: enough work per call to keep both
 # cores busy, small enough that a 64-channel network's activations stay a few hundred MB
