@@ -358,7 +358,7 @@ def main(argv=None) -> int:
         family_scenes = list(scenes(fam, size, per_family))
         sources[fam] = sorted({s[4] for s in family_scenes}) + [s[0] for s in family_scenes]
         for ci, cond in enumerate(CONDITIONS):
-            pools = {m: new_pool() for m in methods + ["input"]}
+            pools = {m: new_pool() for m in methods + averaged + ["input"]}
             for si, (name, clean, boxes, points, _) in enumerate(family_scenes):
                 seed = NOISE_SEED + 1000 * ci + 10 * FAMILIES.index(fam) + si
                 noisy, reference = speckle(clean, cond, seed)
