@@ -76,8 +76,9 @@ def add_arguments(parser):
     parser.add_argument("--orientations", type=int, choices=ORIENTATIONS, default=1, metavar="{1,4,8}",
                         help="run the network on this many orientations of every tile (as it is; rows, columns or "
                              "both reversed; 8: those transposed too) and average: that many times the time for "
-                             "a cleaner estimate (bundled starter, 8: +0.16 to +0.34 dB PSNR on the project's "
-                             "scene matrix, mean kept; README). Default 1. The despeck_options tag records it")
+                             "a cleaner estimate (bundled starter, 8: +0.10 to +0.34 dB PSNR on the project's "
+                             "scene matrix, mean kept within 0.03 dB; README). Default 1. The despeck_options tag "
+                             "records it")
     parser.add_argument("--overwrite", action="store_true",
                         help="replace existing outputs (inputs are never overwritten)")
     parser.add_argument("--busy", choices=("skip", "fail"), default="skip",
