@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 
-from scipy import optimize, special
+from scipy import special
 
 from ..errors import InputError
 from .checks import check_looks
@@ -74,6 +74,8 @@ def amplitude_looks_from_cv(cv: float) -> float:
         return low
     if cv <= amplitude_cv(high):
         return high
+    from scipy import optimize  # here, not at import: it costs about 0.2 s on every command
+
     return float(optimize.brentq(lambda L: amplitude_cv(L) - cv, low, high, xtol=1e-10, rtol=1e-12))
 
 
@@ -125,4 +127,6 @@ def looks_from_log_iqr(iqr: float) -> float:
         return hi
     if f(lo) <= 0:
         return lo
+    from scipy import optimize
+
     return float(optimize.brentq(f, lo, hi, xtol=1e-6, rtol=1e-6))
