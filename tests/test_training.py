@@ -445,3 +445,28 @@ def test_killed_run_resumes_to_the_same_result(tiny_run, references, tmp_path):
     with pytest.raises(ConfigError, match="loss.name: 'gamma_nll' differs from 'mse_log'"):
         train(changed, resume=True, progress=False)
     shutil.rmtree(out)
+
+
+def test_validation_seed_fixes_the_validation_patches_across_training_seeds():
+    # data.val_seed: runs with different trainer.seed on the same reference files
+    # validate on the same patches and speckle (comparable measures); null keeps
+    # following trainer.seed.
+    from despeck.training.data import ValidationSet
+    from despeck.training.references import make_reference
+
+    rng = np.random.default_rng(0)
+    clean = rng.uniform(0.2, 2.0, (160, 96)).astype(np.float32)
+    ref = make_reference("ref", clean, np.ones(clean.shape, bool), 32, 1.0, 48, "train")
+
+    def patches(*overrides):
+        cfg = load_config(TINY, list(overrides))  # the references are given: its procedural scenes are not made
+        return [it["noisy"].numpy() for it in ValidationSet([ref], cfg).items]
+
+    a = patches("trainer.seed=1", "data.val_seed=7")
+    b = patches("trainer.seed=2", "data.val_seed=7")
+    assert all(np.array_equal(x, y) for x, y in zip(a, b))
+    c, d = patches("trainer.seed=1"), patches("trainer.seed=2")
+    assert not all(np.array_equal(x, y) for x, y in zip(c, d))
+    assert all(np.array_equal(x, y) for x, y in zip(c, patches("trainer.seed=1", "data.val_seed=1")))
+    with pytest.raises(ConfigError, match="data.val_seed"):
+        load_config(TINY, ["data.val_seed=-1"])

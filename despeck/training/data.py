@@ -103,7 +103,7 @@ class ValidationSet(Dataset):
                 f"{c.data.patch_size} rows below its training area (rasters need at least "
                 f"{2 * c.data.patch_size} valid rows); list data.validation files or use taller rasters"
             )
-        rng = np.random.default_rng([c.trainer.seed, 2])
+        rng = np.random.default_rng([c.validation_seed, 2])
         cum = np.cumsum([r.val.total for r in refs])
         looks = self.looks = validation_looks(c)
         p = c.data.patch_size

@@ -128,7 +128,7 @@ class PairValidationSet(Dataset):
                 f"{p}x{p} patch that is valid and at least {MIN_KEPT_FRACTION:.0%} unchanged; "
                 "raise data.val_fraction or lower data.patch_size"
             )
-        rng = np.random.default_rng([c.trainer.seed, 2])
+        rng = np.random.default_rng([c.validation_seed, 2])
         cum = np.cumsum([s.val.total for s in refs])
         items = []
         for _ in range(c.data.val_patches):

@@ -141,6 +141,11 @@ class DataConfig(_Section):
     patches_per_epoch: Integer = _limit(2048, "a positive integer", ge=1)
     val_patches: Integer = _limit(64, "a positive integer", ge=1)
     val_fraction: Number = _limit(0.15, "between 0 and 1 (exclusive)", gt=0, lt=1)
+    #: seed of the validation patches (positions, speckle, sub-look pairs); null:
+    #: trainer.seed. Fixed, runs of different trainer.seed on the same files validate on
+    #: the same patches, so their validation measures compare (procedural scenes still
+    #: follow trainer.seed)
+    val_seed: Optional[Integer] = _limit(None, ">= 0 or null", ge=0)
     min_valid_fraction: Number = _limit(1.0, "in (0, 1]", gt=0, le=1)
     augment: Flag = True
     offset_jitter: Number = _limit(0.3, ">= 0 (nepers)", ge=0)
@@ -411,6 +416,11 @@ class TrainConfig(_Section):
     def _combinations(self):
         _check_combinations(self)
         return self
+
+    @property
+    def validation_seed(self) -> int:
+        """Seed of the validation patches: ``data.val_seed``, else ``trainer.seed``."""
+        return self.trainer.seed if self.data.val_seed is None else self.data.val_seed
 
 
 # --------------------------------------------------------------------------- checks and errors
