@@ -149,6 +149,32 @@ output: {{dir: {tmp_path / 'run'}}}
         train(load_config(tmp_path / "bad.yaml"))
 
 
+def test_fine_tune_starts_from_a_deepened_model_file(tmp_path, model):
+    # scripts/deepen_model.py's network (one more level, no registered name for these
+    # widths) is named in a config by its family name and widths; training starts from
+    # exactly its weights.
+    from despeck.models.unet import deepened
+    from despeck.training import load_config
+    from despeck.training.trainer import train
+
+    deep = Despeckler(deepened(model.network, 24), looks=model.looks)
+    assert deep.network.architecture == "unet-cond-xs" and deep.network.widths == [8, 16, 24]
+    donor = save_model_file(tmp_path / "deep.safetensors", deep)
+    (tmp_path / "c.yaml").write_text(f"""
+data: {{synthetic_scenes: 1, synthetic_size: 96, patch_size: 32, batch_size: 4, patches_per_epoch: 8, val_patches: 4}}
+model: {{name: unet-cond-xs, kwargs: {{widths: [8, 16, 24]}}, init: {donor}}}
+speckle: {{looks: [1, 4]}}
+budget: {{max_steps: 1}}
+trainer: {{threads: 1, progress: false}}
+output: {{dir: {tmp_path / 'run'}}}
+""")
+    cfg = load_config(tmp_path / "c.yaml")
+    cfg.optim.lr = 1e-12
+    tuned = load_model_file(train(cfg).model_path)
+    assert tuned.network.widths == [8, 16, 24]
+    for (k, a), b in zip(deep.network.state_dict().items(), tuned.network.state_dict().values()):
+        torch.testing.assert_close(a, b, atol=1e-6, rtol=0, msg=k)
+
 def test_blind_mode_when_the_correlation_is_not_trusted(model):
     from despeck.looks import SpeckleCorrelation
     from despeck.inference import condition_for_model
