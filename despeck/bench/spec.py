@@ -94,9 +94,7 @@ def parse_method(spec, base=None) -> Method:
         head, sep, value = raw.rpartition(",orientations=")
         if sep:  # model:PATH,orientations=N (despeck apply --orientations)
             try:
-                options["orientations"] = check_orientations(int(value))
-            except ValueError:
-                raise InputError(f"method {text!r}: orientations must be 1, 4 or 8, got {value!r}") from None
+                options["orientations"] = check_orientations(int(value) if value.strip().isdigit() else value)
             except InputError as exc:
                 raise InputError(f"method {text!r}: {exc}") from None
             raw, label = head, f" x{options['orientations']} orientations"
