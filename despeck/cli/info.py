@@ -23,6 +23,7 @@ import warnings
 
 from .. import looks as looks_mod
 from .. import raster
+from ..cpu import PRECISION_NAMES
 from ..errors import InputError
 from .exit_codes import OK
 
@@ -108,7 +109,7 @@ def _model_lines(d) -> list:
         f"input        {d['units']}, looks {lo:g} to {hi:g}; {told}",
     ]
     if d["bias_tables"]:
-        parts = [f"{'float32' if k == '32' else 'bfloat16'} {t['looks']} looks x {t['corr']} correlations "
+        parts = [f"{PRECISION_NAMES.get(k, k)} {t['looks']} looks x {t['corr']} correlations "
                  f"({t['min_db']:+.3f} to {t['max_db']:+.3f} dB)" for k, t in d["bias_tables"].items()]
         lines.append(f"bias         tables: {'; '.join(parts)}")
     else:
@@ -118,8 +119,9 @@ def _model_lines(d) -> list:
     t = d["training"]
     if t:
         init = f", started from {t['init']}" if t.get("init") else ""
-        lines.append(f"training     {t.get('mode')}, {t.get('epochs')} epochs ({t.get('steps')} steps), precision "
-                     f"{t.get('precision')}, stopped by {t.get('stopped_by')}{init}")
+        lines.append(f"training     {t.get('mode')}, {t.get('epochs')} epochs ({t.get('steps')} steps) in "
+                     f"{PRECISION_NAMES.get(t.get('precision'), t.get('precision'))}, stopped by {t.get('stopped_by')}"
+                     f"{init}")
     v = d["validation"]
     if v and v.get("val_psnr_db") is not None:
         lines.append(f"validation   PSNR {v['val_psnr_db']:.2f} dB (speckled {v.get('val_psnr_noisy_db', float('nan')):.2f}), "
