@@ -259,30 +259,31 @@ def markdown(result):
     lines.append(f"\nModel: `{result['model']}`; scenes {result['size']} x {result['size']}, "
                  f"{result['per_family']} per family; targets: model >= best classical + {TARGETS['margin_db']} dB, "
                  f"|bias| <= {TARGETS['abs_bias_db']} dB, |median point change| <= {TARGETS['abs_point_median_db']} dB.")
-    lines.append("\n### Model margin over the best classical method (dB-domain PSNR)\n")
-    lines.append("| family | " + " | ".join(conds) + " |")
-    lines.append("|---|" + "---|" * len(conds))
-    for fam in fams:
-        row = []
-        for c in conds:
-            cell = cells[f"{fam} / {c}"]
-            failed = [k for k, ok in cell["pass"].items() if not ok]
-            mark = "pass" if not failed else "FAIL " + ",".join(failed)
-            row.append(f"{cell['margin_db']:+.2f} vs {cell['best_classical']} ({mark})")
-        lines.append(f"| {fam} | " + " | ".join(row) + " |")
-    for m in result.get("averaged", []):
-        lines.append(f"\n### {m} (the model averaged over {m[len('model-o'):]} orientations): margin over the best "
-                     "classical method\n")
+
+    def matrix(title, text):
+        """A family x condition table under ``title``; ``text(cell)`` fills each entry."""
+        lines.append(f"\n### {title}\n")
         lines.append("| family | " + " | ".join(conds) + " |")
         lines.append("|---|" + "---|" * len(conds))
         for fam in fams:
-            row = []
-            for c in conds:
-                cell = cells[f"{fam} / {c}"]
-                s = cell["methods"][m]
-                row.append(f"{cell[f'margin_{m}_db']:+.2f} (bias {fmt(s['bias_db'], '+.3f')}, points "
-                           f"{fmt(s['points_median_db'], '+.1f')} / {fmt(s['points_worst_db'], '+.1f')})")
-            lines.append(f"| {fam} | " + " | ".join(row) + " |")
+            lines.append(f"| {fam} | " + " | ".join(text(cells[f"{fam} / {c}"]) for c in conds) + " |")
+
+    def margin(cell):
+        failed = [k for k, ok in cell["pass"].items() if not ok]
+        mark = "pass" if not failed else "FAIL " + ",".join(failed)
+        return f"{cell['margin_db']:+.2f} vs {cell['best_classical']} ({mark})"
+
+    def averaged_margin(m):
+        def text(cell):
+            s = cell["methods"][m]
+            return (f"{cell[f'margin_{m}_db']:+.2f} (bias {fmt(s['bias_db'], '+.3f')}, points "
+                    f"{fmt(s['points_median_db'], '+.1f')} / {fmt(s['points_worst_db'], '+.1f')})")
+        return text
+
+    matrix("Model margin over the best classical method (dB-domain PSNR)", margin)
+    for m in result.get("averaged", []):
+        matrix(f"{m} (the model averaged over {m[len('model-o'):]} orientations): margin over the best "
+               "classical method", averaged_margin(m))
     lines.append("\n### Model and best classical per cell\n")
     lines.append("| cell | method | PSNR dB | SSIM | edge corr | bias dB vs reference (input's own) | bias dB vs input "
                  "| points median / worst dB | time s |")
