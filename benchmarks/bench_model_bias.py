@@ -47,7 +47,7 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 import bench_starter as bs  # noqa: E402  (its scenes, conditions and speckle)
 
 from despeck.inference import despeckle_array  # noqa: E402
-from despeck.models import load_model_file  # noqa: E402
+from despeck.models import ORIENTATIONS, load_model_file  # noqa: E402
 
 TARGET_DB = bs.TARGETS["abs_bias_db"]  # the bias target, owned by the starter benchmark
 
@@ -67,7 +67,7 @@ def main(argv=None) -> int:
                    help="only these families (default: all)")
     p.add_argument("--conditions", nargs="+", choices=[c["name"] for c in bs.CONDITIONS],
                    default=[c["name"] for c in bs.CONDITIONS], help="only these conditions (default: all)")
-    p.add_argument("--orientations", type=int, choices=(1, 4, 8), default=1,
+    p.add_argument("--orientations", type=int, choices=ORIENTATIONS, default=1,
                    help="average the model over this many orientations of each tile (default 1)")
     args = p.parse_args(argv)
     if args.draws < 2:

@@ -83,7 +83,7 @@ bm3d_log = importlib.import_module("despeck.filters.bm3d_log")  # the module, no
 from despeck.cpu import cpu_description  # noqa: E402
 from despeck.cpu import PRECISION_NAMES, precision_of  # noqa: E402
 from despeck.inference import despeckle_array, resolve_bf16  # noqa: E402
-from despeck.models import load_model_file  # noqa: E402
+from despeck.models import ORIENTATIONS, load_model_file  # noqa: E402
 from despeck.speckle import psf_intensity_kernel, simulate_correlated_intensity, simulate_intensity  # noqa: E402
 
 FAMILIES = ("terrain", "fields", "urban", "wetland", "natural")
@@ -328,7 +328,7 @@ def main(argv=None) -> int:
     parser.add_argument("--size", type=int, default=None, help="scene side (default 384; quick 192)")
     parser.add_argument("--per-family", type=int, default=None, help="scenes per family (default 2; quick 1)")
     parser.add_argument("--no-speed", action="store_true", help="skip the inference-speed measurement")
-    parser.add_argument("--orientations", type=int, choices=(4, 8), default=None,
+    parser.add_argument("--orientations", type=int, choices=[n for n in ORIENTATIONS if n > 1], default=None,
                         help="also run the model averaged over this many orientations (method model-o4 / model-o8)")
     parser.add_argument("--out", default=None, help="JSON path (default bench_output/bench_starter_<model>.json)")
     args = parser.parse_args(argv)
