@@ -22,7 +22,8 @@ part of the difference in mean squared error over the scene (dB², positive wher
 model loses; the parts add up to the whole scene's). Beside them, the scene's total
 intensity after each method against the reference's, ``10 log10(sum estimate / sum
 reference)`` over all valid pixels: the radiometry of the whole scene, bright scatterers
-included, which a dB-domain PSNR does not weigh (the input's own value beside it). The error is taken
+included, which a dB-domain PSNR does not weigh (the input's own value beside it), and
+each region's intensity after each method against the input's on the same pixels. The error is taken
 over valid pixels with both estimates clipped to the reference's 1st-99.9th percentile dB
 range, as :func:`despeck.metrics.fidelity` does for PSNR.
 
@@ -104,6 +105,7 @@ def cell_analysis(model, family, ci, against, size, count):
     sums = {k: {"model": 0.0, "against": 0.0, "n": 0} for k in REGIONS + ("all",)}
     band_sums = {"model": np.zeros(len(BAND_NAMES)), "against": np.zeros(len(BAND_NAMES)), "n": 0}
     totals = {"model": 0.0, "against": 0.0, "input": 0.0, "reference": 0.0}
+    region_totals = {k: {"model": 0.0, "against": 0.0, "input": 0.0} for k in REGIONS}
     first = None
     for si, (name, clean, boxes, points, _) in enumerate(matrix.scenes(family, size, count)):
         seed = matrix.NOISE_SEED + 1000 * ci + 10 * matrix.FAMILIES.index(family) + si
@@ -125,6 +127,9 @@ def cell_analysis(model, family, ci, against, size, count):
         band_sums["n"] += int(ok.sum())
         for key, a in (("model", est_m), ("against", est_a), ("input", noisy), ("reference", ref)):
             totals[key] += float(np.sum(a[ok], dtype=np.float64))
+            if key != "reference":
+                for k in REGIONS:
+                    region_totals[k][key] += float(np.sum(a[ok & masks[k]], dtype=np.float64))
         if first is None:
             first = {"name": name, "reference": ref, "noisy": noisy, "model": est_m, "against": est_a,
                      "gap": ndimage.gaussian_filter(e_m ** 2 - e_a ** 2, 3.0)}
@@ -145,8 +150,11 @@ def cell_analysis(model, family, ci, against, size, count):
                   "gain_db": gain_db(band_sums["against"][i], band_sums["model"][i])}
              for i, bn in enumerate(BAND_NAMES)}
     total_db = {k: float(10 * np.log10(totals[k] / totals["reference"])) for k in ("model", "against", "input")}
+    # each region's intensity after a method against the speckled input's on the same pixels
+    versus_input = {k: {m: float(10 * np.log10(t[m] / t["input"])) if t["input"] > 0 else None
+                        for m in ("model", "against")} for k, t in region_totals.items()}
     return {"family": family, "condition": cond["name"], "regions": regions, "bands": scale,
-            "scene_total_db": total_db}, first
+            "scene_total_db": total_db, "region_total_vs_input_db": versus_input}, first
 
 
 def figure(path, sample, cell, against):
@@ -198,6 +206,14 @@ def markdown(result):
                    + " | ".join(f"{r[k]['pixel_share']:.0%}" for k in REGIONS) + " | "
                    + " | ".join(f"{r[k]['gap_db2']:+.3f}" for k in REGIONS) + " | "
                    + " | ".join(f"{c['scene_total_db'][k]:+.2f}" for k in ("model", "against", "input")) + " |")
+    out += ["", f"Intensity per region after the model / {a}, against the speckled input's on the same pixels "
+            "(dB; the flat column is the bias measure's ground):", "",
+            "| family | condition | " + " | ".join(REGIONS) + " |", "|---|---|" + "---|" * len(REGIONS)]
+    for c in result["cells"]:
+        v = c["region_total_vs_input_db"]
+        out.append(f"| {c['family']} | {c['condition']} | "
+                   + " | ".join(f"{g(v[k]['model'])} / {g(v[k]['against'])}" if v[k]["model"] is not None else ""
+                                for k in REGIONS) + " |")
     out += ["", "Gain by scale of the error (dB):", "",
             "| family | condition | " + " | ".join(BAND_NAMES) + " |",
             "|---|---|" + "---|" * len(BAND_NAMES)]
