@@ -33,7 +33,11 @@ smoothed over 3 pixels).
 
 Usage::
 
-    python benchmarks/bench_error_regions.py [--model FILE] [--against METHOD] [--size N] [--per-family K]
+    python benchmarks/bench_error_regions.py [--model FILE] [--against METHOD] [--split train] [--size N] [--per-family K]
+
+``--split train`` draws the same seeds from the training split's parameter ranges (new
+scenes, not training images; terrain, fields and urban): where the model also loses
+there, the loss is a limit of the network rather than a failure to generalise.
 
 Writes ``bench_output/error_regions_<model stem>.json``, ``.md`` and ``.png``; about 3
 minutes on two idle cores with BM3D.
@@ -56,6 +60,7 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 import bench_starter as matrix  # noqa: E402  (the held-out scenes, speckle and methods)
 
 from despeck.models import load_model_file  # noqa: E402
+from despeck.scene_families import TRAINING_FAMILIES as TRAIN_SPLIT_FAMILIES  # noqa: E402
 
 REGIONS = ("flat", "edges", "texture")
 BAND_SIGMAS = (1, 2, 4, 8)
@@ -100,14 +105,29 @@ def gain_db(mse_against, mse_model):
     return float(10 * np.log10(mse_against / mse_model)) if mse_model > 0 and mse_against > 0 else None
 
 
-def cell_analysis(model, family, ci, against, size, count):
+def scenes(family, size, count, split):
+    """``bench_starter.py``'s held-out scenes, or with ``split="train"`` the same seeds drawn
+    from the training split's parameter ranges (new scenes, not training images; no wetland,
+    which has no training split, and no natural pictures)."""
+    if split == "test":
+        yield from matrix.scenes(family, size, count)
+        return
+    from despeck.scene_families import make_family_scene
+
+    for i in range(count):
+        seed = matrix.SCENE_SEED + 10 * matrix.FAMILIES.index(family) + i
+        clean, layout = make_family_scene(family, (size, size), rng=seed, split="train", return_layout=True)
+        yield f"{family}-{seed}-train", clean, list(layout.homogeneous_boxes), list(layout.points), "train split"
+
+
+def cell_analysis(model, family, ci, against, size, count, split="test"):
     cond = matrix.CONDITIONS[ci]
     sums = {k: {"model": 0.0, "against": 0.0, "n": 0} for k in REGIONS + ("all",)}
     band_sums = {"model": np.zeros(len(BAND_NAMES)), "against": np.zeros(len(BAND_NAMES)), "n": 0}
     totals = {"model": 0.0, "against": 0.0, "input": 0.0, "reference": 0.0}
     region_totals = {k: {"model": 0.0, "against": 0.0, "input": 0.0} for k in REGIONS}
     first = None
-    for si, (name, clean, boxes, points, _) in enumerate(matrix.scenes(family, size, count)):
+    for si, (name, clean, boxes, points, _) in enumerate(scenes(family, size, count, split)):
         seed = matrix.NOISE_SEED + 1000 * ci + 10 * matrix.FAMILIES.index(family) + si
         noisy, ref = matrix.speckle(clean, cond, seed)
         valid = np.isfinite(noisy) & (noisy > 0)
@@ -231,6 +251,10 @@ def main(argv=None) -> int:
                         help="classical method (default bm3d-log when installed, else refined-lee)")
     parser.add_argument("--size", type=int, default=384, help="scene side (default 384, as bench_starter.py)")
     parser.add_argument("--per-family", type=int, default=2, help="scenes per family (default 2)")
+    parser.add_argument("--split", choices=("test", "train"), default="test",
+                        help="test: bench_starter.py's held-out scenes (default); train: the same seeds drawn from "
+                             "the training split's parameters (terrain, fields, urban), to tell a limit of the "
+                             "network from a failure to generalise")
     parser.add_argument("--out", default=None, help="output stem (default bench_output/error_regions_<model>)")
     args = parser.parse_args(argv)
     against = args.against or ("bm3d-log" if matrix.bm3d_log.available() else "refined-lee")
@@ -242,9 +266,10 @@ def main(argv=None) -> int:
     model = load_model_file(args.model)
     start = time.perf_counter()
     cells, worst = [], None
-    for family in matrix.FAMILIES:
+    families = matrix.FAMILIES if args.split == "test" else [f for f in TRAIN_SPLIT_FAMILIES if f in matrix.FAMILIES]
+    for family in families:
         for ci in range(len(matrix.CONDITIONS)):
-            cell, sample = cell_analysis(model, family, ci, against, args.size, args.per_family)
+            cell, sample = cell_analysis(model, family, ci, against, args.size, args.per_family, args.split)
             cells.append(cell)
             gain = cell["regions"]["all"]["gain_db"]
             print(f"{family:8s} {cell['condition']:9s} all {gain:+.2f} dB  "
@@ -252,10 +277,13 @@ def main(argv=None) -> int:
                               if cell["regions"][k]["gain_db"] is not None), flush=True)
             if worst is None or gain < worst[0]["regions"]["all"]["gain_db"]:
                 worst = (cell, sample)
-    stem = pathlib.Path(args.out) if args.out else ROOT / "bench_output" / f"error_regions_{pathlib.Path(args.model).stem}"
+    suffix = "_train" if args.split == "train" else ""
+    stem = pathlib.Path(args.out) if args.out else ROOT / "bench_output" / f"error_regions_{pathlib.Path(args.model).stem}{suffix}"
     stem.parent.mkdir(parents=True, exist_ok=True)
     result = {"model": pathlib.Path(args.model).name, "against": against,
-              "scenes": f"{args.per_family} scene(s) of {args.size} x {args.size} per family, bench_starter.py's seeds",
+              "scenes": f"{args.per_family} scene(s) of {args.size} x {args.size} per family, bench_starter.py's seeds"
+                        + (", training-split parameters" if args.split == "train" else ", held out"),
+              "split": args.split,
               "cpu": matrix.cpu_info(),
               "seconds": time.perf_counter() - start, "cells": cells}
     stem.with_suffix(".json").write_text(json.dumps(result, indent=1))
