@@ -5,7 +5,8 @@ seeds), the squared dB-domain error of the model (default path, as ``bench_start
 runs it) and of one classical method (``--against``, default log-domain BM3D when the
 optional ``bm3d`` package is installed, else the refined Lee filter) is split two ways:
 
-- **by region** of the clean reference: ``flat`` (the homogeneous boxes ``bench_starter.py``
+- **by region** of the clean reference (:func:`despeck.metrics.reference_regions`, as
+  ``despeck bench`` reports them): ``flat`` (the homogeneous boxes ``bench_starter.py``
   measures the bias on), ``edges`` (pixels within 2 pixels of a step of more than 2 dB
   between neighbours of the reference after a 5 x 5 median, which keeps boundaries and
   point targets and removes pixel-scale texture) and ``texture`` (the rest: parcels with
@@ -59,27 +60,19 @@ sys.path.insert(0, str(ROOT / "benchmarks"))
 
 import bench_starter as matrix  # noqa: E402  (the held-out scenes, speckle and methods)
 
+from despeck import metrics  # noqa: E402
 from despeck.models import load_model_file  # noqa: E402
 from despeck.scene_families import TRAINING_FAMILIES as TRAIN_SPLIT_FAMILIES  # noqa: E402
 
-REGIONS = ("flat", "edges", "texture")
+REGIONS = metrics.REGION_NAMES
 BAND_SIGMAS = (1, 2, 4, 8)
 BAND_NAMES = ("<1 px", "1-2 px", "2-4 px", "4-8 px", ">8 px")
-EDGE_STEP_DB, EDGE_REACH, EDGE_MEDIAN = 2.0, 2, 5
 
 
 def region_masks(reference, boxes):
-    """``{region: bool mask}`` of the clean reference (see the module notes)."""
-    db = ndimage.median_filter(10 * np.log10(np.maximum(reference.astype(np.float64), 1e-12)), EDGE_MEDIAN)
-    step = np.maximum(np.abs(np.diff(db, axis=0, append=db[-1:])), np.abs(np.diff(db, axis=1, append=db[:, -1:])))
-    step = np.maximum(step, np.roll(step, 1, axis=0))
-    step = np.maximum(step, np.roll(step, 1, axis=1))
-    edges = ndimage.binary_dilation(step > EDGE_STEP_DB, iterations=EDGE_REACH)
-    flat = np.zeros(reference.shape, bool)
-    for r0, c0, r1, c1 in boxes:
-        flat[r0:r1, c0:c1] = True
-    flat &= ~edges
-    return {"flat": flat, "edges": edges, "texture": ~(flat | edges)}
+    """``{region: bool mask}`` of the clean reference (:func:`despeck.metrics.reference_regions`, flat = the boxes)."""
+    flat = metrics.areas_from_boxes(boxes, reference.shape) if boxes else None
+    return metrics.reference_regions(reference, flat)
 
 
 def db_error(reference, estimate, ok):

@@ -421,6 +421,15 @@ def test_bench_psnr_and_ssim_equal_scikit_image(scene, tmp_path):
     rd, ed = np.clip(10 * np.log10(ref), low, high), np.clip(10 * np.log10(out), low, high)
     assert row["psnr_db"] == pytest.approx(peak_signal_noise_ratio(rd, ed, data_range=high - low), abs=1e-6)
     assert row["ssim_db"] == pytest.approx(structural_similarity(rd, ed, data_range=high - low), abs=1e-6)
+    # the same PSNR within the reference's regions, the homogeneous boxes being the flat one
+    from despeck import metrics
+
+    regions = metrics.reference_regions(ref, metrics.areas_from_boxes(layout.homogeneous_boxes, ref.shape))
+    for name in metrics.REGION_NAMES:
+        m = regions[name]
+        assert m.any() and row[f"psnr_db_{name}"] == pytest.approx(
+            peak_signal_noise_ratio(rd[m], ed[m], data_range=high - low), abs=1e-6)
+    assert "PSNR texture" in (tmp_path / "rep" / "report.md").read_text()
     peak = row["amplitude_peak"]
     ra, ea = np.clip(np.sqrt(ref), 0, peak), np.clip(np.sqrt(out), 0, peak)
     assert row["psnr_amplitude"] == pytest.approx(peak_signal_noise_ratio(ra, ea, data_range=peak), abs=1e-6)

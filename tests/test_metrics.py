@@ -285,3 +285,57 @@ def test_point_retention_of_a_boxcar_hand_computed():
 
 def test_throughput():
     assert metrics.throughput_mps(4_000_000, 2.0) == 2.0
+
+
+# --------------------------------------------------------------------------- regions
+
+
+def test_reference_regions_mark_a_step_and_leave_the_rest_flat_or_texture():
+    # a 10 dB step between two constant halves, a textured strip and one homogeneous box
+    rng = np.random.default_rng(3)
+    ref = np.ones((64, 64))
+    ref[:, 32:] = 10.0
+    ref[48:, :16] *= rng.gamma(4.0, 0.25, (16, 16))  # pixel-scale texture: no edge after the median
+    box = np.zeros(ref.shape, bool)
+    box[4:28, 4:26] = True
+    r = metrics.reference_regions(ref, box)
+    cols = np.nonzero(r["edges"].any(axis=0))[0]
+    # the step lies between columns 31 and 32; a reach of 2 marks columns 29-34
+    assert cols.tolist() == list(range(29, 35))
+    assert r["edges"][:, 29:35].all()
+    assert (r["flat"] == (box & ~r["edges"])).all() and r["flat"].sum() == 24 * 22
+    # disjoint, and together every valid pixel
+    total = r["flat"].astype(int) + r["edges"] + r["texture"]
+    assert (total == 1).all()
+    assert not r["edges"][48:, :16].any()
+
+
+def test_psnr_by_region_equals_scikit_image_on_each_region():
+    # scikit-image's peak_signal_noise_ratio (van der Walt et al. 2014) on each region's pixels
+    # of the clipped dB images, with the range fidelity_db uses
+    rng = np.random.default_rng(4)
+    clean, noisy, boxes = speckled_parcels(rng, looks=4)
+    est = filters.get_filter("lee")(noisy, looks=4)
+    flat = metrics.areas_from_boxes(boxes, clean.shape)
+    regions = metrics.reference_regions(clean, flat)
+    got = metrics.psnr_by_region(clean, est, regions)
+    low, high = metrics.reference_db_range(clean)
+    rd = np.clip(10 * np.log10(clean), low, high)
+    ed = np.clip(10 * np.log10(est.astype(np.float64)), low, high)
+    for name in metrics.REGION_NAMES:
+        m = regions[name]
+        if not m.any():
+            assert math.isnan(got[name])
+            continue
+        assert got[name] == pytest.approx(peak_signal_noise_ratio(rd[m], ed[m], data_range=high - low), abs=1e-6)
+    # a Lee filter does better inside the parcels than at their borders
+    assert got["flat"] > got["edges"]
+
+
+def test_reference_regions_refuse_bad_input_in_one_line():
+    with pytest.raises(InputError, match="2-D"):
+        metrics.reference_regions(np.ones(5))
+    with pytest.raises(InputError, match="flat area mask shape"):
+        metrics.reference_regions(np.ones((8, 8)), np.ones((4, 4), bool))
+    with pytest.raises(InputError, match="no pixel"):
+        metrics.reference_regions(np.zeros((8, 8)))

@@ -56,6 +56,9 @@ _COLUMNS = (
     ("epd_v", "EPD-ROA V", "{:.3f}"),
     ("edge_corr", "edge corr", "{:.3f}"),
     ("psnr_db", "PSNR dB-domain", "{:.2f}"),
+    ("psnr_db_flat", "PSNR flat", "{:.2f}"),
+    ("psnr_db_edges", "PSNR edges", "{:.2f}"),
+    ("psnr_db_texture", "PSNR texture", "{:.2f}"),
     ("ssim_db", "SSIM dB-domain", "{:.3f}"),
     ("psnr_amplitude", "PSNR amplitude", "{:.2f}"),
     ("ssim_amplitude", "SSIM amplitude", "{:.3f}"),
@@ -83,6 +86,11 @@ def conventions() -> dict:
                     "9/8; not comparable with values published for the pixel form"),
         "edge_corr": "correlation of 4-neighbour Laplacians of reference and estimate (Sattar et al. 1997); ideal 1",
         "psnr_db": "PSNR of 10 log10 intensity, both clipped to the reference's 1st-99.9th percentile range, peak = that range (dB)",
+        "psnr_db_regions": (f"the same PSNR within three disjoint regions of the clean reference "
+                            f"(despeck.metrics.reference_regions): edges, within 2 pixels of a step of more than "
+                            f"{metrics.EDGE_STEP_DB:g} dB between neighbours of its 5 x 5 median; flat, the "
+                            "homogeneous areas less edges; texture, the rest. A method can win overall and lose "
+                            "in one of them"),
         "ssim_db": "SSIM (7 x 7 uniform window, K1 0.01, K2 0.03) on the same clipped dB images and range",
         "psnr_amplitude": "PSNR of amplitude, clipped to [0, 99.9th percentile of the reference amplitude], peak = that value",
         "ssim_amplitude": "SSIM on the same clipped amplitudes",

@@ -65,6 +65,9 @@ def _measure(scene: LoadedScene, out, seconds, label, kind):
         row.update({k: fd[k] for k in ("psnr_db", "ssim_db", "psnr_amplitude", "ssim_amplitude", "mae_db")})
         row["db_range"] = list(fd["db_range"])
         row["amplitude_peak"] = fd["amplitude_peak"]
+        regions = metrics.reference_regions(scene.reference, scene.area_masks or None, scene.valid)
+        for name, value in metrics.psnr_by_region(scene.reference, out, regions, ok, db_range=fd["db_range"]).items():
+            row[f"psnr_db_{name}"] = value
     if scene.points:
         ret = metrics.point_retention_db(I, out, scene.points)
         row["point_retention_db"] = float(np.median(ret))

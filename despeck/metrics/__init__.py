@@ -16,6 +16,7 @@ The package's modules:
 - :mod:`~despeck.metrics.radiometric` -- ENL, radiometric bias, ratio image, the M estimator;
 - :mod:`~despeck.metrics.edges` -- EPD-ROA and edge correlation;
 - :mod:`~despeck.metrics.fidelity` -- masked PSNR/SSIM (scikit-image) in dB and amplitude;
+- :mod:`~despeck.metrics.regions` -- flat, edge and texture regions of a reference, PSNR in each;
 - :mod:`~despeck.metrics.points` -- point targets and their retention;
 - :mod:`~despeck.metrics.speed` -- throughput.
 
@@ -35,6 +36,7 @@ from .radiometric import enl, glcm_homogeneity, radiometric_bias_db, ratio_image
 from .edges import EPD_WINDOW, edge_correlation, epd_roa
 from .fidelity import DB_RANGE_PERCENTILES, fidelity, fidelity_db, psnr, reference_db_range, ssim, to_db
 from .points import find_point_targets, point_retention_db
+from .regions import EDGE_STEP_DB, REGION_NAMES, psnr_by_region, reference_regions
 from .speed import throughput_mps
 
 __all__ = [
@@ -42,5 +44,5 @@ __all__ = [
     "radiometric_bias_db", "ratio_image", "ratio_statistics", "glcm_homogeneity", "unassisted_m",
     "EPD_WINDOW", "epd_roa", "edge_correlation", "psnr", "ssim", "to_db", "DB_RANGE_PERCENTILES",
     "reference_db_range", "fidelity_db", "fidelity", "find_point_targets", "point_retention_db",
-    "throughput_mps"
+    "REGION_NAMES", "EDGE_STEP_DB", "reference_regions", "psnr_by_region", "throughput_mps"
 ]
