@@ -41,8 +41,12 @@ def _run_method(method: Method, scene: LoadedScene, models, workers):
 
 
 
-def _measure(scene: LoadedScene, out, seconds, label, kind):
-    """Every metric of one method's output on one scene (a dict of plain floats)."""
+def _measure(scene: LoadedScene, out, seconds, label, kind, regions=None):
+    """Every metric of one method's output on one scene (a dict of plain floats).
+
+    ``regions``: the reference's regions (:func:`despeck.metrics.reference_regions`),
+    computed once per scene by the caller; needed when the scene has a reference.
+    """
     I, ok = scene.intensity, scene.valid & np.isfinite(out) & (out > 0)
     row = {"scene": scene.name, "method": label, "kind": kind, "looks": scene.looks}
     if scene.area_masks:
@@ -65,7 +69,6 @@ def _measure(scene: LoadedScene, out, seconds, label, kind):
         row.update({k: fd[k] for k in ("psnr_db", "ssim_db", "psnr_amplitude", "ssim_amplitude", "mae_db")})
         row["db_range"] = list(fd["db_range"])
         row["amplitude_peak"] = fd["amplitude_peak"]
-        regions = metrics.reference_regions(scene.reference, scene.area_masks or None, scene.valid)
         for name, value in metrics.psnr_by_region(scene.reference, out, regions, ok, db_range=fd["db_range"]).items():
             row[f"psnr_db_{name}"] = value
     if scene.points:
@@ -150,13 +153,15 @@ def run_benchmark(scenes, methods=None, out_dir="bench_report", *, crop=None, ov
         bar = tqdm(total=len(loaded) * len(methods), desc="bench", unit="run", disable=not progress)
         for si, (scene, box) in enumerate(zip(loaded, crops)):
             outputs = {}
-            rows.append(_measure(scene, scene.intensity, None, _INPUT_LABEL, "input"))
+            regions = (metrics.reference_regions(scene.reference, scene.area_masks or None, scene.valid)
+                       if scene.reference is not None else None)
+            rows.append(_measure(scene, scene.intensity, None, _INPUT_LABEL, "input", regions))
             for m in methods:
                 bar.set_postfix_str(f"{scene.name}: {m.label}")
                 try:
                     out, seconds = _run_method(m, scene, models, workers)
                     outputs[m.label] = out
-                    rows.append(_measure(scene, out, seconds, m.label, m.kind))
+                    rows.append(_measure(scene, out, seconds, m.label, m.kind, regions))
                 except DespeckError as exc:
                     raise named_error(exc, f"{scene.where}: method {m.label!r}") from None
                 bar.update(1)
