@@ -22,6 +22,7 @@ from torch.utils.data import DataLoader, Dataset, Sampler
 from .config import TrainConfig
 
 __all__ = ["allowed_positions", "PositionTable", "augment", "EpochSampler", "EpochPatches", "patch_item",
+           "quiet_when_the_trainer_left",
            "PatchLoaders"]
 
 
@@ -180,9 +181,37 @@ def _worker_init(_):
     # the training process turns it into a clean stop and shuts its workers down, so
     # workers must not die of it first (that makes the loader raise a traceback).
     import signal
+    import threading
 
     signal.signal(signal.SIGTERM, signal.SIG_IGN)
     signal.signal(signal.SIGINT, signal.SIG_IGN)
+    # A worker hands its batches' shared memory to the training process through
+    # multiprocessing's resource sharer, a thread that serves file descriptors. When the
+    # training process stops (a signal, the end of training) in the middle of such a hand-
+    # over, that thread finds the connection closed and would print a traceback that is
+    # not an error of anyone's: the other side is simply gone.
+    threading.excepthook = quiet_when_the_trainer_left(threading.excepthook)
+
+
+def quiet_when_the_trainer_left(previous):
+    """A :data:`threading.excepthook` that drops the connection errors of multiprocessing's
+    resource sharer (the training process went away mid-handover) and passes every other
+    exception to ``previous``."""
+
+    def hook(args):
+        if issubclass(args.exc_type, (ConnectionError, EOFError)) and _raised_in_resource_sharer(args.exc_traceback):
+            return
+        previous(args)
+
+    return hook
+
+
+def _raised_in_resource_sharer(tb) -> bool:
+    while tb is not None:
+        if tb.tb_frame.f_code.co_filename.endswith("resource_sharer.py"):
+            return True
+        tb = tb.tb_next
+    return False
 
 
 class PatchLoaders:
