@@ -429,7 +429,9 @@ def test_bench_psnr_and_ssim_equal_scikit_image(scene, tmp_path):
         m = regions[name]
         assert m.any() and row[f"psnr_db_{name}"] == pytest.approx(
             peak_signal_noise_ratio(rd[m], ed[m], data_range=high - low), abs=1e-6)
-    assert "PSNR texture" in (tmp_path / "rep" / "report.md").read_text()
+    report = (tmp_path / "rep" / "report.md").read_text()
+    assert "PSNR texture" in report and "](scene1_regions.png)" in report
+    assert (tmp_path / "rep" / "scene1_regions.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     peak = row["amplitude_peak"]
     ra, ea = np.clip(np.sqrt(ref), 0, peak), np.clip(np.sqrt(out), 0, peak)
     assert row["psnr_amplitude"] == pytest.approx(peak_signal_noise_ratio(ra, ea, data_range=peak), abs=1e-6)

@@ -314,6 +314,10 @@ def _write_report(path, result):
                   f"![trade-off]({fig['tradeoff']})", "",
                   "Trade-off between smoothing (ENL, log scale) and edge preservation (mean of EPD-ROA H and V)"
                   + (", colour = PSNR in the dB domain." if s["reference"] else "."), ""]
+        if fig.get("regions"):
+            lines += [f"![gain by region]({fig['regions']})", "",
+                      "PSNR gain over the unfiltered input in each region of the clean reference (flat areas, "
+                      "near edges, texture; see the conventions): methods often rank differently in each.", ""]
     models = [m for m in result.get("methods", []) if m.get("kind") == "model"]
     if models:
         lines += ["## Models", ""]
