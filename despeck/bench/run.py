@@ -41,11 +41,11 @@ def _run_method(method: Method, scene: LoadedScene, models, workers):
 
 
 
-def _measure(scene: LoadedScene, out, seconds, label, kind, regions=None):
+def _measure(scene: LoadedScene, out, seconds, label, kind, regions):
     """Every metric of one method's output on one scene (a dict of plain floats).
 
     ``regions``: the reference's regions (:func:`despeck.metrics.reference_regions`),
-    computed once per scene by the caller; needed when the scene has a reference.
+    computed once per scene by the caller; None when the scene has no reference.
     """
     I, ok = scene.intensity, scene.valid & np.isfinite(out) & (out > 0)
     row = {"scene": scene.name, "method": label, "kind": kind, "looks": scene.looks}
