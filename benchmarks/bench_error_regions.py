@@ -77,10 +77,9 @@ def region_masks(reference, boxes):
 
 def db_error(reference, estimate, ok):
     """dB error of ``estimate``, both clipped to the reference's 1st-99.9th percentile dB range."""
-    ref = 10 * np.log10(np.maximum(reference.astype(np.float64), 1e-12))
-    lo, hi = np.percentile(ref[ok], [1.0, 99.9])
-    est = 10 * np.log10(np.maximum(estimate.astype(np.float64), 1e-12))
-    return np.where(ok, np.clip(est, lo, hi) - np.clip(ref, lo, hi), 0.0)
+    lo, hi = metrics.reference_db_range(reference, ok)
+    ref, est = (np.clip(metrics.to_db(np.where(ok, a, 1.0)), lo, hi) for a in (reference, estimate))
+    return np.where(ok, est - ref, 0.0)
 
 
 def bands(error):

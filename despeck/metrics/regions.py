@@ -24,6 +24,7 @@ import numpy as np
 from scipy import ndimage
 
 from ..errors import InputError
+from ..validity import valid_mask
 from .fidelity import psnr, reference_db_range, to_db
 from .images import positive_pair
 
@@ -55,13 +56,7 @@ def reference_regions(reference, flat=None, valid=None, *, step_db=EDGE_STEP_DB,
     if not (step_db > 0 and int(reach) >= 0 and int(median) >= 1):
         raise InputError(f"step_db must be positive, reach non-negative and median at least 1, "
                          f"got {step_db!r}, {reach!r}, {median!r}")
-    with np.errstate(invalid="ignore"):
-        ok = np.isfinite(ref) & (ref > 0)
-    if valid is not None:
-        v = np.asarray(valid, dtype=bool)
-        if v.shape != ref.shape:
-            raise InputError(f"valid mask shape {v.shape} differs from reference shape {ref.shape}")
-        ok &= v
+    ok = valid_mask(ref, valid, what="reference")
     if not ok.any():
         raise InputError("no pixel of the reference is valid and positive")
     db = to_db(np.where(ok, ref, np.median(ref[ok])))
