@@ -108,6 +108,23 @@ def test_train_and_test_parameters_never_overlap():
             make_family_scene(family, (64, 64), rng=0, split="train")
 
 
+@pytest.mark.parametrize("family, period", [("fields", 90.0), ("urban", 45.0)])
+def test_grid_angles_trained_on_both_sides_of_the_held_out_band(family, period):
+    # Parcel strips repeat every 180 degrees and square street blocks every 90; both
+    # families draw the angle's sign at random, so [0, period] covers every orientation
+    # (fields: 90, urban: 45). Training covers all of it except the test band and gaps of
+    # at most 3 degrees beside it, with draws on both sides of the band.
+    train = split_ranges(family, "train")["grid_angle_deg"]
+    test = split_ranges(family, "test")["grid_angle_deg"]
+    edges = sorted(train + test)
+    assert edges[0][0] == 0.0 and edges[-1][1] == period
+    assert all(b[0] - a[1] <= 3.0 for a, b in zip(edges, edges[1:]))
+    (tlo, thi), = test
+    rng = np.random.default_rng(1)
+    angles = np.array([draw_parameters(family, rng=rng)["grid_angle_deg"] for _ in range(200)])
+    assert (angles < tlo).any() and (angles > thi).any()
+
+
 def test_test_split_scenes_differ_from_train():
     # same seed, different split: different parameter draws give a different scene
     a = make_family_scene("terrain", (128, 128), rng=2, split="train")
