@@ -45,7 +45,7 @@ def add_arguments(parser):
                         help="input rasters: files, folders (their .tif/.tiff files) or glob patterns")
     parser.add_argument("--model", metavar="FILE",
                         help="model file (.safetensors) or a bundled model's name: starter (the default) or "
-                             "starter-fast (an earlier, smaller starter: about 1.3-1.6x faster, 0.2-1 dB lower PSNR)")
+                             "starter-fast (an earlier, smaller starter: about 1.3-1.6x faster, 0.1-1.2 dB lower PSNR)")
     where = parser.add_mutually_exclusive_group()
     where.add_argument("--out", metavar="PATH", help="output file (one input only)")
     where.add_argument("--out-dir", metavar="DIR",
@@ -76,7 +76,7 @@ def add_arguments(parser):
     parser.add_argument("--orientations", type=int, choices=ORIENTATIONS, default=1, metavar="{1,4,8}",
                         help="run the network on this many orientations of every tile (as it is; rows, columns or "
                              "both reversed; 8: those transposed too) and average: that many times the time for "
-                             "a cleaner estimate (bundled starter, 8: +0.10 to +0.34 dB PSNR on the project's "
+                             "a cleaner estimate (bundled starter, 8: +0.09 to +0.35 dB PSNR on the project's "
                              "scene matrix, mean kept within 0.03 dB; README). Default 1. The despeck_options tag "
                              "records it")
     parser.add_argument("--overwrite", action="store_true",

@@ -62,8 +62,8 @@ def despeckle_array(intensity, model, *, valid=None, tile=None, overlap=None, ba
         Run the network on this many orientations of every tile -- as it is, with rows,
         columns or both reversed, and (8) those transposed -- and average the estimates
         in the log domain (:meth:`despeck.models.Despeckler.run_oriented`). Default 1;
-        4 and 8 take that many times as long for a cleaner estimate (README: +0.10 to
-        +0.34 dB PSNR for the bundled starter with 8).
+        4 and 8 take that many times as long for a cleaner estimate (README: +0.09 to
+        +0.35 dB PSNR for the bundled starter with 8).
     log_offset : float, optional
         Scene normalisation constant; default ``model.scene_log_offset`` of a decimated
         sample (at most one million) of the valid pixels.
