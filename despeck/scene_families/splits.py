@@ -23,9 +23,9 @@ SPLITS = ("train", "test")
 
 # Parameter ranges per family and split: each a list of (low, high) intervals. Train and
 # test intervals never overlap, so a test scene's parameters never occur in training.
-# Street grids and parcel layouts are trained at every orientation except the held-out
-# band on either side of it (fields: parcel strips at 0-90 degrees either way, rows across
-# them; urban: square blocks, whose grid repeats every 90 degrees, at 0-45 either way), as
+# Street grids and parcel layouts are trained at every orientation on both sides of the
+# held-out band (fields: parcel strips at 0-90 degrees either way, rows across them;
+# urban: square blocks, whose grid repeats every 90 degrees, at 0-45 either way), as
 # parcel sizes already bracket theirs: real scenes have grids at all angles, and a network
 # that never saw a steep grid angle loses most of its margin there (model card).
 _INCIDENCE = {"train": [(30.0, 45.0)], "test": [(22.0, 29.0)]}
