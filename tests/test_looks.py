@@ -323,3 +323,48 @@ def test_lag_follows_the_speckle_correlation(oversampling, taper, lags):
     assert info.value == pytest.approx(4.4, rel=0.10)
     if lags == (3, 3):
         assert speckle.estimate_looks_log_ratio(image, lag=2)[0] > 1.15 * 4.4  # what lag 2 alone would read
+
+
+@pytest.mark.parametrize("L", [0.7, 1.0, 2.5, 4.4, 10.0, 350.0])
+def test_looks_inversions_agree_with_scipy_brentq(L):
+    # The project's bisection (speckle.solve_looks) against scipy.optimize.brentq (Brent 1973,
+    # Algorithms for Minimization without Derivatives) on the three inverse problems it serves.
+    from scipy import optimize
+
+    rho = 0.3
+    problems = [
+        (speckle.amplitude_cv(L), speckle.amplitude_looks_from_cv, lambda x, v: speckle.amplitude_cv(x) - v, 1e6),
+        (speckle.log_intensity_iqr(L), speckle.looks_from_log_iqr, lambda x, v: speckle.log_intensity_iqr(x) - v, 1e4),
+        (speckle.log_ratio_iqr(L, rho), lambda v: speckle.looks_from_log_ratio_iqr(v, rho),
+         lambda x, v: speckle.log_ratio_iqr(x, rho) - v, 1e4),
+    ]
+    for value, invert, f, high in problems:
+        reference = optimize.brentq(f, 0.05, high, args=(value,), xtol=1e-12, rtol=1e-12)
+        assert invert(value) == pytest.approx(reference, rel=1e-8)
+        assert reference == pytest.approx(L, rel=1e-6)
+
+
+def test_solve_looks_handles_either_direction_and_exact_roots():
+    # increasing and decreasing functions of L, and a root that bisection hits exactly (L = 4 = e^ln 4)
+    assert speckle.solve_looks(lambda L: L - 3.0, 0.05, 1e4) == pytest.approx(3.0, rel=1e-11)
+    assert speckle.solve_looks(lambda L: 1.0 / L - 0.2, 0.05, 1e4) == pytest.approx(5.0, rel=1e-11)
+    assert speckle.solve_looks(lambda L: math.log(L) - math.log(2.0), 1.0, 4.0) == pytest.approx(2.0, rel=1e-12)
+
+
+def test_estimating_a_scenes_looks_does_not_import_scipy_optimize():
+    # Every `despeck apply` without --looks runs this estimator; scipy.optimize costs ~0.15 s of CPU
+    # to import (measured), so its root search stays in despeck.speckle.solve_looks.
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, numpy as np\n"
+        "from despeck import looks, speckle\n"
+        "rng = np.random.default_rng(1)\n"
+        "image = (0.1 * speckle.gamma_speckle((256, 256), 4.4, rng=rng)).astype(np.float32)\n"
+        "info, corr, notes = looks.describe_array(image)\n"
+        "assert 3.5 < info.value < 5.5, info\n"
+        "print('scipy.optimize' in sys.modules)\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    assert out.strip() == "False"

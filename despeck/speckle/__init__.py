@@ -54,6 +54,7 @@ from .moments import (
     log_intensity_mean,
     log_intensity_variance,
     looks_from_log_iqr,
+    solve_looks,
 )
 from .simulation import (
     gamma_speckle,
@@ -101,5 +102,5 @@ __all__ = [
     "simulate_correlated_intensity", "look_weights", "intensity_correlation_theory", "KAISER_BETA",
     "measure_speckle_correlation", "log_intensity_iqr", "looks_from_log_iqr", "estimate_looks_log_iqr",
     "SpeckleField", "split_sublooks", "homogeneous_blocks", "estimate_looks", "log_ratio_iqr",
-    "looks_from_log_ratio_iqr", "estimate_looks_log_ratio", "short_lag_correlation"
+    "looks_from_log_ratio_iqr", "estimate_looks_log_ratio", "short_lag_correlation", "solve_looks"
 ]

@@ -28,7 +28,7 @@ import numpy as np
 from ..errors import InputError
 from ..validity import valid_mask
 from .checks import check_looks
-from .moments import amplitude_looks_from_cv, looks_from_log_iqr
+from .moments import amplitude_looks_from_cv, looks_from_log_iqr, solve_looks
 
 __all__ = [
     "enl_intensity", "enl_amplitude", "homogeneous_blocks", "estimate_looks", "estimate_looks_log_iqr",
@@ -249,8 +249,6 @@ def log_ratio_iqr(looks, correlation=0.0) -> float:
 
 def looks_from_log_ratio_iqr(iqr, correlation=0.0) -> float:
     """Invert :func:`log_ratio_iqr` (monotone in L) for L in [0.05, 1e4]."""
-    from scipy import optimize
-
     iqr = float(iqr)
     if not (math.isfinite(iqr) and iqr > 0):
         raise InputError(f"interquartile range must be positive and finite, got {iqr!r}")
@@ -261,7 +259,7 @@ def looks_from_log_ratio_iqr(iqr, correlation=0.0) -> float:
         return hi
     if f(lo) <= 0:
         return lo
-    return float(optimize.brentq(f, lo, hi, xtol=1e-6, rtol=1e-6))
+    return solve_looks(f, lo, hi, rtol=1e-9)
 
 
 def _row_iqr(values) -> np.ndarray:
